@@ -1,0 +1,1 @@
+"""Keelson's service: HTTP API, store, worker and command line around engine/."""

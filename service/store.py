@@ -1,0 +1,166 @@
+"""The store: typed SQLAlchemy 2 mapping of what Keelson keeps.
+
+Rows are named for what they are (``ModelRow``, ``RecordRow`` ...): the word
+*model* belongs to the domain, so the declarative base is ``Base``.
+Alembic (migrations/) is the only way this schema reaches a database; change a
+class here, then add a numbered revision.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+from typing import Any
+
+from sqlalchemy import (
+    JSON,
+    BigInteger,
+    DateTime,
+    ForeignKey,
+    Index,
+    Integer,
+    LargeBinary,
+    MetaData,
+    String,
+    Text,
+    UniqueConstraint,
+)
+from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column
+
+# Alembic docs/build/naming.rst: every constraint gets a deterministic name, so
+# migrations can drop or alter it by name on every backend.
+NAMING_CONVENTION = {
+    "ix": "ix_%(column_0_label)s",
+    "uq": "uq_%(table_name)s_%(column_0_N_name)s",
+    "ck": "ck_%(table_name)s_%(constraint_name)s",
+    "fk": "fk_%(table_name)s_%(column_0_name)s_%(referred_table_name)s",
+    "pk": "pk_%(table_name)s",
+}
+
+# SQLite only autoincrements an INTEGER PRIMARY KEY; BIGINT elsewhere.
+BigId = BigInteger().with_variant(Integer(), "sqlite")
+
+
+def utcnow() -> dt.datetime:
+    return dt.datetime.now(dt.UTC)
+
+
+class Base(DeclarativeBase):
+    metadata = MetaData(naming_convention=NAMING_CONVENTION)
+    type_annotation_map = {dict[str, Any]: JSON, list[Any]: JSON}
+
+
+class ModelRow(Base):
+    """A model: its spec, its record counters and the active version pointer.
+
+    Ingestion locks this row (``FOR UPDATE``) for the length of its transaction,
+    so the records of one model commit in sequence order (invariant 1); the
+    counters are kept here under that same lock instead of counted per request.
+    """
+
+    __tablename__ = "models"
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    name: Mapped[str] = mapped_column(String(64), unique=True)
+    spec: Mapped[dict[str, Any]]
+    active_version_id: Mapped[int | None] = mapped_column(
+        ForeignKey("versions.id", use_alter=True, ondelete="SET NULL")
+    )
+    records_train: Mapped[int] = mapped_column(BigInteger, default=0)
+    records_holdout: Mapped[int] = mapped_column(BigInteger, default=0)
+    created_at: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True), default=utcnow)
+
+
+class TrainerRow(Base):
+    """The online trainer's position for one model, and the lease on it.
+
+    Kept apart from ``models`` so a worker's heartbeat never waits on the row
+    lock an ingest transaction holds.
+    """
+
+    __tablename__ = "trainers"
+
+    model_id: Mapped[int] = mapped_column(
+        ForeignKey("models.id", ondelete="CASCADE"), primary_key=True
+    )
+    cursor: Mapped[int] = mapped_column(BigInteger, default=0)
+    head_version_id: Mapped[int | None] = mapped_column(
+        ForeignKey("versions.id", ondelete="SET NULL")
+    )
+    leased_by: Mapped[str | None] = mapped_column(String(128))
+    lease_expires_at: Mapped[dt.datetime | None] = mapped_column(DateTime(timezone=True))
+    error: Mapped[str | None] = mapped_column(Text)
+    updated_at: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True), default=utcnow)
+
+
+class RecordRow(Base):
+    """One labelled record. ``seq`` is the global sequence: the training order."""
+
+    __tablename__ = "records"
+    __table_args__ = (
+        UniqueConstraint("model_id", "key"),
+        Index("ix_records_model_id_seq", "model_id", "seq"),
+    )
+
+    seq: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=True)
+    model_id: Mapped[int] = mapped_column(ForeignKey("models.id", ondelete="CASCADE"))
+    key: Mapped[str | None] = mapped_column(String(200))
+    features: Mapped[dict[str, Any]]
+    label: Mapped[Any] = mapped_column(JSON)
+    split: Mapped[str] = mapped_column(String(8))  # "train" or "holdout"
+    received_at: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True), default=utcnow)
+
+
+class VersionRow(Base):
+    """An immutable trained state. Only ``status`` and ``promoted_at`` ever change."""
+
+    __tablename__ = "versions"
+    __table_args__ = (UniqueConstraint("model_id", "number"),)
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    model_id: Mapped[int] = mapped_column(ForeignKey("models.id", ondelete="CASCADE"))
+    number: Mapped[int] = mapped_column(Integer)
+    origin: Mapped[str] = mapped_column(String(16))  # "online" or "retrain"
+    status: Mapped[str] = mapped_column(String(16))  # "active", "candidate", "retired"
+    snapshot: Mapped[bytes] = mapped_column(LargeBinary)
+    cursor: Mapped[int] = mapped_column(BigInteger)
+    records_seen: Mapped[int] = mapped_column(BigInteger)
+    metrics: Mapped[dict[str, Any]]
+    parent_id: Mapped[int | None] = mapped_column(ForeignKey("versions.id", ondelete="SET NULL"))
+    job_id: Mapped[int | None] = mapped_column(Integer)
+    created_at: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True), default=utcnow)
+    promoted_at: Mapped[dt.datetime | None] = mapped_column(DateTime(timezone=True))
+
+
+class JobRow(Base):
+    """A queued piece of work for a worker (today: a retrain)."""
+
+    __tablename__ = "jobs"
+    __table_args__ = (Index("ix_jobs_status_id", "status", "id"),)
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    model_id: Mapped[int] = mapped_column(ForeignKey("models.id", ondelete="CASCADE"))
+    kind: Mapped[str] = mapped_column(String(16))
+    status: Mapped[str] = mapped_column(String(16))  # queued, running, succeeded, failed
+    params: Mapped[dict[str, Any]]
+    progress: Mapped[dict[str, Any] | None] = mapped_column(JSON)
+    version_id: Mapped[int | None] = mapped_column(ForeignKey("versions.id", ondelete="SET NULL"))
+    error: Mapped[str | None] = mapped_column(Text)
+    leased_by: Mapped[str | None] = mapped_column(String(128))
+    lease_expires_at: Mapped[dt.datetime | None] = mapped_column(DateTime(timezone=True))
+    attempts: Mapped[int] = mapped_column(Integer, default=0)
+    created_at: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True), default=utcnow)
+    started_at: Mapped[dt.datetime | None] = mapped_column(DateTime(timezone=True))
+    finished_at: Mapped[dt.datetime | None] = mapped_column(DateTime(timezone=True))
+
+
+class TokenRow(Base):
+    """A bearer token, kept only as its SHA-256 hash."""
+
+    __tablename__ = "tokens"
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    name: Mapped[str] = mapped_column(String(100))
+    token_hash: Mapped[str] = mapped_column(String(64), unique=True)
+    scopes: Mapped[list[Any]]
+    created_at: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True), default=utcnow)
+    revoked_at: Mapped[dt.datetime | None] = mapped_column(DateTime(timezone=True))
