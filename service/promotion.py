@@ -1,0 +1,149 @@
+"""Which version serves, and how a version becomes the one that does.
+
+Promotion moves a pointer (invariant 3): versions never change apart from
+their ``status`` and ``promoted_at``. ``promote`` is the one way a version
+becomes active, used by the worker's ``auto`` policy and by the admin's promote
+endpoint (which is also the rollback path).
+
+Lock order, everywhere: ``models`` row first, then ``trainers`` row. Ingest
+holds the model row for its transaction and the worker's checkpoint takes the
+trainer row, so keeping one order means two of them can never deadlock.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping
+from typing import Any
+
+from sqlalchemy import select, update
+from sqlalchemy.orm import Session
+
+from service.store import ModelRow, TrainerRow, VersionRow, utcnow
+
+# The primary holdout metric per task; lower is better for both.
+PRIMARY_METRIC = {"binary": "log_loss", "multiclass": "log_loss", "regression": "rmse"}
+
+# "At least as good within a tolerance": the new metric may exceed the active
+# one by 1 % of it (plus a tiny absolute slack for metrics near zero). Noise in
+# a holdout estimate is rarely below a percent, so a stricter rule would keep
+# an old version active over a new one that is, in truth, just as good.
+RELATIVE_TOLERANCE = 0.01
+ABSOLUTE_TOLERANCE = 1e-9
+
+
+def primary_metric(spec: Mapping[str, Any]) -> str:
+    """The holdout metric that decides promotion for this model's task."""
+    return PRIMARY_METRIC[str(spec["task"])]
+
+
+def should_promote(
+    spec: Mapping[str, Any],
+    new_metrics: Mapping[str, Any] | None,
+    active_metrics: Mapping[str, Any] | None,
+) -> bool:
+    """True when a version with ``new_metrics`` should replace the active one.
+
+    Both arguments are a version's metrics mapping (``{"holdout": {...},
+    "prequential": {...}}``), ideally computed on the same holdout rows. The
+    policy: the new version's primary holdout metric (``log_loss`` for
+    classification, ``rmse`` for regression; lower is better) is at most the
+    active one's plus the tolerance. Without an active metric to beat (no
+    active version, or no holdout records when it was evaluated) the new
+    version wins, unless its own metric is non-finite; a new version without a
+    metric never beats an active one that has one.
+    """
+    name = primary_metric(spec)
+    new_value = _holdout_value(new_metrics, name)
+    if new_value is not None and not math.isfinite(new_value):
+        return False
+    active_value = _holdout_value(active_metrics, name)
+    if active_value is None or not math.isfinite(active_value):
+        return True
+    if new_value is None:
+        return False
+    slack = RELATIVE_TOLERANCE * abs(active_value) + ABSOLUTE_TOLERANCE
+    return new_value <= active_value + slack
+
+
+def _holdout_value(metrics: Mapping[str, Any] | None, name: str) -> float | None:
+    holdout = (metrics or {}).get("holdout") or {}
+    value = holdout.get(name)
+    return None if value is None else float(value)
+
+
+def lock_model(session: Session, model_id: int) -> ModelRow:
+    """Load the model row with a row lock (a no-op on SQLite, where a write
+    session already holds the database's write lock)."""
+    return session.execute(
+        select(ModelRow)
+        .where(ModelRow.id == model_id)
+        .with_for_update()
+        .execution_options(populate_existing=True)
+    ).scalar_one()
+
+
+def promote(session: Session, model_row: ModelRow, version_row: VersionRow) -> None:
+    """Make ``version_row`` the active version of ``model_row``, in the caller's
+    transaction (which commits or rolls back; use a write session).
+
+    The previously active version becomes ``retired``. When the version is not
+    the online trainer's head nor one of its ancestors (a retrain, or a version
+    of an abandoned lineage), it also becomes the head: online learning goes on
+    from it with the records after its cursor, and a stopped lineage's error is
+    cleared. Promoting an ancestor of the head (a rollback) changes only what
+    is served; the lineage keeps learning from its head.
+    """
+    if version_row.model_id != model_row.id:
+        raise ValueError("the version belongs to another model")
+    model = lock_model(session, model_row.id)
+    now = utcnow()
+    session.execute(
+        update(VersionRow)
+        .where(
+            VersionRow.model_id == model.id,
+            VersionRow.status == "active",
+            VersionRow.id != version_row.id,
+        )
+        .values(status="retired")
+        .execution_options(synchronize_session="fetch")
+    )
+    version_row.status = "active"
+    version_row.promoted_at = now
+    model.active_version_id = version_row.id
+    model_row.active_version_id = version_row.id
+
+    trainer = session.execute(
+        select(TrainerRow)
+        .where(TrainerRow.model_id == model.id)
+        .with_for_update()
+        .execution_options(populate_existing=True)
+    ).scalar_one_or_none()
+    if trainer is None:
+        trainer = TrainerRow(model_id=model.id, cursor=0)
+        session.add(trainer)
+    if not _in_lineage(session, trainer.head_version_id, version_row.id):
+        trainer.head_version_id = version_row.id
+        trainer.cursor = version_row.cursor
+        trainer.error = None
+        trainer.updated_at = now
+    session.flush()
+
+
+def _in_lineage(session: Session, head_id: int | None, version_id: int) -> bool:
+    """True when ``version_id`` is ``head_id`` or one of its ancestors."""
+    if head_id is None:
+        return False
+    if head_id == version_id:
+        return True
+    chain = (
+        select(VersionRow.id, VersionRow.parent_id)
+        .where(VersionRow.id == head_id)
+        .cte("lineage", recursive=True)
+    )
+    parent = select(VersionRow.id, VersionRow.parent_id).join(
+        chain, VersionRow.id == chain.c.parent_id
+    )
+    chain = chain.union_all(parent)
+    found = session.execute(select(chain.c.id).where(chain.c.id == version_id).limit(1))
+    return found.first() is not None
