@@ -1,0 +1,204 @@
+"""The version cache: loaded networks kept by version id, the active pointer
+re-read only when older than the staleness bound, counted in real queries."""
+
+from __future__ import annotations
+
+import threading
+from collections.abc import Iterator
+
+import pytest
+from sqlalchemy import Engine, event, update
+
+from service.db import make_engine, make_sessionmaker
+from service.store import ModelRow, VersionRow
+from service.version_cache import (
+    LRU,
+    ModelNotFound,
+    NoActiveVersion,
+    SnapshotUnreadable,
+    VersionCache,
+    VersionNotFound,
+)
+
+
+class Clock:
+    def __init__(self) -> None:
+        self.now = 100.0
+
+    def __call__(self) -> float:
+        return self.now
+
+
+class Unreadable(Exception):
+    pass
+
+
+def load_text(snapshot: bytes) -> str:
+    """Stands in for Learner.from_bytes: the cache only needs something built from the bytes."""
+    if snapshot.startswith(b"corrupt"):
+        raise Unreadable("bad bytes")
+    return snapshot.decode()
+
+
+@pytest.fixture
+def engine(sqlite_url: str) -> Iterator[Engine]:
+    engine = make_engine(sqlite_url)
+    yield engine
+    engine.dispose()
+
+
+class QueryCounter:
+    def __init__(self, engine: Engine) -> None:
+        self.count = 0
+        event.listen(engine, "before_cursor_execute", self._seen)
+
+    def _seen(self, _conn: object, _cursor: object, statement: str, *_rest: object) -> None:
+        # Only real queries: the SQLite BEGIN the store emits is not a round trip worth counting.
+        if statement.lstrip().upper().startswith("SELECT"):
+            self.count += 1
+
+
+def add_model(engine: Engine, name: str, snapshots: list[bytes], active: int | None) -> int:
+    """A model row with one version per snapshot (numbers 1..n), ``active`` the number or None."""
+    with make_sessionmaker(engine)() as session:
+        model = ModelRow(name=name, spec={"task": "regression", "target": "y", "features": []},
+                         records_train=0, records_holdout=0)
+        session.add(model)
+        session.flush()
+        ids = []
+        for number, snapshot in enumerate(snapshots, start=1):
+            version = VersionRow(model_id=model.id, number=number, origin="online",
+                                 status="candidate", snapshot=snapshot, cursor=0,
+                                 records_seen=0, metrics={})
+            session.add(version)
+            session.flush()
+            ids.append(version.id)
+        if active is not None:
+            model.active_version_id = ids[active - 1]
+        session.commit()
+        return model.id
+
+
+def promote(engine: Engine, model_id: int, number: int) -> None:
+    with make_sessionmaker(engine)() as session:
+        version_id = session.query(VersionRow.id).filter_by(model_id=model_id, number=number)
+        session.execute(update(ModelRow).where(ModelRow.id == model_id)
+                        .values(active_version_id=version_id.scalar_subquery()))
+        session.commit()
+
+
+def make_cache(engine: Engine, clock: Clock, **kwargs: object) -> VersionCache:
+    return VersionCache(make_sessionmaker(engine), clock=clock, loader=load_text,
+                        load_errors=(Unreadable,), **kwargs)  # type: ignore[arg-type]
+
+
+def test_a_warm_lookup_of_the_active_version_queries_nothing(engine: Engine) -> None:
+    clock = Clock()
+    add_model(engine, "pumps", [b"one", b"two"], active=2)
+    cache = make_cache(engine, clock, max_age=1.0)
+    counter = QueryCounter(engine)
+    loaded = cache.version(cache.model("pumps"))
+    assert (loaded.number, loaded.learner) == (2, "two")
+    cold = counter.count
+    assert cold > 0
+    for _ in range(100):
+        clock.now += 0.005
+        again = cache.version(cache.model("pumps"))
+        assert again is loaded
+    assert counter.count == cold
+
+
+def test_a_promotion_is_seen_once_the_pointer_is_older_than_the_bound(engine: Engine) -> None:
+    clock = Clock()
+    model_id = add_model(engine, "pumps", [b"one", b"two"], active=1)
+    cache = make_cache(engine, clock, max_age=0.5)
+    assert cache.version(cache.model("pumps")).learner == "one"
+    promote(engine, model_id, 2)
+    clock.now += 0.5  # exactly at the bound: still the copy this process holds
+    assert cache.version(cache.model("pumps")).learner == "one"
+    clock.now += 0.001
+    assert cache.version(cache.model("pumps")).learner == "two"
+    promote(engine, model_id, 1)  # rollback: version 1 is still cached, no snapshot read
+    clock.now += 0.6
+    counter = QueryCounter(engine)
+    assert cache.version(cache.model("pumps")).learner == "one"
+    assert counter.count == 1  # only the pointer
+
+
+def test_a_pinned_version_is_resolved_once_then_served_from_memory(engine: Engine) -> None:
+    clock = Clock()
+    add_model(engine, "pumps", [b"one", b"two", b"three"], active=3)
+    cache = make_cache(engine, clock)
+    entry = cache.model("pumps")
+    counter = QueryCounter(engine)
+    assert cache.version(entry, 1).learner == "one"
+    assert counter.count == 1
+    assert cache.version(entry, 1).learner == "one"
+    assert cache.version(entry, 3).learner == "three"  # the active one's number is known
+    assert counter.count == 2
+    with pytest.raises(VersionNotFound) as missing:
+        cache.version(entry, 9)
+    assert (missing.value.name, missing.value.number) == ("pumps", 9)
+
+
+def test_no_active_version_and_unknown_models_are_reported(engine: Engine) -> None:
+    clock = Clock()
+    add_model(engine, "fresh", [b"one"], active=None)
+    cache = make_cache(engine, clock)
+    with pytest.raises(NoActiveVersion):
+        cache.version(cache.model("fresh"))
+    with pytest.raises(ModelNotFound):
+        cache.model("absent")
+    assert cache.version(cache.model("fresh"), 1).learner == "one"  # pinning still works
+
+
+def test_an_unreadable_snapshot_fails_the_same_way_without_rereading(engine: Engine) -> None:
+    clock = Clock()
+    add_model(engine, "pumps", [b"corrupt bytes"], active=1)
+    cache = make_cache(engine, clock)
+    entry = cache.model("pumps")
+    with pytest.raises(SnapshotUnreadable) as first:
+        cache.version(entry)
+    assert (first.value.name, first.value.number) == ("pumps", 1)
+    counter = QueryCounter(engine)
+    with pytest.raises(SnapshotUnreadable):
+        cache.version(entry)
+    assert counter.count == 0
+
+
+def test_the_loaded_versions_are_bounded_least_recently_used_first(engine: Engine) -> None:
+    clock = Clock()
+    add_model(engine, "pumps", [b"1", b"2", b"3"], active=1)
+    cache = make_cache(engine, clock, capacity=2)
+    entry = cache.model("pumps")
+    cache.version(entry, 1)
+    cache.version(entry, 2)
+    cache.version(entry, 1)  # 1 is now the most recently used
+    cache.version(entry, 3)  # evicts 2
+    counter = QueryCounter(engine)
+    cache.version(entry, 1)
+    cache.version(entry, 3)
+    assert counter.count == 0
+    cache.version(entry, 2)
+    assert counter.count == 1
+
+
+def test_the_staleness_bound_cannot_exceed_one_second(engine: Engine) -> None:
+    with pytest.raises(ValueError):
+        make_cache(engine, Clock(), max_age=1.5)
+
+
+def test_the_lru_stays_consistent_under_threads() -> None:
+    lru: LRU[int, int] = LRU(8)
+
+    def hammer(offset: int) -> None:
+        for i in range(2000):
+            lru.put((i + offset) % 20, i)
+            lru.get((i * 7 + offset) % 20)
+
+    threads = [threading.Thread(target=hammer, args=(k,)) for k in range(4)]
+    for thread in threads:
+        thread.start()
+    for thread in threads:
+        thread.join()
+    assert len(lru) == 8
