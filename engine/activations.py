@@ -1,0 +1,63 @@
+"""Hidden-layer activations, each with its derivative written in terms of its output.
+
+Writing f'(z) as a function of y = f(z) (the classic backpropagation identities:
+logistic y(1 - y), tanh 1 - y^2, relu [y > 0]) lets the backward pass reuse the
+forward buffers instead of keeping pre-activations.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+
+import numpy as np
+from numpy.typing import NDArray
+
+Array = NDArray[np.float64]
+
+
+def tanh_(z: Array) -> Array:
+    """tanh in place."""
+    return np.tanh(z, out=z)
+
+
+def logistic_(z: Array) -> Array:
+    """Logistic in place, as (1 + tanh(z/2)) / 2: never overflows, no branch."""
+    np.multiply(z, 0.5, out=z)
+    np.tanh(z, out=z)
+    np.multiply(z, 0.5, out=z)
+    return np.add(z, 0.5, out=z)
+
+
+def relu_(z: Array) -> Array:
+    """max(z, 0) in place."""
+    return np.maximum(z, 0.0, out=z)
+
+
+def tanh_derivative(y: Array, out: Array) -> Array:
+    """d tanh/dz = 1 - y^2."""
+    np.multiply(y, y, out=out)
+    return np.subtract(1.0, out, out=out)
+
+
+def logistic_derivative(y: Array, out: Array) -> Array:
+    """d logistic/dz = y (1 - y)."""
+    np.subtract(1.0, y, out=out)
+    return np.multiply(out, y, out=out)
+
+
+def relu_derivative(y: Array, out: Array) -> Array:
+    """d relu/dz = 1 where y > 0, else 0 (0 at the kink, as PyTorch)."""
+    # y >= 0 always, so sign(y) is exactly the indicator [y > 0].
+    return np.sign(y, out=out)
+
+
+ACTIVATE: dict[str, Callable[[Array], Array]] = {
+    "tanh": tanh_,
+    "logistic": logistic_,
+    "relu": relu_,
+}
+DERIVATIVE: dict[str, Callable[[Array, Array], Array]] = {
+    "tanh": tanh_derivative,
+    "logistic": logistic_derivative,
+    "relu": relu_derivative,
+}
