@@ -1,0 +1,95 @@
+"""gunicorn settings for the Keelson API (``gunicorn -c python:service.gunicorn_conf``).
+
+Every setting can be changed from the environment:
+
+| variable | setting | default |
+|---|---|---|
+| `KEELSON_HOST` / `KEELSON_PORT` | listen address | `127.0.0.1` / `8000` |
+| `KEELSON_WEB_WORKERS` | worker processes | 2 x CPUs + 1, at most 8 |
+| `KEELSON_THREADS` | threads per worker (gthread) | 4 |
+| `KEELSON_TIMEOUT` | seconds a silent worker lives before it is restarted | 30 |
+| `KEELSON_GRACEFUL_TIMEOUT` | seconds in-flight requests get after SIGTERM | 20 |
+| `KEELSON_KEEPALIVE` | seconds an idle keep-alive connection stays open | 5 |
+| `KEELSON_LOG_LEVEL` | log level | `info` |
+| `KEELSON_ACCESS_LOG` | `1` (JSON access lines on stdout) or `0` | `1` |
+| `PROMETHEUS_MULTIPROC_DIR` | where workers share metric samples | a fresh temporary folder |
+
+Command-line flags (and ``GUNICORN_CMD_ARGS``) still win over these.
+"""
+
+from __future__ import annotations
+
+import os
+import shutil
+import tempfile
+from pathlib import Path
+from typing import Any
+
+
+def _env_int(name: str, default: int) -> int:
+    raw = os.environ.get(name, "").strip()
+    if not raw:
+        return default
+    try:
+        return int(raw)
+    except ValueError as error:
+        raise SystemExit(f"{name} must be a whole number, got {raw!r}") from error
+
+
+def _default_workers() -> int:
+    return min(2 * (os.cpu_count() or 1) + 1, 8)
+
+
+# Metrics of all workers meet in one folder (prometheus_client multiprocess
+# mode); it must be in the environment before any worker imports the client.
+if not os.environ.get("PROMETHEUS_MULTIPROC_DIR"):
+    os.environ["PROMETHEUS_MULTIPROC_DIR"] = tempfile.mkdtemp(prefix="keelson-metrics-")
+_METRICS_DIR = Path(os.environ["PROMETHEUS_MULTIPROC_DIR"])
+
+# Only now: this imports prometheus_client, which reads the variable above once.
+from service.observability import logging_config  # noqa: E402
+
+bind = [f"{os.environ.get('KEELSON_HOST', '127.0.0.1')}:{_env_int('KEELSON_PORT', 8000)}"]
+workers = _env_int("KEELSON_WEB_WORKERS", _default_workers())
+# Threads let one worker keep connections alive and overlap database waits;
+# NumPy releases the GIL in its inner loops.
+worker_class = "gthread"
+threads = _env_int("KEELSON_THREADS", 4)
+timeout = _env_int("KEELSON_TIMEOUT", 30)
+graceful_timeout = _env_int("KEELSON_GRACEFUL_TIMEOUT", 20)
+keepalive = _env_int("KEELSON_KEEPALIVE", 5)
+# Each worker imports the app itself: no database connection or file handle is
+# shared across a fork.
+preload_app = False
+wsgi_app = "service.app:create_app()"
+proc_name = "keelson-api"
+
+loglevel = os.environ.get("KEELSON_LOG_LEVEL", "info").lower()
+_access = os.environ.get("KEELSON_ACCESS_LOG", "1").strip().lower() not in ("0", "false", "no")
+logconfig_dict = logging_config(loglevel.upper())
+if not _access:
+    logconfig_dict["loggers"]["gunicorn.access"]["level"] = "WARNING"
+# The access log becomes JSON fields (see observability.AccessFields); this
+# format is only the plain "message" field beside them.
+access_log_format = '%(h)s "%(r)s" %(s)s %(b)s %(M)sms'
+# Forwarded headers are trusted only from the local proxy by default.
+forwarded_allow_ips = os.environ.get("FORWARDED_ALLOW_IPS", "127.0.0.1")
+
+
+def on_starting(server: Any) -> None:
+    """Start from an empty metrics folder: samples left by an earlier run
+    would otherwise be summed into this one's."""
+    _METRICS_DIR.mkdir(parents=True, exist_ok=True)
+    for entry in _METRICS_DIR.iterdir():
+        if entry.is_file() and entry.suffix == ".db":
+            entry.unlink()
+        elif entry.is_dir():
+            shutil.rmtree(entry, ignore_errors=True)
+
+
+def child_exit(server: Any, worker: Any) -> None:
+    """A worker died or was replaced: drop its live gauges (prometheus_client's
+    multiprocess documentation)."""
+    from prometheus_client import multiprocess
+
+    multiprocess.mark_process_dead(worker.pid)

@@ -1,0 +1,219 @@
+"""Request metrics, request ids and structured JSON logs for the HTTP app.
+
+``init_app(app)`` adds ``/metrics`` (Prometheus text format), a request counter
+and latency histogram labelled by route template, and an ``X-Request-Id`` on
+every answer (the caller's own when it sent a sane one). Under gunicorn every
+worker is its own process, so metrics go through prometheus_client's
+multiprocess mode whenever ``PROMETHEUS_MULTIPROC_DIR`` is set: each worker
+writes its samples to files in that directory and ``/metrics`` sums them, so a
+scrape answered by any worker reports the whole server. The variable must be
+set before prometheus_client is first imported (service.gunicorn_conf does it).
+
+``configure_logging()`` makes every log line one JSON object carrying the
+request id of the request it was written in; entry points (gunicorn, the
+worker, the command line) call it, the app factory does not.
+"""
+
+from __future__ import annotations
+
+import logging
+import os
+import re
+import time
+import uuid
+from collections.abc import Mapping
+from typing import Any
+
+from flask import Flask, Response, g, has_request_context, request
+from prometheus_client import (
+    CONTENT_TYPE_LATEST,
+    REGISTRY,
+    CollectorRegistry,
+    Counter,
+    Histogram,
+    generate_latest,
+    multiprocess,
+    values,
+)
+from pythonjsonlogger.json import JsonFormatter
+
+REQUEST_ID_HEADER = "X-Request-Id"
+# A caller's id is echoed only when it is short and plain, so it cannot smuggle
+# newlines or markup into logs and headers.
+_SANE_REQUEST_ID = re.compile(r"^[A-Za-z0-9._:-]{1,128}$")
+_UNMATCHED_ROUTE = "<unmatched>"
+
+REQUESTS = Counter(
+    "keelson_http_requests_total",
+    "HTTP requests answered, by method, route template and status code.",
+    ["method", "route", "status"],
+)
+LATENCY = Histogram(
+    "keelson_http_request_duration_seconds",
+    "Time from the start of the request to the answer, by method and route template.",
+    ["method", "route"],
+    buckets=(0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0),
+)
+
+
+def init_app(app: Flask) -> None:
+    """Bind metrics, request ids and the /metrics route to ``app``."""
+    # Run first, before any hook that may answer early (authentication), so
+    # every request has a start time and an id.
+    app.before_request_funcs.setdefault(None, []).insert(0, _start_request)
+    app.after_request(_finish_request)
+    app.add_url_rule("/metrics", "metrics", metrics_view, methods=["GET"])
+
+
+def _start_request() -> None:
+    g.request_started = time.perf_counter()
+    given = request.headers.get(REQUEST_ID_HEADER, "")
+    g.request_id = given if _SANE_REQUEST_ID.match(given) else uuid.uuid4().hex
+
+
+def _finish_request(response: Response) -> Response:
+    started = g.get("request_started")
+    request_id = g.get("request_id")
+    if started is None:  # a hook before ours answered; count it all the same
+        started = time.perf_counter()
+    if request_id is None:
+        request_id = uuid.uuid4().hex
+        g.request_id = request_id
+    rule = request.url_rule
+    route = rule.rule if rule is not None else _UNMATCHED_ROUTE
+    method = request.method
+    REQUESTS.labels(method, route, str(response.status_code)).inc()
+    LATENCY.labels(method, route).observe(time.perf_counter() - started)
+    response.headers[REQUEST_ID_HEADER] = request_id
+    return response
+
+
+def metrics_view() -> Response:
+    """Prometheus text exposition of this server's metrics (all workers)."""
+    return Response(render_metrics(), mimetype=CONTENT_TYPE_LATEST.split(";")[0],
+                    headers={"Content-Type": CONTENT_TYPE_LATEST})
+
+
+def render_metrics() -> bytes:
+    if multiprocess_dir() is None:
+        return generate_latest(REGISTRY)
+    # A fresh registry per scrape: MultiProcessCollector reads every worker's
+    # files at collection time (prometheus_client's documented multiprocess use).
+    registry = CollectorRegistry()
+    multiprocess.MultiProcessCollector(registry)
+    return generate_latest(registry)
+
+
+def multiprocess_dir() -> str | None:
+    """The shared metrics directory, when this process writes its samples there.
+
+    prometheus_client picks its value store once, at import, from the
+    environment; follow that choice rather than the environment of today."""
+    if values.ValueClass is values.MutexValue:
+        return None
+    return os.environ.get("PROMETHEUS_MULTIPROC_DIR")
+
+
+# ---------------------------------------------------------------- logging
+
+
+class RequestIdFilter(logging.Filter):
+    """Stamps each record with the id of the request it was written in."""
+
+    def filter(self, record: logging.LogRecord) -> bool:
+        if getattr(record, "request_id", None) is None:
+            record.request_id = g.get("request_id") if has_request_context() else None
+        return True
+
+
+class AccessFields(logging.Filter):
+    """Turns gunicorn's access-log atoms into JSON fields (method, path, status,
+    duration, request id) instead of one pre-formatted string."""
+
+    def filter(self, record: logging.LogRecord) -> bool:
+        atoms = record.args if isinstance(record.args, Mapping) else {}
+        if atoms:
+            record.remote_addr = atoms.get("h")
+            record.method = atoms.get("m")
+            record.path = atoms.get("U")
+            record.query = atoms.get("q") or None
+            record.status = _int_or_none(atoms.get("s"))
+            record.bytes = _int_or_none(atoms.get("B"))
+            record.duration_ms = _float_or_none(atoms.get("D"), scale=1e-3)
+            record.user_agent = atoms.get("a")
+            request_id = atoms.get("{x-request-id}o")
+            record.request_id = None if request_id in (None, "-") else request_id
+        return True
+
+
+def _int_or_none(value: Any) -> int | None:
+    try:
+        return int(value)
+    except (TypeError, ValueError):
+        return None
+
+
+def _float_or_none(value: Any, scale: float = 1.0) -> float | None:
+    try:
+        return round(float(value) * scale, 3)
+    except (TypeError, ValueError):
+        return None
+
+
+JSON_LOG_FORMAT = "%(asctime)s %(levelname)s %(name)s %(process)d %(message)s"
+
+
+def json_formatter() -> JsonFormatter:
+    return JsonFormatter(
+        JSON_LOG_FORMAT,
+        rename_fields={"asctime": "time", "levelname": "level", "name": "logger",
+                       "process": "pid"},
+        timestamp=False,
+    )
+
+
+def logging_config(level: str = "INFO") -> dict[str, Any]:
+    """A ``logging.config.dictConfig`` mapping: every logger (gunicorn's too)
+    writes one JSON object per line to stderr, the access log with fields."""
+    return {
+        "version": 1,
+        "disable_existing_loggers": False,
+        "filters": {
+            "request_id": {"()": RequestIdFilter},
+            "access_fields": {"()": AccessFields},
+        },
+        "formatters": {"json": {"()": json_formatter}},
+        "handlers": {
+            "stderr": {
+                "class": "logging.StreamHandler",
+                "formatter": "json",
+                "filters": ["request_id"],
+                "stream": "ext://sys.stderr",
+            },
+            "access": {
+                "class": "logging.StreamHandler",
+                "formatter": "json",
+                "filters": ["access_fields", "request_id"],
+                "stream": "ext://sys.stdout",
+            },
+        },
+        "root": {"level": level, "handlers": ["stderr"]},
+        "loggers": {
+            "gunicorn.error": {"level": level, "handlers": ["stderr"], "propagate": False},
+            "gunicorn.access": {"level": "INFO", "handlers": ["access"], "propagate": False},
+        },
+    }
+
+
+def configure_logging(level: str | None = None) -> None:
+    """JSON logs on stderr for a process started by an entry point (idempotent)."""
+    import logging.config
+
+    chosen = (level or os.environ.get("KEELSON_LOG_LEVEL") or "INFO").upper()
+    root = logging.getLogger()
+    if any(getattr(h, "_keelson_json", False) for h in root.handlers):
+        root.setLevel(chosen)
+        return
+    logging.config.dictConfig(logging_config(chosen))
+    for handler in root.handlers:
+        handler._keelson_json = True  # type: ignore[attr-defined]

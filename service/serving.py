@@ -1,0 +1,113 @@
+"""``keelson serve``: gunicorn and a training worker as two child processes.
+
+Both children run in their own process group, so a Ctrl-C in the terminal
+reaches only this supervisor, which then sends each child SIGTERM: gunicorn's
+graceful stop (SIGINT would make it quit at once) and the worker's "finish the
+step, write a version, exit". If either child dies on its own, the other is
+stopped too and the exit status says so.
+"""
+
+from __future__ import annotations
+
+import os
+import shutil
+import signal
+import subprocess
+import sys
+import tempfile
+import time
+from collections.abc import Mapping
+
+# gunicorn's graceful timeout plus a margin; after that a child is killed.
+STOP_GRACE_SECONDS = 30.0
+
+
+def server_environment(
+    host: str | None, port: int | None, web_workers: int | None,
+    base: Mapping[str, str] | None = None,
+) -> dict[str, str]:
+    """The children's environment: ours, with the command-line choices on top."""
+    env = dict(os.environ if base is None else base)
+    if host is not None:
+        env["KEELSON_HOST"] = host
+    if port is not None:
+        env["KEELSON_PORT"] = str(port)
+    if web_workers is not None:
+        env["KEELSON_WEB_WORKERS"] = str(web_workers)
+    return env
+
+
+def listen_address(env: Mapping[str, str]) -> str:
+    return f"http://{env.get('KEELSON_HOST', '127.0.0.1')}:{env.get('KEELSON_PORT', '8000')}"
+
+
+def run_server(
+    host: str | None = None, port: int | None = None, web_workers: int | None = None,
+    with_worker: bool = True,
+) -> int:
+    """Run until a signal or a child's death; return the exit status."""
+    env = server_environment(host, port, web_workers)
+    own_metrics_dir = None
+    if not env.get("PROMETHEUS_MULTIPROC_DIR"):
+        own_metrics_dir = tempfile.mkdtemp(prefix="keelson-metrics-")
+        env["PROMETHEUS_MULTIPROC_DIR"] = own_metrics_dir
+    children: dict[str, subprocess.Popen[bytes]] = {}
+    stopping = False
+
+    def request_stop(signum: int, _frame: object) -> None:
+        nonlocal stopping
+        stopping = True
+
+    previous = {s: signal.signal(s, request_stop) for s in (signal.SIGINT, signal.SIGTERM)}
+    try:
+        children["api"] = subprocess.Popen(
+            [sys.executable, "-m", "gunicorn", "--config", "python:service.gunicorn_conf"],
+            env=env, process_group=0,
+        )
+        if with_worker:
+            children["worker"] = subprocess.Popen(
+                [sys.executable, "-m", "service.cli", "worker"], env=env, process_group=0,
+            )
+        print(f"keelson: API on {listen_address(env)}"
+              f"{' with a training worker' if with_worker else ''}; Ctrl-C stops",
+              file=sys.stderr, flush=True)
+        failed: tuple[str, int] | None = None
+        while not stopping and failed is None:
+            for name, child in children.items():
+                code = child.poll()
+                if code is not None:
+                    failed = (name, code)
+                    break
+            time.sleep(0.2)
+        status = _stop_all(children)
+        if failed is not None:
+            name, code = failed
+            print(f"keelson: the {name} process exited with status {code}; stopped the rest",
+                  file=sys.stderr, flush=True)
+            return code or 1
+        return status
+    finally:
+        _stop_all(children)
+        for signum, handler in previous.items():
+            signal.signal(signum, handler)
+        if own_metrics_dir is not None:
+            shutil.rmtree(own_metrics_dir, ignore_errors=True)
+
+
+def _stop_all(children: Mapping[str, subprocess.Popen[bytes]]) -> int:
+    """SIGTERM every live child, wait for the lot, kill stragglers; 0 if all ended well."""
+    for child in children.values():
+        if child.poll() is None:
+            child.send_signal(signal.SIGTERM)
+    deadline = time.monotonic() + STOP_GRACE_SECONDS
+    status = 0
+    for child in children.values():
+        try:
+            code = child.wait(timeout=max(0.1, deadline - time.monotonic()))
+        except subprocess.TimeoutExpired:
+            child.kill()
+            code = child.wait()
+        # A child ended by our own SIGTERM is a clean stop.
+        if code not in (0, -signal.SIGTERM):
+            status = code if code > 0 else 1
+    return status
