@@ -1,0 +1,1 @@
+"""HTTP blueprints, one per resource."""

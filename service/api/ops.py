@@ -1,0 +1,55 @@
+"""Operations: liveness, readiness and the OpenAPI document; no token needed."""
+
+from __future__ import annotations
+
+from typing import Any
+
+from flask import current_app
+from sqlalchemy import text
+
+from service.api.base import Blueprint
+from service.auth import public
+from service.db import schema_is_current
+from service.errors import KeelsonError
+from service.extensions import get_database
+from service.schemas.views import StatusSchema
+
+blueprint = Blueprint("ops", __name__, description="Operations.")
+
+
+class NotReadyError(KeelsonError):
+    status = 503
+
+
+@blueprint.route("/healthz", methods=["GET"])
+@public
+@blueprint.response(200, StatusSchema)
+def healthz() -> dict[str, Any]:
+    """The process is alive (no database call)."""
+    return {"status": "ok"}
+
+
+@blueprint.route("/readyz", methods=["GET"])
+@public
+@blueprint.response(200, StatusSchema)
+def readyz() -> dict[str, Any]:
+    """The database answers and its schema is the newest migration."""
+    database = get_database()
+    try:
+        with database.engine.connect() as connection:
+            connection.execute(text("SELECT 1"))
+        current = schema_is_current(database.engine)
+    except Exception as exc:  # any failure to reach the database means not ready
+        raise NotReadyError(f"The database is unreachable: {type(exc).__name__}.") from exc
+    if not current:
+        raise NotReadyError("The database schema is not current; run `keelson db upgrade`.")
+    return {"status": "ready"}
+
+
+@blueprint.route("/openapi.json", methods=["GET"])
+@public
+@blueprint.doc(summary="This API's OpenAPI 3 document.")
+def openapi_json() -> Any:
+    from flask import jsonify
+
+    return jsonify(current_app.extensions["keelson.openapi"]())

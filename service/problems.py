@@ -1,0 +1,128 @@
+"""One error envelope for every failure: RFC 9457 problem details.
+
+Every error answer, unhandled ones included, is ``application/problem+json``
+with ``type``, ``title``, ``status``, ``detail`` and, for validation errors,
+``errors``: field paths mapped to lists of messages. Never an HTML page.
+Unexpected exceptions are logged with their traceback and answered without it;
+in testing they surface instead, so a test sees the real failure.
+"""
+
+from __future__ import annotations
+
+import json
+import logging
+from collections.abc import Mapping
+from http import HTTPStatus
+from typing import Any
+
+from flask import Flask, Response, current_app
+from werkzeug.exceptions import HTTPException
+
+from service.errors import KeelsonError
+
+PROBLEM_MIMETYPE = "application/problem+json"
+# RFC 9457 section 4.2.1: "about:blank" means the status code says it all.
+BLANK = "about:blank"
+VALIDATION_TYPE = "urn:keelson:problem:invalid-input"
+# Headers of an HTTP error worth keeping on the problem answer.
+_KEPT_HEADERS = ("Allow", "WWW-Authenticate", "Retry-After")
+
+log = logging.getLogger(__name__)
+
+
+def problem(
+    status: int,
+    detail: str,
+    *,
+    errors: Mapping[str, list[str]] | None = None,
+    title: str | None = None,
+    type_: str | None = None,
+    headers: Mapping[str, str] | None = None,
+) -> Response:
+    """A problem details answer."""
+    body: dict[str, Any] = {
+        "type": type_ or (VALIDATION_TYPE if errors else BLANK),
+        "title": title or HTTPStatus(status).phrase,
+        "status": status,
+        "detail": detail,
+    }
+    if errors:
+        body["errors"] = dict(errors)
+    response = Response(
+        json.dumps(body, ensure_ascii=False), status=status, mimetype=PROBLEM_MIMETYPE
+    )
+    for name, value in (headers or {}).items():
+        response.headers[name] = value
+    return response
+
+
+def flatten_messages(messages: Any, prefix: str = "") -> dict[str, list[str]]:
+    """marshmallow's nested error dict as flat field paths.
+
+    ``{"records": {3: {"features": {"x": ["..."]}}}}`` becomes
+    ``{"records.3.features.x": ["..."]}``; a schema-level ``_schema`` entry is
+    reported at its parent's path (``body`` at the top).
+    """
+    flat: dict[str, list[str]] = {}
+    _flatten_into(flat, messages, prefix)
+    return flat
+
+
+def _flatten_into(flat: dict[str, list[str]], messages: Any, path: str) -> None:
+    if isinstance(messages, Mapping):
+        for key, value in messages.items():
+            child = path if key == "_schema" else f"{path}.{key}" if path else str(key)
+            _flatten_into(flat, value, child)
+    elif isinstance(messages, list | tuple) and all(isinstance(m, str) for m in messages):
+        flat.setdefault(path or "body", []).extend(messages)
+    elif isinstance(messages, list | tuple):
+        for item in messages:
+            _flatten_into(flat, item, path)
+    else:
+        flat.setdefault(path or "body", []).append(str(messages))
+
+
+def _webargs_errors(error: HTTPException) -> dict[str, list[str]] | None:
+    """Field errors flask-smorest attached to a 422 (``data["messages"]``),
+    keyed by location; the JSON body's paths are given without a prefix."""
+    data = getattr(error, "data", None)
+    if not isinstance(data, Mapping) or "messages" not in data:
+        return None
+    flat: dict[str, list[str]] = {}
+    for location, messages in data["messages"].items():
+        prefix = "" if location == "json" else str(location)
+        flat.update(flatten_messages(messages, prefix))
+    return flat
+
+
+def handle_http_exception(error: HTTPException) -> Response:
+    status = error.code or 500
+    headers = {
+        name: value for name, value in error.get_headers() if name in _KEPT_HEADERS
+    }
+    errors = _webargs_errors(error)
+    if errors:
+        return problem(status, "The request has invalid fields.", errors=errors,
+                       headers=headers)
+    detail = getattr(error, "keelson_detail", None) or error.description or ""
+    return problem(status, detail, headers=headers)
+
+
+def handle_keelson_error(error: KeelsonError) -> Response:
+    return problem(
+        error.status, error.detail, errors=error.errors, headers=error.headers
+    )
+
+
+def handle_unexpected(error: Exception) -> Response:
+    if current_app.testing or current_app.config.get("PROPAGATE_EXCEPTIONS"):
+        raise error
+    log.error("unhandled error answering a request", exc_info=error)
+    return problem(500, "The server failed to answer; the error has been logged.")
+
+
+def init_app(app: Flask) -> None:
+    """Register the handlers (after flask-smorest's own, which they replace)."""
+    app.register_error_handler(HTTPException, handle_http_exception)
+    app.register_error_handler(KeelsonError, handle_keelson_error)
+    app.register_error_handler(Exception, handle_unexpected)

@@ -1,0 +1,175 @@
+"""Strict marshmallow fields: JSON types are taken as they are, never coerced.
+
+marshmallow's own fields coerce (``"4.1"`` to 4.1, ``1`` to True, ``True`` to
+1); an API that must reject "string in a number" and "bool is not a number"
+cannot use them for values. Each field here accepts exactly one JSON type.
+The ``*FromText`` variants read the same values from text (query strings, CSV
+cells), with the same rules once converted.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from typing import Any
+
+from marshmallow import ValidationError, fields
+
+NON_FINITE = "NaN and Infinity are not numbers JSON allows (RFC 8259 section 6)."
+TRUE_TEXT = frozenset({"true", "1"})
+FALSE_TEXT = frozenset({"false", "0"})
+
+
+def _finite(value: float | int) -> float:
+    try:
+        number = float(value)
+    except OverflowError as exc:
+        raise ValidationError("Number is too large.") from exc
+    if not math.isfinite(number):
+        raise ValidationError(NON_FINITE)
+    return number
+
+
+class StrictNumber(fields.Field):
+    """A finite JSON number (not a bool, not a string), optionally bounded.
+
+    Deserialises to ``float`` when ``as_float`` (record values); otherwise the
+    number is kept as sent (an int stays an int in a stored spec).
+    """
+
+    def __init__(
+        self,
+        *,
+        minimum: float | None = None,
+        maximum: float | None = None,
+        exclusive_minimum: bool = False,
+        as_float: bool = False,
+        **kwargs: Any,
+    ) -> None:
+        super().__init__(**kwargs)
+        self.minimum = minimum
+        self.maximum = maximum
+        self.exclusive_minimum = exclusive_minimum
+        self.as_float = as_float
+        self.metadata.setdefault("type", "number")
+        if minimum is not None:
+            self.metadata.setdefault("minimum", minimum)
+            if exclusive_minimum:
+                self.metadata.setdefault("exclusiveMinimum", True)
+        if maximum is not None:
+            self.metadata.setdefault("maximum", maximum)
+
+    def _deserialize(self, value: Any, attr: str | None, data: Any, **kwargs: Any) -> Any:
+        if isinstance(value, bool) or not isinstance(value, int | float):
+            raise ValidationError("Not a number.")
+        return self.check(value)
+
+    def check(self, value: int | float) -> Any:
+        number = _finite(value)
+        if self.minimum is not None and (
+            number <= self.minimum if self.exclusive_minimum else number < self.minimum
+        ):
+            relation = "above" if self.exclusive_minimum else "at least"
+            raise ValidationError(f"Must be {relation} {self.minimum}.")
+        if self.maximum is not None and number > self.maximum:
+            raise ValidationError(f"Must be at most {self.maximum}.")
+        return number if self.as_float else value
+
+
+class NumberFromText(StrictNumber):
+    def _deserialize(self, value: Any, attr: str | None, data: Any, **kwargs: Any) -> Any:
+        if not isinstance(value, str):
+            return super()._deserialize(value, attr, data, **kwargs)
+        try:
+            number = float(value.strip())
+        except ValueError as exc:
+            raise ValidationError("Not a number.") from exc
+        return self.check(number)
+
+
+class StrictInteger(fields.Field):
+    """A JSON integer (not a bool, not 2.0), optionally bounded."""
+
+    def __init__(
+        self, *, minimum: int | None = None, maximum: int | None = None, **kwargs: Any
+    ) -> None:
+        super().__init__(**kwargs)
+        self.minimum = minimum
+        self.maximum = maximum
+        self.metadata.setdefault("type", "integer")
+        if minimum is not None:
+            self.metadata.setdefault("minimum", minimum)
+        if maximum is not None:
+            self.metadata.setdefault("maximum", maximum)
+
+    def _deserialize(self, value: Any, attr: str | None, data: Any, **kwargs: Any) -> Any:
+        if isinstance(value, bool) or not isinstance(value, int):
+            raise ValidationError("Not an integer.")
+        if self.minimum is not None and value < self.minimum:
+            raise ValidationError(f"Must be at least {self.minimum}.")
+        if self.maximum is not None and value > self.maximum:
+            raise ValidationError(f"Must be at most {self.maximum}.")
+        return value
+
+
+class StrictBoolean(fields.Field):
+    """JSON ``true`` or ``false``; nothing else."""
+
+    def __init__(self, **kwargs: Any) -> None:
+        super().__init__(**kwargs)
+        self.metadata.setdefault("type", "boolean")
+
+    def _deserialize(self, value: Any, attr: str | None, data: Any, **kwargs: Any) -> Any:
+        if not isinstance(value, bool):
+            raise ValidationError("Not a boolean (true or false).")
+        return value
+
+
+class BooleanFromText(StrictBoolean):
+    def _deserialize(self, value: Any, attr: str | None, data: Any, **kwargs: Any) -> Any:
+        if isinstance(value, str):
+            text = value.strip().lower()
+            if text in TRUE_TEXT:
+                return True
+            if text in FALSE_TEXT:
+                return False
+        return super()._deserialize(value, attr, data, **kwargs)
+
+
+class Choice(fields.Field):
+    """One of a fixed list of JSON values, compared by type and value (so
+    ``true`` is not ``1`` and ``"1"`` is not ``1``): levels and classes."""
+
+    def __init__(self, choices: Sequence[Any], *, what: str = "value", **kwargs: Any) -> None:
+        super().__init__(**kwargs)
+        self.choices = list(choices)
+        self.lookup = {(type(c), c): c for c in self.choices}
+        self.what = what
+        self.metadata.setdefault("enum", self.choices)
+
+    def _deserialize(self, value: Any, attr: str | None, data: Any, **kwargs: Any) -> Any:
+        try:
+            return self.lookup[(type(value), value)]
+        except (KeyError, TypeError):
+            raise ValidationError(
+                f"Unknown {self.what} {value!r}; expected one of {self.choices!r}."
+            ) from None
+
+
+class ChoiceFromText(Choice):
+    """A choice spelled as text: ``failed``, ``true``, ``3``."""
+
+    def __init__(self, choices: Sequence[Any], **kwargs: Any) -> None:
+        super().__init__(choices, **kwargs)
+        self.by_text = {_as_text(c): c for c in self.choices}
+
+    def _deserialize(self, value: Any, attr: str | None, data: Any, **kwargs: Any) -> Any:
+        if isinstance(value, str) and value.strip() in self.by_text:
+            return self.by_text[value.strip()]
+        return super()._deserialize(value, attr, data, **kwargs)
+
+
+def _as_text(choice: Any) -> str:
+    if isinstance(choice, bool):
+        return "true" if choice else "false"
+    return str(choice)

@@ -1,0 +1,60 @@
+"""Helpers the use cases share: finding a model by name, and answer shapes."""
+
+from __future__ import annotations
+
+import datetime as dt
+import re
+from typing import Any
+
+from sqlalchemy import select
+from sqlalchemy.orm import Session
+
+from service.errors import NotFoundError
+from service.schemas.spec import MODEL_NAME_PATTERN
+from service.store import ModelRow
+
+_MODEL_NAME = re.compile(MODEL_NAME_PATTERN)
+
+
+def find_model(session: Session, name: str, *, lock: bool = False) -> ModelRow:
+    """The model called ``name``; NotFoundError when there is none.
+
+    A name that could never be valid (``..``, uppercase, too long) is simply
+    not found: it never reaches the database. ``lock`` takes the row lock
+    (``SELECT ... FOR UPDATE``; on SQLite the write session's BEGIN IMMEDIATE
+    already holds the database lock).
+    """
+    if not _MODEL_NAME.fullmatch(name):
+        raise NotFoundError(f"There is no model named {name!r}.")
+    query = select(ModelRow).where(ModelRow.name == name)
+    if lock:
+        query = query.with_for_update()
+    row = session.scalars(query).first()
+    if row is None:
+        raise NotFoundError(f"There is no model named {name!r}.")
+    return row
+
+
+def as_utc(moment: dt.datetime | None) -> dt.datetime | None:
+    """SQLite hands back naive datetimes; every stored time is UTC."""
+    if moment is None or moment.tzinfo is not None:
+        return moment
+    return moment.replace(tzinfo=dt.UTC)
+
+
+def model_view(
+    row: ModelRow, *, active_version: int | None, cursor: int, lag: int
+) -> dict[str, Any]:
+    """GET /v1/models/{name}: the stored spec and the model's state."""
+    return {
+        **row.spec,
+        "name": row.name,
+        "active_version": active_version,
+        "records": {
+            "total": row.records_train + row.records_holdout,
+            "train": row.records_train,
+            "holdout": row.records_holdout,
+        },
+        "trainer": {"cursor": cursor, "lag": lag},
+        "created_at": as_utc(row.created_at),
+    }

@@ -1,0 +1,93 @@
+"""Use cases for models: create, show, list."""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from typing import Any
+
+from sqlalchemy import func, select
+from sqlalchemy.exc import IntegrityError
+from sqlalchemy.orm import Session
+
+import engine
+from service.errors import ConflictError, InvalidInputError
+from service.extensions import Database
+from service.store import ModelRow, RecordRow, TrainerRow, VersionRow
+from service.usecases.common import find_model, model_view
+
+
+def create_model(db: Database, validated: Mapping[str, Any]) -> dict[str, Any]:
+    """Store a model from a validated spec, defaults filled by the engine, with
+    its online trainer at cursor 0. ConflictError when the name is taken."""
+    try:
+        spec = engine.apply_defaults(validated)
+    except engine.InvalidInputError as exc:
+        raise InvalidInputError(
+            "The model spec is invalid.", errors={exc.field or "body": [str(exc)]}
+        ) from exc
+    with db.write() as session:
+        try:
+            if session.scalar(select(ModelRow.id).where(ModelRow.name == spec["name"])):
+                raise ConflictError(f"A model named {spec['name']!r} already exists.")
+            row = ModelRow(name=spec["name"], spec=spec, records_train=0, records_holdout=0)
+            session.add(row)
+            session.flush()
+            session.add(TrainerRow(model_id=row.id, cursor=0))
+            session.commit()
+        except IntegrityError as exc:  # a concurrent create won the race
+            session.rollback()
+            raise ConflictError(f"A model named {spec['name']!r} already exists.") from exc
+        except Exception:
+            session.rollback()
+            raise
+    return model_view(row, active_version=None, cursor=0, lag=0)
+
+
+def get_model(db: Database, name: str) -> dict[str, Any]:
+    with db.read() as session:
+        row = find_model(session, name)
+        return _views(session, [row])[0]
+
+
+def list_models(db: Database) -> list[dict[str, Any]]:
+    with db.read() as session:
+        rows = list(session.scalars(select(ModelRow).order_by(ModelRow.name)))
+        return _views(session, rows)
+
+
+def _views(session: Session, rows: list[ModelRow]) -> list[dict[str, Any]]:
+    """Model answers with their active version numbers, cursors and lags,
+    in three queries however many models there are."""
+    ids = [row.id for row in rows]
+    if not ids:
+        return []
+    active = dict(
+        session.execute(
+            select(ModelRow.id, VersionRow.number)
+            .join(VersionRow, VersionRow.id == ModelRow.active_version_id)
+            .where(ModelRow.id.in_(ids))
+        ).all()
+    )
+    cursors = dict(
+        session.execute(
+            select(TrainerRow.model_id, TrainerRow.cursor).where(TrainerRow.model_id.in_(ids))
+        ).all()
+    )
+    # Lag counts records past the cursor: an index range scan on (model_id, seq).
+    lags = dict(
+        session.execute(
+            select(RecordRow.model_id, func.count())
+            .join(TrainerRow, TrainerRow.model_id == RecordRow.model_id)
+            .where(RecordRow.model_id.in_(ids), RecordRow.seq > TrainerRow.cursor)
+            .group_by(RecordRow.model_id)
+        ).all()
+    )
+    return [
+        model_view(
+            row,
+            active_version=active.get(row.id),
+            cursor=cursors.get(row.id, 0),
+            lag=lags.get(row.id, 0),
+        )
+        for row in rows
+    ]

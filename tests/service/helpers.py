@@ -1,0 +1,112 @@
+"""Plain helpers for service tests: a request helper that asserts the status,
+factories with overrides, and direct database reads."""
+
+from __future__ import annotations
+
+import copy
+import json
+from typing import Any
+
+from flask import Flask
+from sqlalchemy import func, select
+
+from service.extensions import get_database
+from service.store import ModelRow, RecordRow
+from service.tokens import create_token
+
+ADMIN_TOKEN = "test-admin-token"
+PROBLEM = "application/problem+json"
+
+PUMP_SPEC: dict[str, Any] = {
+    "name": "pump-risk",
+    "task": "binary",
+    "target": "failed_within_30d",
+    "classes": ["ok", "failed"],
+    "features": [
+        {"name": "vibration_rms", "type": "numeric", "min": 0, "max": 100, "unit": "mm/s"},
+        {"name": "pump_family", "type": "categorical", "levels": ["centrifugal", "screw"]},
+        {"name": "has_vfd", "type": "boolean"},
+    ],
+}
+
+
+class ApiClient:
+    """``api.request("GET", "/v1/models", 200)`` -> the parsed body."""
+
+    def __init__(self, app: Flask) -> None:
+        self.app = app
+        self.client = app.test_client()
+
+    def request(
+        self,
+        method: str,
+        path: str,
+        status: int,
+        *,
+        token: str | None = ADMIN_TOKEN,
+        json_body: Any = None,
+        data: bytes | str | None = None,
+        content_type: str | None = None,
+        headers: dict[str, str] | None = None,
+    ) -> Any:
+        sent = dict(headers or {})
+        if token is not None:
+            sent["Authorization"] = f"Bearer {token}"
+        if json_body is not None:
+            data = json.dumps(json_body)
+            content_type = content_type or "application/json"
+        response = self.client.open(
+            path, method=method, data=data, content_type=content_type, headers=sent
+        )
+        self.last = response
+        assert response.status_code == status, (response.status_code, response.get_data(True))
+        if status >= 400:
+            assert response.mimetype == PROBLEM, response.mimetype
+        if not response.data:
+            return None
+        return json.loads(response.data)
+
+    def token(self, *scopes: str, name: str = "test") -> str:
+        with get_database(self.app).write() as session:
+            _row, plaintext = create_token(session, name, scopes)
+        return plaintext
+
+
+def model_spec(**overrides: Any) -> dict[str, Any]:
+    spec = copy.deepcopy(PUMP_SPEC)
+    spec.update(overrides)
+    return spec
+
+
+def create_model(api: ApiClient, **overrides: Any) -> Any:
+    return api.request("POST", "/v1/models", 201, json_body=model_spec(**overrides))
+
+
+def record(i: int, *, key: str | None = None, **features: Any) -> dict[str, Any]:
+    row: dict[str, Any] = {
+        "features": {
+            "vibration_rms": float(i % 50),
+            "pump_family": "screw" if i % 2 else "centrifugal",
+            "has_vfd": bool(i % 3),
+            **features,
+        },
+        "label": "failed" if i % 4 == 0 else "ok",
+    }
+    if key is not None:
+        row["key"] = key
+    return row
+
+
+def count_records(app: Flask, model: str | None = None) -> int:
+    with get_database(app).read() as session:
+        query = select(func.count()).select_from(RecordRow)
+        if model is not None:
+            query = query.join(ModelRow).where(ModelRow.name == model)
+        return int(session.scalar(query) or 0)
+
+
+def model_row(app: Flask, name: str) -> ModelRow:
+    with get_database(app).read() as session:
+        row = session.scalars(select(ModelRow).where(ModelRow.name == name)).one()
+        session.expunge(row)
+        return row
