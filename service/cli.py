@@ -40,9 +40,14 @@ def _explain_failure(error: Exception) -> str | None:
     from sqlalchemy.exc import OperationalError
 
     from service.config import ConfigError
+    from service.errors import KeelsonError
 
     if isinstance(error, ConfigError):
         return f"configuration: {error}"
+    if isinstance(error, KeelsonError):
+        details = [f"  {path}: {'; '.join(messages)}"
+                   for path, messages in (error.errors or {}).items()]
+        return "\n".join([error.detail, *details])
     if isinstance(error, OperationalError):
         return (f"cannot use the database ({_database_url_for_humans()}): "
                 f"{str(error.orig).strip() or error}")
@@ -178,8 +183,7 @@ def token_create(name: str, scopes: tuple[str, ...]) -> None:
     from service.tokens import create_token
 
     with _write_session() as session:
-        row, plaintext = create_token(session, name, sorted(set(scopes)))
-        session.commit()
+        row, plaintext = create_token(session, name, scopes)
     click.echo(plaintext)
     click.echo(f"token {row.id} ({name}; scopes: {', '.join(row.scopes)}): store it now, "
                "it cannot be shown again", err=True)
@@ -210,17 +214,16 @@ def token_list(as_json: bool) -> None:
 
 
 @token.command("revoke")
-@click.argument("token_id", type=int)
-def token_revoke(token_id: int) -> None:
-    """Revoke the token with id TOKEN_ID (see `keelson token list`)."""
+@click.argument("id_or_name")
+def token_revoke(id_or_name: str) -> None:
+    """Revoke the token with this id, or every live token with this name
+    (see `keelson token list`). Takes effect within a second or so."""
     from service.tokens import revoke_token
 
     with _write_session() as session:
-        found = revoke_token(session, token_id)
-        session.commit()
-    if not found:
-        raise click.ClickException(f"no token with id {token_id}")
-    click.echo(f"token {token_id} revoked")
+        rows = revoke_token(session, id_or_name)
+    for row in rows:
+        click.echo(f"token {row.id} ({row.name}) revoked")
 
 
 # -------------------------------------------------------------- demo, import

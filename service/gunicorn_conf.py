@@ -46,7 +46,14 @@ if not os.environ.get("PROMETHEUS_MULTIPROC_DIR"):
     os.environ["PROMETHEUS_MULTIPROC_DIR"] = tempfile.mkdtemp(prefix="keelson-metrics-")
 _METRICS_DIR = Path(os.environ["PROMETHEUS_MULTIPROC_DIR"])
 
-# Only now: this imports prometheus_client, which reads the variable above once.
+# prometheus_client chooses its value store from the environment once, at
+# import; importing this module's package may already have imported it. Choose
+# again now that the folder is set (service.observability makes its metrics
+# only when the app is built, in each worker, after this).
+from prometheus_client import values as _prometheus_values  # noqa: E402
+
+_prometheus_values.ValueClass = _prometheus_values.get_value_class()
+
 from service.observability import logging_config  # noqa: E402
 
 bind = [f"{os.environ.get('KEELSON_HOST', '127.0.0.1')}:{_env_int('KEELSON_PORT', 8000)}"]
@@ -63,6 +70,9 @@ keepalive = _env_int("KEELSON_KEEPALIVE", 5)
 preload_app = False
 wsgi_app = "service.app:create_app()"
 proc_name = "keelson-api"
+# gunicorn's control socket is one path per user: several servers on one host
+# (tests, benchmarks) would fight over it, and Keelson does not use it.
+control_socket_disable = True
 
 loglevel = os.environ.get("KEELSON_LOG_LEVEL", "info").lower()
 _access = os.environ.get("KEELSON_ACCESS_LOG", "1").strip().lower() not in ("0", "false", "no")

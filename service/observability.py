@@ -16,6 +16,7 @@ worker, the command line) call it, the app factory does not.
 
 from __future__ import annotations
 
+import functools
 import logging
 import os
 import re
@@ -37,55 +38,66 @@ from prometheus_client import (
 )
 from pythonjsonlogger.json import JsonFormatter
 
+from service.auth import public
+
 REQUEST_ID_HEADER = "X-Request-Id"
 # A caller's id is echoed only when it is short and plain, so it cannot smuggle
 # newlines or markup into logs and headers.
 _SANE_REQUEST_ID = re.compile(r"^[A-Za-z0-9._:-]{1,128}$")
 _UNMATCHED_ROUTE = "<unmatched>"
 
-REQUESTS = Counter(
-    "keelson_http_requests_total",
-    "HTTP requests answered, by method, route template and status code.",
-    ["method", "route", "status"],
-)
-LATENCY = Histogram(
-    "keelson_http_request_duration_seconds",
-    "Time from the start of the request to the answer, by method and route template.",
-    ["method", "route"],
-    buckets=(0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0),
-)
+
+@functools.cache
+def request_metrics() -> tuple[Counter, Histogram]:
+    """The request counter and latency histogram, made once per process.
+
+    Made on first use rather than at import: under gunicorn the master may
+    import this module before the metrics folder is chosen, and each metric
+    takes its storage (in memory, or the shared folder) when it is made.
+    """
+    requests = Counter(
+        "keelson_http_requests_total",
+        "HTTP requests answered, by method, route template and status code.",
+        ["method", "route", "status"],
+    )
+    latency = Histogram(
+        "keelson_http_request_duration_seconds",
+        "Time from the start of the request to the answer, by method and route template.",
+        ["method", "route"],
+        buckets=(0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0),
+    )
+    return requests, latency
 
 
 def init_app(app: Flask) -> None:
     """Bind metrics, request ids and the /metrics route to ``app``."""
+    requests, latency = request_metrics()
+
+    def finish_request(response: Response) -> Response:
+        started = g.get("request_started")
+        if started is None:  # a hook before ours answered; count it all the same
+            started = time.perf_counter()
+        request_id = g.get("request_id")
+        if request_id is None:
+            request_id = g.request_id = uuid.uuid4().hex
+        rule = request.url_rule
+        route = rule.rule if rule is not None else _UNMATCHED_ROUTE
+        requests.labels(request.method, route, str(response.status_code)).inc()
+        latency.labels(request.method, route).observe(time.perf_counter() - started)
+        response.headers[REQUEST_ID_HEADER] = request_id
+        return response
+
     # Run first, before any hook that may answer early (authentication), so
     # every request has a start time and an id.
     app.before_request_funcs.setdefault(None, []).insert(0, _start_request)
-    app.after_request(_finish_request)
-    app.add_url_rule("/metrics", "metrics", metrics_view, methods=["GET"])
+    app.after_request(finish_request)
+    app.add_url_rule("/metrics", "metrics", public(metrics_view), methods=["GET"])
 
 
 def _start_request() -> None:
     g.request_started = time.perf_counter()
     given = request.headers.get(REQUEST_ID_HEADER, "")
     g.request_id = given if _SANE_REQUEST_ID.match(given) else uuid.uuid4().hex
-
-
-def _finish_request(response: Response) -> Response:
-    started = g.get("request_started")
-    request_id = g.get("request_id")
-    if started is None:  # a hook before ours answered; count it all the same
-        started = time.perf_counter()
-    if request_id is None:
-        request_id = uuid.uuid4().hex
-        g.request_id = request_id
-    rule = request.url_rule
-    route = rule.rule if rule is not None else _UNMATCHED_ROUTE
-    method = request.method
-    REQUESTS.labels(method, route, str(response.status_code)).inc()
-    LATENCY.labels(method, route).observe(time.perf_counter() - started)
-    response.headers[REQUEST_ID_HEADER] = request_id
-    return response
 
 
 def metrics_view() -> Response:
