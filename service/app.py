@@ -11,7 +11,7 @@ import flask_smorest
 from flask import Flask, Response
 
 from service import auth, observability, problems
-from service.api import models, ops
+from service.api import jobs, models, ops, records, versions
 from service.config import load_config
 from service.extensions import init_database
 from service.schemas.views import ProblemSchema
@@ -20,6 +20,9 @@ from service.schemas.views import ProblemSchema
 BLUEPRINTS = [
     ops.blueprint,
     models.blueprint,
+    records.blueprint,
+    versions.blueprint,
+    jobs.blueprint,
 ]
 
 SECURITY_HEADERS = {

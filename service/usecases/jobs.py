@@ -1,0 +1,61 @@
+"""Use cases for jobs: queue a retrain, show a job."""
+
+from __future__ import annotations
+
+from typing import Any
+
+from sqlalchemy import select
+
+from service.errors import ConflictError, NotFoundError
+from service.extensions import Database
+from service.store import JobRow, ModelRow, VersionRow
+from service.usecases.common import as_utc, find_model
+
+
+def job_view(job: JobRow, model_name: str, version_number: int | None) -> dict[str, Any]:
+    return {
+        "id": job.id,
+        "model": model_name,
+        "kind": job.kind,
+        "status": job.status,
+        "progress": job.progress,
+        "version": version_number,
+        "error": job.error,
+        "created_at": as_utc(job.created_at),
+        "started_at": as_utc(job.started_at),
+        "finished_at": as_utc(job.finished_at),
+    }
+
+
+def request_retrain(db: Database, name: str, *, warm_start: bool) -> dict[str, Any]:
+    """Queue a full retrain for a worker. A warm start continues from the
+    active version, so it needs one (ConflictError otherwise)."""
+    with db.write() as session:
+        try:
+            model = find_model(session, name)
+            if warm_start and model.active_version_id is None:
+                raise ConflictError(
+                    f"Model {name!r} has no active version to warm-start from."
+                )
+            job = JobRow(model_id=model.id, kind="retrain", status="queued",
+                         params={"warm_start": warm_start}, attempts=0)
+            session.add(job)
+            session.commit()
+        except Exception:
+            session.rollback()
+            raise
+        return job_view(job, model.name, None)
+
+
+def get_job(db: Database, job_id: int) -> dict[str, Any]:
+    with db.read() as session:
+        row = session.execute(
+            select(JobRow, ModelRow.name, VersionRow.number)
+            .join(ModelRow, ModelRow.id == JobRow.model_id)
+            .outerjoin(VersionRow, VersionRow.id == JobRow.version_id)
+            .where(JobRow.id == job_id)
+        ).first()
+        if row is None:
+            raise NotFoundError(f"There is no job {job_id}.")
+        job, model_name, number = row
+        return job_view(job, model_name, number)

@@ -1,0 +1,173 @@
+"""Use case: ingest a batch of labelled records, all or nothing.
+
+Order of work: read the model's spec, validate every record (no lock held),
+then one short write transaction that locks the model row, drops keys already
+stored, hands out sequence numbers, inserts the rest in one executemany and
+bumps the model's counters. Taking the model lock *before* sequence numbers
+are handed out means one model's records commit in sequence order
+(ARCHITECTURE.md invariant 1): the trainer can never see seq n+1 committed
+while seq n may still commit.
+"""
+
+from __future__ import annotations
+
+import hashlib
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+from marshmallow import ValidationError
+from sqlalchemy import func, insert, select, text, update
+from sqlalchemy.orm import Session, sessionmaker
+
+from service.errors import InvalidInputError, TooLargeError
+from service.problems import flatten_messages
+from service.schemas.records import record_schema
+from service.store import ModelRow, RecordRow, utcnow
+from service.usecases.common import find_model
+
+KEY_CHUNK = 500  # keys per IN (...) lookup: well under every backend's parameter limit
+_SPLIT_SCALE = float(2**64)
+
+
+@dataclass(frozen=True)
+class IngestResult:
+    accepted: int
+    duplicates: int
+
+
+def ingest_records(
+    sessions: sessionmaker[Session] | Session,
+    model_name: str,
+    records: Sequence[Any],
+    *,
+    max_records: int | None = None,
+) -> IngestResult:
+    """Store ``records`` (the JSON shape of API.md) for ``model_name``.
+
+    ``sessions`` is a *write* session factory, or a session the caller made
+    from one; this function commits (or rolls back and re-raises) either way.
+    A record whose key is already stored, or repeats an earlier key in the
+    batch, counts as a duplicate and changes nothing. Raises NotFoundError,
+    TooLargeError, or InvalidInputError naming every bad field.
+    """
+    if not isinstance(records, list | tuple) or not records:
+        raise InvalidInputError(
+            "No records to store.", errors={"records": ["At least one record is required."]}
+        )
+    if max_records is not None and len(records) > max_records:
+        raise TooLargeError(f"At most {max_records} records per request; got {len(records)}.")
+    session = sessions() if isinstance(sessions, sessionmaker) else sessions
+    try:
+        model = find_model(session, model_name)
+        spec, model_id = model.spec, model.id
+        session.commit()  # validation below holds no lock
+        valid = validate_records(spec, records)
+        locked = find_model(session, model_name, lock=True)
+        if locked.id != model_id or locked.spec != spec:  # replaced meanwhile
+            spec, valid = locked.spec, validate_records(locked.spec, records)
+        result = _store(session, locked, valid)
+        session.commit()
+        return result
+    except Exception:
+        session.rollback()
+        raise
+    finally:
+        if isinstance(sessions, sessionmaker):
+            session.close()
+
+
+def validate_records(spec: Mapping[str, Any], records: Sequence[Any]) -> list[dict[str, Any]]:
+    """The records loaded by the model's schema, or InvalidInputError naming
+    every bad field as ``records.<i>.<field>``."""
+    try:
+        loaded: list[dict[str, Any]] = record_schema(spec).load(records, many=True)
+    except ValidationError as exc:
+        raise InvalidInputError(
+            "Some records are invalid; none was stored.",
+            errors=flatten_messages(exc.messages, "records"),
+        ) from exc
+    return loaded
+
+
+def split_of(model_id: int, key: str | None, seq: int, holdout_fraction: float) -> str:
+    """``train`` or ``holdout``, fixed by the record's key (or its sequence).
+
+    The first 8 bytes of SHA-256 as a fraction of 2^64 are uniform on [0, 1),
+    so the holdout share converges on ``holdout_fraction``; the model id in
+    the hashed text makes the split differ between models sharing keys.
+    """
+    name = f"{model_id}:{key}" if key is not None else f"{model_id}#{seq}"
+    digest = hashlib.sha256(name.encode("utf-8")).digest()
+    return "holdout" if int.from_bytes(digest[:8], "big") / _SPLIT_SCALE < holdout_fraction \
+        else "train"
+
+
+def _store(session: Session, model: ModelRow, valid: list[dict[str, Any]]) -> IngestResult:
+    fresh, duplicates = _drop_duplicates(session, model.id, valid)
+    if not fresh:
+        return IngestResult(accepted=0, duplicates=duplicates)
+    seqs = _allocate_seqs(session, len(fresh))
+    fraction = float(model.spec["training"]["holdout_fraction"])
+    now = utcnow()
+    rows = []
+    holdout = 0
+    for seq, record in zip(seqs, fresh, strict=True):
+        key = record.get("key")
+        split = split_of(model.id, key, seq, fraction)
+        holdout += split == "holdout"
+        rows.append({"seq": seq, "model_id": model.id, "key": key,
+                     "features": record["features"], "label": record["label"],
+                     "split": split, "received_at": now})
+    session.execute(insert(RecordRow.__table__), rows)  # one executemany
+    session.execute(
+        update(ModelRow)
+        .where(ModelRow.id == model.id)
+        .values(
+            records_train=ModelRow.records_train + (len(rows) - holdout),
+            records_holdout=ModelRow.records_holdout + holdout,
+        )
+        .execution_options(synchronize_session=False)
+    )
+    return IngestResult(accepted=len(rows), duplicates=duplicates)
+
+
+def _drop_duplicates(
+    session: Session, model_id: int, valid: list[dict[str, Any]]
+) -> tuple[list[dict[str, Any]], int]:
+    keys = [r["key"] for r in valid if "key" in r]
+    if not keys:
+        return valid, 0
+    stored: set[str] = set()
+    unique = list(dict.fromkeys(keys))
+    for start in range(0, len(unique), KEY_CHUNK):
+        chunk = unique[start:start + KEY_CHUNK]
+        stored.update(
+            session.scalars(
+                select(RecordRow.key).where(RecordRow.model_id == model_id,
+                                            RecordRow.key.in_(chunk))
+            )
+        )
+    fresh = []
+    for record in valid:
+        key = record.get("key")
+        if key is not None:
+            if key in stored:
+                continue
+            stored.add(key)  # a later repeat in this batch is a duplicate too
+        fresh.append(record)
+    return fresh, len(valid) - len(fresh)
+
+
+def _allocate_seqs(session: Session, count: int) -> list[int]:
+    """``count`` increasing sequence numbers, taken while the model lock is held."""
+    if session.get_bind().dialect.name == "postgresql":
+        seqs = session.scalars(
+            text("SELECT nextval(pg_get_serial_sequence('records', 'seq')) "
+                 "FROM generate_series(1, :n)"),
+            {"n": count},
+        ).all()
+        return sorted(seqs)
+    # SQLite: the write transaction holds the database lock, so max + 1 is ours.
+    top = session.scalar(select(func.max(RecordRow.seq))) or 0
+    return list(range(top + 1, top + 1 + count))

@@ -1,0 +1,90 @@
+"""Use cases for versions: list, show, promote (also the rollback path).
+
+Versions are immutable; their snapshots are never loaded here (they can be
+large), only the columns an answer shows.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+from sqlalchemy import Row, select
+from sqlalchemy.orm import Session, aliased
+
+from service import promotion
+from service.errors import NotFoundError
+from service.extensions import Database
+from service.store import VersionRow
+from service.usecases.common import as_utc, find_model
+
+_Parent = aliased(VersionRow)
+_COLUMNS = (
+    VersionRow.id, VersionRow.number, VersionRow.origin, VersionRow.status,
+    VersionRow.records_seen, VersionRow.cursor, VersionRow.metrics,
+    VersionRow.created_at, VersionRow.promoted_at, _Parent.number.label("parent"),
+)
+
+
+def version_view(row: Row[Any]) -> dict[str, Any]:
+    return {
+        "number": row.number,
+        "origin": row.origin,
+        "status": row.status,
+        "records_seen": row.records_seen,
+        "cursor": row.cursor,
+        "metrics": row.metrics,
+        "created_at": as_utc(row.created_at),
+        "promoted_at": as_utc(row.promoted_at),
+        "parent": row.parent,
+    }
+
+
+def _select_versions(model_id: int) -> Any:
+    return (
+        select(*_COLUMNS)
+        .outerjoin(_Parent, _Parent.id == VersionRow.parent_id)
+        .where(VersionRow.model_id == model_id)
+    )
+
+
+def list_versions(db: Database, name: str) -> list[dict[str, Any]]:
+    with db.read() as session:
+        model = find_model(session, name)
+        rows = session.execute(_select_versions(model.id).order_by(VersionRow.number))
+        return [version_view(row) for row in rows]
+
+
+def get_version(db: Database, name: str, number: int) -> dict[str, Any]:
+    with db.read() as session:
+        model = find_model(session, name)
+        return _one(session, model.id, name, number)
+
+
+def promote_version(db: Database, name: str, number: int) -> dict[str, Any]:
+    """Make version ``number`` the active one (idempotent for the active one)."""
+    with db.write() as session:
+        try:
+            model = find_model(session, name, lock=True)
+            version = session.scalars(
+                select(VersionRow).where(
+                    VersionRow.model_id == model.id, VersionRow.number == number
+                )
+            ).first()
+            if version is None:
+                raise NotFoundError(f"Model {name!r} has no version {number}.")
+            if model.active_version_id != version.id:
+                promotion.promote(session, model, version)
+            session.commit()
+        except Exception:
+            session.rollback()
+            raise
+        return _one(session, model.id, name, number)
+
+
+def _one(session: Session, model_id: int, name: str, number: int) -> dict[str, Any]:
+    row = session.execute(
+        _select_versions(model_id).where(VersionRow.number == number)
+    ).first()
+    if row is None:
+        raise NotFoundError(f"Model {name!r} has no version {number}.")
+    return version_view(row)
