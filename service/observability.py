@@ -102,8 +102,7 @@ def _start_request() -> None:
 
 def metrics_view() -> Response:
     """Prometheus text exposition of this server's metrics (all workers)."""
-    return Response(render_metrics(), mimetype=CONTENT_TYPE_LATEST.split(";")[0],
-                    headers={"Content-Type": CONTENT_TYPE_LATEST})
+    return Response(render_metrics(), content_type=CONTENT_TYPE_LATEST)
 
 
 def render_metrics() -> bytes:
