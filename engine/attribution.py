@@ -1,0 +1,289 @@
+"""Per-field attributions of one prediction, by backpropagation to the inputs.
+
+The explained output is the probability of one class (a binary net's single
+logistic unit gives p(class 1); class 0 is 1 - p, so its gradient is the
+negative) or, for regression, the value in raw target units. Each method
+returns one number per declared field; a categorical field's one-hot columns
+are summed.
+
+- `gradient`: d output / d raw feature, in output units per feature unit
+  (Simonyan, Vedaldi & Zisserman 2014). A categorical or boolean field has no
+  derivative in its own units, so it gets the first-order change from the
+  baseline to its value: the sum over its columns of gradient * (x - baseline).
+- `gradient_times_input`: gradient * (x - baseline) (Shrikumar et al. 2016).
+- `integrated_gradients`: (x - baseline) times the path integral of the
+  gradient along the straight line from baseline to x, by the trapezoid rule
+  over `steps` intervals, all points in one batched backward pass
+  (Sundararajan, Taly & Yan 2017). `completeness_gap` is
+  |sum(attributions) - (f(x) - f(baseline))|.
+- `smoothgrad`: the mean gradient at `samples` points x + N(0, noise^2) (noise in
+  encoded units, i.e. standard deviations of a numeric field), reported like
+  `gradient` (Smilkov et al. 2017).
+"""
+
+from __future__ import annotations
+
+import functools
+import math
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+from numpy.typing import NDArray
+
+from .activations import ACTIVATE, DERIVATIVE
+from .encoding import Encoder
+from .errors import InvalidInputError
+from .network import Network
+
+METHODS = ("integrated_gradients", "gradient", "gradient_times_input", "smoothgrad")
+MAX_STEPS = 4096
+MAX_SAMPLES = 4096
+
+
+@functools.lru_cache(maxsize=32)
+def _trapezoid(steps: int) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    """Path positions alpha_0..alpha_steps on [0, 1] and their trapezoid weights
+    (read-only, cached: np.linspace alone costs more than a small backward pass)."""
+    alphas = np.linspace(0.0, 1.0, steps + 1)
+    weights = np.full(steps + 1, 1.0 / steps)
+    weights[0] = weights[-1] = 0.5 / steps
+    alphas.flags.writeable = weights.flags.writeable = False
+    return alphas, weights
+
+
+def _head_slopes(output: str, z: NDArray[np.float64], unit: int,
+                 m: int) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    """Head output of `unit` for every row (n,), and d output / d logits (m, k)
+    for the first m rows."""
+    if output == "softmax":
+        p = z - z.max(axis=1, keepdims=True)  # exp never overflows
+        np.exp(p, out=p)
+        p /= p.sum(axis=1, keepdims=True)
+        value = p[:, unit]
+        # d p_u / d z_j = p_u (delta_uj - p_j)
+        slopes = p[:m] * -value[:m, None]
+        slopes[:, unit] += value[:m]
+        return value, slopes
+    slopes = np.zeros((m, z.shape[1]))
+    if output == "identity":
+        slopes[:, unit] = 1.0
+        return z[:, unit], slopes
+    # Logistic as (1 + tanh(z / 2)) / 2: no overflow; d p / d z = p (1 - p).
+    p = z[:, unit] * 0.5
+    np.tanh(p, out=p)
+    p *= 0.5
+    p += 0.5
+    slopes[:, unit] = p[:m] * (1.0 - p[:m])
+    return p, slopes
+
+
+def output_and_input_gradient(
+    network: Network, X: NDArray[np.float64], unit: int, m: int,
+    row_weights: NDArray[np.float64] | None = None,
+) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    """Head output `unit` at every row of X (n,) and, by one backward pass from
+    that output down to the inputs, its gradient at the first m rows (m, n_inputs),
+    or their `row_weights`-weighted sum (n_inputs,) when weights (m,) are given.
+
+    The same backpropagation as Network.input_gradient (a test holds them equal),
+    kept here because one pass must give both the values and the gradients, and
+    because the weighted sum can be taken before the last product.
+    """
+    activate = ACTIVATE[network.activation]
+    derivative = DERIVATIVE[network.activation]
+    weights, biases = network.weights, network.biases
+    last = len(weights) - 1
+    hidden: list[NDArray[np.float64]] = []
+    a = X
+    for i in range(last):
+        a = np.dot(a, weights[i])
+        a += biases[i]
+        activate(a)
+        hidden.append(a)
+    z = np.dot(a, weights[last])
+    z += biases[last]
+    value, slopes = _head_slopes(network.output, z, unit, m)
+    g = np.dot(slopes, weights[last].T)
+    for i in range(last, 0, -1):
+        h = hidden[i - 1][:m]
+        g *= derivative(h, np.empty_like(h))
+        if i == 1 and row_weights is not None:
+            g = np.dot(row_weights, g)  # sum the rows before, not after, the last product
+        g = np.dot(g, weights[i - 1].T)
+    if last == 0 and row_weights is not None:
+        g = np.dot(row_weights, g)
+    return value, g
+
+
+def gradient_at(network: Network, x: NDArray[np.float64], baseline: NDArray[np.float64],
+                unit: int) -> tuple[float, float, NDArray[np.float64]]:
+    """f(x), f(baseline) and d f / d x (n_inputs,) for head output `unit`: the
+    one-record case of `output_and_input_gradient`, trimmed for latency (both rows
+    go forward together, only x comes back; a single-unit head in Python floats)."""
+    activate = ACTIVATE[network.activation]
+    derivative = DERIVATIVE[network.activation]
+    weights, biases = network.weights, network.biases
+    last = len(weights) - 1
+    hidden: list[NDArray[np.float64]] = []
+    a = np.concatenate((x, baseline)).reshape(2, -1)
+    for i in range(last):
+        a = np.dot(a, weights[i])
+        a += biases[i]
+        activate(a)
+        hidden.append(a[0])
+    if network.output == "softmax":
+        p = np.dot(a, weights[last])
+        p += biases[last]
+        p -= p.max(axis=1, keepdims=True)
+        np.exp(p, out=p)
+        p /= p.sum(axis=1, keepdims=True)
+        value, baseline_value = p[:, unit].tolist()
+        slopes = p[0] * -value  # d p_u / d z_j = p_u (delta_uj - p_j)
+        slopes[unit] += value
+        g = np.dot(weights[last], slopes)
+    else:
+        column = weights[last][:, unit]
+        bias = float(biases[last][unit])
+        value, baseline_value = (z + bias for z in np.dot(a, column).tolist())
+        slope = 1.0
+        if network.output == "logistic":
+            value = 0.5 + 0.5 * math.tanh(0.5 * value)
+            baseline_value = 0.5 + 0.5 * math.tanh(0.5 * baseline_value)
+            slope = value * (1.0 - value)
+        g = column * slope
+    for i in range(last, 0, -1):
+        h = hidden[i - 1]
+        g *= derivative(h, np.empty_like(h))
+        g = np.dot(weights[i - 1], g)
+    return value, baseline_value, g
+
+
+@dataclass(frozen=True)
+class Explanation:
+    """One explained prediction; every number in the output's units."""
+
+    method: str
+    output: Any
+    attributions: dict[str, float]
+    baseline: dict[str, Any]
+    value: float
+    baseline_value: float
+    completeness_gap: float | None
+
+    def as_dict(self) -> dict[str, Any]:
+        """The JSON-able form the API answers with."""
+        return {"method": self.method, "output": self.output,
+                "attributions": self.attributions, "baseline": self.baseline,
+                "value": self.value, "baseline_value": self.baseline_value,
+                "completeness_gap": self.completeness_gap}
+
+
+def _row(name: str, values: Any, width: int) -> NDArray[np.float64]:
+    row = values
+    if type(row) is not np.ndarray or row.dtype != np.float64 or row.ndim != 1:
+        row = np.asarray(values, dtype=np.float64).reshape(-1)
+    if row.shape != (width,):
+        raise InvalidInputError(f"{name} must hold {width} encoded values", field=name)
+    # NaN and inf times zero are NaN: one cheap product checks every value.
+    if not math.isfinite(float(np.dot(row, np.zeros(width)))):
+        raise InvalidInputError(f"{name} must be finite", field=name)
+    return row
+
+
+def _check_count(name: str, value: int, largest: int) -> None:
+    if isinstance(value, bool) or not isinstance(value, int) or not 1 <= value <= largest:
+        raise InvalidInputError(f"{name} must be an integer from 1 to {largest}", field=name)
+
+
+def explain(
+    network: Network,
+    encoder: Encoder,
+    x: NDArray[np.float64],
+    *,
+    method: str,
+    output_index: int,
+    baseline: NDArray[np.float64],
+    steps: int = 64,
+    samples: int = 32,
+    noise: float = 0.15,
+    seed: int = 0,
+) -> Explanation:
+    """Explain the network's output at one encoded row x (n_inputs,) relative to
+    an encoded baseline row (n_inputs,); `output_index` is a class index (0 for
+    regression)."""
+    if method not in METHODS:
+        raise InvalidInputError(f"method must be one of {METHODS}, got {method!r}",
+                                field="explain")
+    n_inputs = encoder.n_inputs
+    if network.sizes[0] != n_inputs or network.sizes[-1] != encoder.n_outputs:
+        raise InvalidInputError(f"network {network.sizes} does not fit the encoder's "
+                                f"{n_inputs} inputs and {encoder.n_outputs} outputs")
+    x = _row("x", x, n_inputs)
+    baseline = _row("baseline", baseline, n_inputs)
+    regression = encoder.task == "regression"
+    n_choices = 1 if regression else len(encoder.classes)
+    if isinstance(output_index, bool) or not isinstance(output_index, int | np.integer) \
+            or not 0 <= output_index < n_choices:
+        raise InvalidInputError(f"output index {output_index!r} is outside 0..{n_choices - 1}",
+                                field="output")
+    # A binary head has one unit, p(class 1); class 0 is 1 - p.
+    complement = encoder.task == "binary" and output_index == 0
+    unit = 0 if encoder.task == "binary" else int(output_index)
+    # d output / d unit: -1 for a complement, the target scale for raw regression units.
+    slope = -1.0 if complement else (encoder.target_scale if regression else 1.0)
+    delta = x - baseline
+
+    if method == "integrated_gradients":
+        _check_count("steps", steps, MAX_STEPS)
+        alphas, trapezoid = _trapezoid(steps)
+        path = baseline + alphas[:, None] * delta  # row 0 the baseline, row -1 x
+        values, gradient = output_and_input_gradient(network, path, unit, steps + 1, trapezoid)
+        value, baseline_value = float(values[-1]), float(values[0])
+        columns = gradient * delta
+    else:
+        if method == "smoothgrad":
+            _check_count("samples", samples, MAX_SAMPLES)
+            if not math.isfinite(noise) or noise < 0.0:
+                raise InvalidInputError("noise must be a finite number >= 0", field="noise")
+            rng = np.random.default_rng(seed)
+            rows = np.empty((samples + 2, n_inputs))
+            rng.standard_normal(out=rows[:samples])
+            rows[:samples] *= noise
+            rows[:samples] += x
+            rows[-2], rows[-1] = x, baseline
+            mean = np.full(samples, 1.0 / samples)
+            values, gradient = output_and_input_gradient(network, rows, unit, samples, mean)
+            value, baseline_value = values[-2:].tolist()
+        else:
+            value, baseline_value, gradient = gradient_at(network, x, baseline, unit)
+        if method == "gradient_times_input":
+            columns = gradient * delta
+        elif encoder.all_numeric:
+            columns = gradient / encoder.scale  # per raw unit: encoded = (raw - center) / scale
+        else:
+            # Numeric columns per raw unit; one-hot and boolean columns the
+            # first-order change from the baseline to x.
+            columns = np.where(encoder.column_numeric, gradient / encoder.scale,
+                               gradient * delta)
+
+    if encoder.n_inputs != len(encoder.fields):
+        columns = encoder.group(columns)
+    attributions = columns * slope
+    if complement:
+        value, baseline_value = 1.0 - value, 1.0 - baseline_value
+    elif regression:
+        value = value * encoder.target_scale + encoder.target_center
+        baseline_value = baseline_value * encoder.target_scale + encoder.target_center
+    gap = None
+    if method == "integrated_gradients":
+        gap = abs(float(attributions.sum()) - (value - baseline_value))
+    return Explanation(
+        method=method,
+        output=None if regression else encoder.label_of(int(output_index)),
+        attributions=dict(zip(encoder.fields, attributions.tolist(), strict=True)),
+        baseline=encoder.raw_baseline(baseline),
+        value=value,
+        baseline_value=baseline_value,
+        completeness_gap=gap,
+    )
