@@ -4,3 +4,36 @@ No I/O, no globals, no environment: everything comes in as arguments (random
 state as a seed) and goes out as arrays or bytes. It imports neither Flask nor
 SQLAlchemy and is usable and testable on its own; service/ decides where bytes live.
 """
+
+from engine.attribution import Explanation, explain
+from engine.batch import FitReport
+from engine.encoding import Encoder
+from engine.errors import (
+    EngineError,
+    InvalidInputError,
+    NonFiniteError,
+    SnapshotError,
+    TrainingCancelled,
+)
+from engine.learner import Learner
+from engine.metrics import Prequential, batch_metrics
+from engine.network import Network
+from engine.spec import apply_defaults, spec_hash
+
+__all__ = [
+    "EngineError",
+    "Encoder",
+    "Explanation",
+    "FitReport",
+    "InvalidInputError",
+    "Learner",
+    "Network",
+    "NonFiniteError",
+    "Prequential",
+    "SnapshotError",
+    "TrainingCancelled",
+    "apply_defaults",
+    "batch_metrics",
+    "explain",
+    "spec_hash",
+]

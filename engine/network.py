@@ -55,15 +55,25 @@ class Network:
                 raise InvalidInputError(f"expected {n} parameters, got shape {params.shape}",
                                         field="params")
             self.params = np.array(params, dtype=np.float64)  # own copy, contiguous
-        self.layers, self.weights, self.biases = [], [], []
-        offset = 0
-        for fan_in, fan_out in zip(sizes[:-1], sizes[1:], strict=True):
-            block = self.params[offset : offset + (fan_in + 1) * fan_out]
-            layer = block.reshape(fan_in + 1, fan_out)
-            self.layers.append(layer)
-            self.weights.append(layer[:-1])
-            self.biases.append(layer[-1])
-            offset += block.size
+        self.layers = self._views(self.params)
+        self.weights = [layer[:-1] for layer in self.layers]
+        self.biases = [layer[-1] for layer in self.layers]
+
+    def bind_(self, storage: Array) -> None:
+        """Move the parameters into `storage` (1-D float64, right size) and rebuild the views.
+
+        Lets an optimizer keep the parameters in a row of its own buffer; views taken
+        from this network before the call no longer track it.
+        """
+        if storage.shape != self.params.shape or storage.dtype != np.float64 \
+                or not storage.flags.c_contiguous:
+            raise InvalidInputError("storage must be a contiguous float64 vector of the "
+                                    "parameter count", field="params")
+        storage[...] = self.params
+        self.params = storage
+        self.layers = self._views(storage)
+        self.weights = [layer[:-1] for layer in self.layers]
+        self.biases = [layer[-1] for layer in self.layers]
 
     @staticmethod
     def parameter_count(sizes: Sequence[int]) -> int:
@@ -159,10 +169,12 @@ class Network:
         return d
 
     def _views(self, flat: Array) -> list[Array]:
+        """Per-layer (fan_in + 1, fan_out) views of a flat vector laid out like params."""
         views, offset = [], 0
-        for layer in self.layers:
-            views.append(flat[offset : offset + layer.size].reshape(layer.shape))
-            offset += layer.size
+        for fan_in, fan_out in zip(self.sizes[:-1], self.sizes[1:], strict=True):
+            size = (fan_in + 1) * fan_out
+            views.append(flat[offset : offset + size].reshape(fan_in + 1, fan_out))
+            offset += size
         return views
 
     def loss_gradient(self, X: Array, y: NDArray[np.generic], loss: str,

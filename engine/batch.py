@@ -1,0 +1,122 @@
+"""Batch training: mini-batch epochs, a validation split, early stopping, cancel hook.
+
+Everything random (the validation split, the order of each epoch) comes from one
+Generator made from the spec's seed, so a fit is reproducible. Early stopping
+watches the mean validation loss (the training loss when there is no
+validation split) and restores the parameters of the best epoch.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+from numpy.typing import NDArray
+
+from engine import heads
+from engine.errors import NonFiniteError, TrainingCancelled
+from engine.network import Network
+from engine.optimizers import Optimizer
+
+Array = NDArray[np.float64]
+Progress = Callable[[int, float, float | None], None]
+# An epoch counts as an improvement when it lowers the monitored loss by this fraction.
+MIN_IMPROVEMENT = 1e-4
+
+
+@dataclass(frozen=True)
+class FitReport:
+    """What a batch fit did. Losses are mean per-example losses (training: over the
+    epoch's batches; validation: on the held-back rows, None without a split)."""
+
+    epochs: int
+    best_epoch: int
+    train_loss: float
+    validation_loss: float | None
+    stopped_early: bool
+    n_train: int
+    n_validation: int
+    history: list[tuple[int, float, float | None]] = field(default_factory=list)
+
+
+def split_validation(n: int, fraction: float,
+                     rng: np.random.Generator) -> tuple[NDArray[np.intp], NDArray[np.intp]]:
+    """Row indices (train, validation); the validation part holds round(fraction * n) rows,
+    none when that leaves fewer than 2 on either side."""
+    order = rng.permutation(n)
+    n_val = int(round(fraction * n))
+    if n_val < 2 or n - n_val < 2:
+        return order, order[:0]
+    return np.sort(order[n_val:]), np.sort(order[:n_val])
+
+
+def mean_loss(network: Network, loss: str, X: Array, y: NDArray[Any]) -> float:
+    """Mean per-example loss of the network on (X, y)."""
+    z = network.hidden_and_logits(X)[-1]
+    return float(heads.losses(network.output, loss, z, y).mean())
+
+
+def fit(network: Network, optimizer: Optimizer, loss: str, X: Array, y: NDArray[Any],
+        training: Mapping[str, Any], *, progress: Progress | None = None,
+        cancel: Callable[[], bool] | None = None) -> FitReport:
+    """Train `network` (bound to `optimizer`'s parameters) on X (n, d), y (n,) in place.
+
+    Raises TrainingCancelled when cancel() returns True (checked before every epoch)
+    and NonFiniteError if a step would be non-finite; either way the network holds
+    the parameters it had when the error came (callers fit on copies).
+    """
+    rng = np.random.default_rng(int(training["seed"]))
+    train, val = split_validation(X.shape[0], float(training["validation_fraction"]), rng)
+    X_train, y_train = X[train], y[train]
+    X_val, y_val = X[val], y[val]
+    batch_size = int(training["batch_size"])
+    patience = int(training["patience"])
+    n = X_train.shape[0]
+    best = math.inf
+    best_epoch = 0
+    best_params = network.params.copy()
+    history: list[tuple[int, float, float | None]] = []
+    stale = 0
+    epoch = 0
+    train_loss = math.nan
+    val_loss: float | None = None
+    for epoch in range(1, int(training["max_epochs"]) + 1):
+        if cancel is not None and cancel():
+            raise TrainingCancelled(f"cancelled before epoch {epoch}")
+        order = rng.permutation(n)
+        total = 0.0
+        for start in range(0, n, batch_size):
+            rows = order[start : start + batch_size]
+            with np.errstate(over="ignore", invalid="ignore"):  # raised below instead
+                batch_loss, _ = network.loss_gradient(X_train[rows], y_train[rows], loss,
+                                                      out=optimizer.grad)
+                if not math.isfinite(batch_loss):
+                    raise NonFiniteError(f"epoch {epoch}: the loss is not finite")
+                optimizer.step_()
+            total += batch_loss * rows.size
+        train_loss = total / n
+        val_loss = mean_loss(network, loss, X_val, y_val) if val.size else None
+        monitored = train_loss if val_loss is None else val_loss
+        if not math.isfinite(monitored):
+            raise NonFiniteError(f"epoch {epoch}: the monitored loss is not finite")
+        history.append((epoch, train_loss, val_loss))
+        if progress is not None:
+            progress(epoch, train_loss, val_loss)
+        # Losses are >= 0: a relative threshold suits every scale of target.
+        if best == math.inf or monitored < best * (1.0 - MIN_IMPROVEMENT):
+            best, best_epoch, stale = monitored, epoch, 0
+            best_params[...] = network.params
+        else:
+            stale += 1
+            if stale >= patience:
+                break
+    network.params[...] = best_params
+    return FitReport(
+        epochs=epoch, best_epoch=best_epoch, train_loss=train_loss,
+        validation_loss=None if val_loss is None else best,
+        stopped_early=stale >= patience, n_train=n, n_validation=int(val.size),
+        history=history,
+    )
