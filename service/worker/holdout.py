@@ -1,0 +1,66 @@
+"""The holdout window a lineage evaluates its versions on.
+
+Versions are judged on the latest ``capacity`` holdout records at or before
+their cursor (default 10,000: a bounded window, so evaluation costs the same
+after a million records as after ten thousand, and it follows the newest data).
+The window is kept encoded in memory and filled from the stream the worker
+reads anyway, so a checkpoint's evaluation reads nothing from the database.
+Its encoding belongs to one encoder (one lineage's frozen statistics).
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+from numpy.typing import NDArray
+
+
+class HoldoutWindow:
+    """A ring buffer of the latest encoded holdout rows (mutated by ``extend``)."""
+
+    def __init__(self, capacity: int) -> None:
+        self.capacity = capacity
+        self._X: NDArray[np.float64] | None = None
+        self._Y: NDArray[Any] | None = None
+        self._start = 0  # index of the oldest row once the buffer is full
+        self.size = 0
+
+    def extend(self, X: NDArray[np.float64], Y: NDArray[Any]) -> None:
+        """Append rows (in sequence order), dropping the oldest past capacity."""
+        if len(X) == 0 or self.capacity == 0:
+            return
+        if self._X is None or self._Y is None:
+            # Preallocated once at the full size: appending never reallocates.
+            self._X = np.empty((self.capacity, X.shape[1]), dtype=X.dtype)
+            self._Y = np.empty((self.capacity, *Y.shape[1:]), dtype=Y.dtype)
+        if len(X) > self.capacity:
+            X, Y = X[-self.capacity :], Y[-self.capacity :]
+        end = (self._start + self.size) % self.capacity
+        first = min(len(X), self.capacity - end)  # up to the end of the buffer,
+        self._X[end : end + first] = X[:first]
+        self._Y[end : end + first] = Y[:first]
+        rest = len(X) - first  # then from its start (len(X) <= capacity)
+        self._X[:rest] = X[first:]
+        self._Y[:rest] = Y[first:]
+        grown = self.size + len(X)
+        if grown > self.capacity:
+            self._start = (self._start + grown - self.capacity) % self.capacity
+        self.size = min(grown, self.capacity)
+
+    def arrays(self) -> tuple[NDArray[np.float64], NDArray[Any]]:
+        """The rows in sequence order (a copy once the ring has wrapped)."""
+        if self._X is None or self._Y is None or self.size == 0:
+            return np.empty((0, 0)), np.empty(0)
+        if self._start == 0:
+            return self._X[: self.size], self._Y[: self.size]
+        order = np.r_[self._start : self.capacity, 0 : self._start]
+        return self._X[order], self._Y[order]
+
+
+def evaluate(learner: Any, window: HoldoutWindow) -> dict[str, Any]:
+    """The learner's holdout metrics on the window ({} when it is empty)."""
+    if window.size == 0:
+        return {}
+    X, Y = window.arrays()
+    return {key: float(value) for key, value in learner.evaluate(X, Y).items()}
