@@ -180,8 +180,8 @@ class Explanation:
 
 
 def _row(name: str, values: Any, width: int) -> NDArray[np.float64]:
-    row = values
-    if type(row) is not np.ndarray or row.dtype != np.float64 or row.ndim != 1:
+    row: NDArray[np.float64] = values
+    if type(values) is not np.ndarray or values.dtype != np.float64 or values.ndim != 1:
         row = np.asarray(values, dtype=np.float64).reshape(-1)
     if row.shape != (width,):
         raise InvalidInputError(f"{name} must hold {width} encoded values", field=name)

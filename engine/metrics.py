@@ -98,21 +98,20 @@ def batch_metrics(task: str, y: NDArray[Any], scores: NDArray[np.float64]) -> di
         residual = values - scores[:, 0]
         y_m2 = float(np.sum((values - values.mean()) ** 2)) if n else 0.0
         return _regression(n, float(np.abs(residual).sum()), float(residual @ residual), y_m2)
+    if task not in ("binary", "multiclass"):
+        raise InvalidInputError(f"unknown task {task!r}", field="task")
     labels = y.astype(np.int64)
+    k = 2 if task == "binary" else scores.shape[1]
+    if n and (labels.min() < 0 or labels.max() >= k):
+        raise InvalidInputError("a class index is outside the classes", field="label")
     if task == "binary":
         p = scores[:, 0]
         predicted = (p > 0.5).astype(np.int64)
-        k = 2
         # The probability given to the true class, clipped as scikit-learn does.
         p_true = np.clip(np.where(labels == 1, p, 1.0 - p), EPS, 1.0 - EPS)
-    elif task == "multiclass":
-        k = scores.shape[1]
+    else:
         predicted = np.argmax(scores, axis=1) if n else labels
         p_true = np.clip(scores[np.arange(n), labels], EPS, 1.0 - EPS)
-    else:
-        raise InvalidInputError(f"unknown task {task!r}", field="task")
-    if n and (labels.min() < 0 or labels.max() >= k):
-        raise InvalidInputError("a class index is outside the classes", field="label")
     confusion = np.bincount(labels * k + predicted, minlength=k * k).reshape(k, k)
     result = _classification(confusion, float(-np.log(p_true).sum()))
     if task == "binary":
