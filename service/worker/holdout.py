@@ -10,6 +10,8 @@ Its encoding belongs to one encoder (one lineage's frozen statistics).
 
 from __future__ import annotations
 
+import math
+from collections.abc import Mapping
 from typing import Any
 
 import numpy as np
@@ -58,9 +60,19 @@ class HoldoutWindow:
         return self._X[order], self._Y[order]
 
 
-def evaluate(learner: Any, window: HoldoutWindow) -> dict[str, Any]:
+def evaluate(learner: Any, window: HoldoutWindow) -> dict[str, float | None]:
     """The learner's holdout metrics on the window ({} when it is empty)."""
     if window.size == 0:
         return {}
     X, Y = window.arrays()
-    return {key: float(value) for key, value in learner.evaluate(X, Y).items()}
+    return json_metrics(learner.evaluate(X, Y))
+
+
+def json_metrics(metrics: Mapping[str, Any]) -> dict[str, float | None]:
+    """Metrics as JSON numbers: an undefined one (NaN, e.g. before any record)
+    becomes null, since JSON has no NaN (RFC 8259)."""
+    plain: dict[str, float | None] = {}
+    for key, value in metrics.items():
+        number = float(value)
+        plain[key] = number if math.isfinite(number) else None
+    return plain

@@ -144,12 +144,13 @@ def advance_cursor(
 def stop_lineage(
     sessions: sessionmaker[Session], model_id: int, worker_id: str, head_id: int | None,
     error: str,
+    check_head: bool = True,
 ) -> None:
     """Record why the lineage stopped (invariant 6); workers skip it until a
     version of another lineage is promoted. The active version is untouched."""
     with sessions() as session, session.begin():
         trainer = lock_trainer(session, model_id)
-        check_owner(trainer, worker_id, head_id)
+        check_owner(trainer, worker_id, head_id if check_head else trainer.head_version_id)
         trainer.error = error
         trainer.leased_by = None
         trainer.lease_expires_at = None

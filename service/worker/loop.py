@@ -1,0 +1,174 @@
+"""The worker process: lease models, step their lineages, run jobs, stop cleanly.
+
+One thread steps every leased lineage a chunk at a time, round robin, and
+renews the leases between chunks (a chunk takes milliseconds, a lease lasts
+seconds). Retrain jobs run one at a time on a second thread (jobs.py /
+retrain.py) so a long retrain does not stall online learning.
+
+Stopping (the ``stop`` event, set on SIGTERM/SIGINT): the current chunk is
+finished, a version is written for every lineage with train records applied
+since its last one, the running job is handed back to the queue, and the
+leases are released so another worker can take over at once.
+"""
+
+from __future__ import annotations
+
+import logging
+import os
+import signal
+import socket
+import threading
+import time
+from collections.abc import Mapping
+from typing import Any
+
+from sqlalchemy import Engine
+from sqlalchemy.orm import Session, sessionmaker
+
+from engine import EngineError
+from service.db import make_engine, make_sessionmaker
+from service.worker.leasing import (
+    claim_trainers,
+    ensure_trainer_rows,
+    release_trainers,
+    renew_trainers,
+)
+from service.worker.online import LineageStopped, OnlineLineage
+from service.worker.retrain import JobRunner
+from service.worker.settings import WorkerSettings
+from service.worker.versions import Fenced, stop_lineage
+
+log = logging.getLogger("keelson.worker")
+
+
+def default_worker_id() -> str:
+    return f"{socket.gethostname()}:{os.getpid()}"
+
+
+def run_worker(
+    config: Mapping[str, Any],
+    stop: threading.Event | None = None,
+    worker_id: str | None = None,
+) -> None:
+    """Run a training worker until ``stop`` is set.
+
+    ``config`` is the service configuration mapping (service/config.py keys;
+    the worker's own keys are listed in service/worker/settings.py). Without a
+    ``stop`` event, SIGTERM and SIGINT stop the worker (main thread only).
+    """
+    settings = WorkerSettings.from_config(config)
+    own_signals = stop is None and threading.current_thread() is threading.main_thread()
+    stop = stop or threading.Event()
+    previous: dict[int, Any] = {}
+    if own_signals:
+        for signum in (signal.SIGTERM, signal.SIGINT):
+            previous[signum] = signal.signal(signum, lambda *_: stop.set())
+    engine = make_engine(settings.database_url)
+    try:
+        Worker(settings, engine, worker_id or default_worker_id(), stop).run()
+    finally:
+        engine.dispose()
+        for signum, handler in previous.items():
+            signal.signal(signum, handler)
+
+
+class Worker:
+    def __init__(self, settings: WorkerSettings, engine: Engine, worker_id: str,
+                 stop: threading.Event) -> None:
+        self.settings = settings
+        self.worker_id = worker_id
+        self.stop = stop
+        self.reads: sessionmaker[Session] = make_sessionmaker(engine)
+        self.writes: sessionmaker[Session] = make_sessionmaker(engine, write=True)
+        self.lineages: dict[int, OnlineLineage] = {}
+        self.jobs = JobRunner(settings, self.reads, self.writes, worker_id, stop)
+        self._next_heartbeat = 0.0
+        self._next_claim = 0.0
+
+    def run(self) -> None:
+        log.info("worker %s started", self.worker_id)
+        try:
+            while not self.stop.is_set():
+                busy = self._tick()
+                if not busy:
+                    self.stop.wait(self.settings.poll_seconds)
+        finally:
+            self._shutdown()
+        log.info("worker %s stopped", self.worker_id)
+
+    def _tick(self) -> bool:
+        now = time.monotonic()
+        try:
+            if now >= self._next_heartbeat:
+                self._heartbeat()
+                self._next_heartbeat = now + self.settings.heartbeat_seconds
+            if now >= self._next_claim:
+                self._claim()
+                self._next_claim = now + self.settings.poll_seconds
+            self.jobs.poll()
+        except Exception:  # the database may be away: keep trying, keep the state
+            log.exception("worker %s: lease bookkeeping failed", self.worker_id)
+            return False
+        busy = False
+        for model_id, lineage in list(self.lineages.items()):
+            if self.stop.is_set():
+                break
+            try:
+                busy = lineage.step() or busy
+            except (Fenced, LineageStopped) as exc:
+                log.warning("model %s: dropped by %s: %s", model_id, self.worker_id, exc)
+                self.lineages.pop(model_id, None)
+            except Exception:
+                # Start again from the last version next time round: nothing
+                # in memory is needed that the database does not hold.
+                log.exception("model %s: step failed; reloading", model_id)
+                self.lineages.pop(model_id, None)
+        return busy
+
+    def _heartbeat(self) -> None:
+        with self.writes() as session, session.begin():
+            held = renew_trainers(session, self.worker_id, self.lineages,
+                                  self.settings.lease_seconds)
+        for model_id in list(self.lineages):
+            lineage = self.lineages[model_id]
+            if model_id not in held:
+                log.warning("model %s: lease lost by %s", model_id, self.worker_id)
+                self.lineages.pop(model_id)
+            elif held[model_id] != lineage.head_id:
+                # Another lineage was promoted (a retrain): restart from the new head.
+                log.info("model %s: head moved; reloading", model_id)
+                self.lineages.pop(model_id)
+
+    def _claim(self) -> None:
+        limit = self.settings.max_models
+        room = 1 if limit is None else min(1, limit - len(self.lineages))
+        with self.writes() as session, session.begin():
+            ensure_trainer_rows(session)
+            claimed = claim_trainers(session, self.worker_id, self.settings.lease_seconds,
+                                     room, exclude=self.lineages)
+        for model_id in claimed:
+            log.info("model %s: leased by %s", model_id, self.worker_id)
+            try:
+                self.lineages[model_id] = OnlineLineage(
+                    model_id, self.worker_id, self.settings, self.reads, self.writes
+                )
+            except EngineError as exc:  # the head's snapshot cannot be loaded
+                stop_lineage(self.writes, model_id, self.worker_id, None,
+                             f"the head version cannot be loaded: {exc}", check_head=False)
+
+    def _shutdown(self) -> None:
+        self.jobs.close()
+        for model_id, lineage in list(self.lineages.items()):
+            try:
+                lineage.flush()
+            except (Fenced, LineageStopped) as exc:
+                log.warning("model %s: final version not written: %s", model_id, exc)
+            except Exception:
+                log.exception("model %s: final version failed", model_id)
+        try:
+            with self.writes() as session, session.begin():
+                release_trainers(session, self.worker_id, self.lineages)
+        except Exception:
+            log.exception("worker %s: releasing leases failed (they will expire)",
+                          self.worker_id)
+        self.lineages.clear()

@@ -1,0 +1,270 @@
+"""Retrain jobs: the engine's batch trainer over every train record, as a version.
+
+A job is claimed with a lease (leasing.py) and run on its own thread, beside
+the online loop; another small thread renews the lease while it runs, so a job
+whose worker died is picked up again once the lease expires. The train records
+at or before the job's cursor (the last record stored when it started) are
+streamed from the database a chunk per query into one preallocated matrix:
+the rows never exist as Python objects all at once.
+
+From scratch, the encoder's statistics come from an evenly spread sample of
+the train records (at most ``STATS_SAMPLE`` rows: enough for a mean and a
+spread, and bounded whatever the record count); a warm start keeps the active
+version's encoder and weights.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import logging
+import math
+import threading
+import time
+from typing import Any
+
+import numpy as np
+from sqlalchemy import func, select
+from sqlalchemy.orm import Session, sessionmaker
+
+from engine import Learner, TrainingCancelled
+from service.store import JobRow, ModelRow, RecordRow, VersionRow
+from service.worker.decide import ENCODER_KEY, ActiveVersions, decide, encoder_of
+from service.worker.holdout import HoldoutWindow, evaluate, json_metrics
+from service.worker.jobs import fail_job, report_progress, requeue_job
+from service.worker.leasing import claim_job, renew_job
+from service.worker.records import (
+    RecordChunk,
+    count_records,
+    iter_chunks,
+    last_seq,
+    read_latest_holdout,
+)
+from service.worker.settings import WorkerSettings
+from service.worker.versions import Fenced, NewVersion, write_retrain_version
+
+log = logging.getLogger("keelson.worker")
+
+STATS_SAMPLE = 10_000
+
+
+class JobRunner:
+    """Runs at most one claimed job at a time on a background thread."""
+
+    def __init__(self, settings: WorkerSettings, reads: sessionmaker[Session],
+                 writes: sessionmaker[Session], worker_id: str,
+                 stop: threading.Event) -> None:
+        self.settings, self.reads, self.writes = settings, reads, writes
+        self.worker_id, self.stop = worker_id, stop
+        self._thread: threading.Thread | None = None
+        self._next_poll = 0.0
+
+    def poll(self) -> None:
+        """Claim a job when none is running (at most once per poll interval)."""
+        if self._thread is not None and self._thread.is_alive():
+            return
+        now = time.monotonic()
+        if now < self._next_poll:
+            return
+        self._next_poll = now + max(self.settings.poll_seconds, 1.0)
+        with self.writes() as session, session.begin():
+            job = claim_job(session, self.worker_id, self.settings.lease_seconds)
+            job_id = None if job is None else job.id
+        if job_id is None:
+            return
+        log.info("job %s: claimed by %s", job_id, self.worker_id)
+        self._thread = threading.Thread(target=self._run, args=(job_id,),
+                                        name=f"job-{job_id}", daemon=True)
+        self._thread.start()
+
+    def close(self) -> None:
+        """Wait for the running job (the stop event cancels it)."""
+        if self._thread is not None:
+            self._thread.join()
+
+    def _run(self, job_id: int) -> None:
+        lost = threading.Event()
+        done = threading.Event()
+        keeper = threading.Thread(target=self._keep_lease, args=(job_id, lost, done),
+                                  daemon=True)
+        keeper.start()
+        try:
+            run_retrain(self.settings, self.reads, self.writes, job_id, self.worker_id,
+                        cancel=lambda: self.stop.is_set() or lost.is_set())
+        except TrainingCancelled:
+            if not lost.is_set():
+                requeue_job(self.writes, job_id, self.worker_id)
+            log.info("job %s: handed back", job_id)
+        except Fenced as exc:
+            log.warning("job %s: %s", job_id, exc)
+        except Exception as exc:
+            log.exception("job %s: failed", job_id)
+            try:
+                fail_job(self.writes, job_id, self.worker_id, f"{type(exc).__name__}: {exc}")
+            except Exception:
+                log.exception("job %s: recording the failure failed", job_id)
+        finally:
+            done.set()
+            keeper.join()
+
+    def _keep_lease(self, job_id: int, lost: threading.Event, done: threading.Event) -> None:
+        while not done.wait(self.settings.heartbeat_seconds):
+            try:
+                with self.writes() as session, session.begin():
+                    held = renew_job(session, self.worker_id, job_id,
+                                     self.settings.lease_seconds)
+            except Exception:
+                log.exception("job %s: lease renewal failed", job_id)
+                continue
+            if not held:
+                lost.set()
+                return
+
+
+def run_retrain(
+    settings: WorkerSettings,
+    reads: sessionmaker[Session],
+    writes: sessionmaker[Session],
+    job_id: int,
+    worker_id: str,
+    cancel: Any = lambda: False,
+) -> VersionRow:
+    """Run one claimed retrain job to its version (callable directly in tests)."""
+    with reads() as session:
+        job = session.get(JobRow, job_id)
+        assert job is not None
+        model = session.get(ModelRow, job.model_id)
+        assert model is not None
+        spec, model_id = dict(model.spec), model.id
+        warm_start = bool((job.params or {}).get("warm_start"))
+        cursor = last_seq(session, model_id)
+        n_train = count_records(session, model_id, upto=cursor, split="train")
+        active = session.get(VersionRow, model.active_version_id) if (
+            warm_start and model.active_version_id) else None
+        if n_train == 0:
+            raise ValueError("the model has no train records to retrain on")
+        if active is not None:
+            learner = Learner.from_bytes(active.snapshot)
+            encoder, parent_id = encoder_of(learner), active.id
+        else:
+            sample = _stats_sample(session, model_id, cursor, n_train)
+            learner = Learner.create(spec, warmup=sample.features, warmup_labels=sample.labels)
+            encoder, parent_id = f"retrain:{job_id}", None
+
+    X, Y = _load_train(reads, learner, model_id, cursor, n_train, settings.chunk_records,
+                       cancel)
+    reporter = _ProgressReporter(writes, job_id, worker_id, settings.progress_seconds,
+                                 int(spec.get("training", {}).get("max_epochs", 0)))
+    report = learner.fit(X, Y, progress=reporter, cancel=cancel, warm_start=warm_start)
+    del X, Y
+    reporter.flush()
+
+    window = HoldoutWindow(settings.holdout_window)
+    with reads() as session:
+        rows = read_latest_holdout(session, model_id, cursor, settings.holdout_window)
+    if len(rows):
+        window.extend(learner.encode(rows.features), learner.encode_labels(rows.labels))
+    metrics = {
+        "prequential": json_metrics(learner.prequential_metrics()),
+        "holdout": evaluate(learner, window),
+        "holdout_window": settings.holdout_window,
+        "fit": _plain(report),
+    }
+    promotion = decide(writes, model_id, spec, metrics, window, encoder, cursor,
+                       settings.holdout_window, ActiveVersions())
+    snapshot = learner.to_bytes(extra={"cursor": cursor, ENCODER_KEY: encoder,
+                                       "model_id": model_id, "job_id": job_id})
+    new = NewVersion(snapshot=snapshot, origin="retrain", cursor=cursor,
+                     records_seen=learner.records_seen, metrics=metrics,
+                     parent_id=parent_id, job_id=job_id)
+    version = write_retrain_version(writes, job_id, worker_id, new, promotion)
+    log.info("job %s: version %s of model %s (%s)", job_id, version.number, model_id,
+             version.status)
+    return version
+
+
+def _load_train(reads: sessionmaker[Session], learner: Learner, model_id: int, cursor: int,
+                n_train: int, chunk_records: int, cancel: Any) -> tuple[np.ndarray, np.ndarray]:
+    """Every train record up to the cursor, encoded into preallocated arrays."""
+    X: np.ndarray | None = None
+    Y: np.ndarray | None = None
+    filled = 0
+    for chunk in iter_chunks(reads, model_id, cursor, chunk_records, split="train"):
+        if cancel():
+            raise TrainingCancelled("stopped while loading records")
+        X_part = learner.encode(chunk.features)
+        Y_part = learner.encode_labels(chunk.labels)
+        if X is None or Y is None:
+            X = np.empty((n_train, X_part.shape[1]), dtype=X_part.dtype)
+            Y = np.empty((n_train, *Y_part.shape[1:]), dtype=Y_part.dtype)
+        X[filled : filled + len(chunk)] = X_part
+        Y[filled : filled + len(chunk)] = Y_part
+        filled += len(chunk)
+    if X is None or Y is None or filled != n_train:
+        # Records at or before the cursor are all committed and never deleted
+        # while a job runs (invariant 1), so this means the model was removed.
+        raise RuntimeError(f"expected {n_train} train records, read {filled}")
+    return X, Y
+
+
+def _stats_sample(session: Session, model_id: int, cursor: int, n_train: int) -> RecordChunk:
+    """Every k-th train record up to the cursor, at most STATS_SAMPLE rows."""
+    every = max(1, math.ceil(n_train / STATS_SAMPLE))
+    numbered = (
+        select(RecordRow.seq, func.row_number().over(order_by=RecordRow.seq).label("n"))
+        .where(RecordRow.model_id == model_id, RecordRow.seq <= cursor,
+               RecordRow.split == "train")
+        .subquery()
+    )
+    rows = session.execute(
+        select(RecordRow.seq, RecordRow.features, RecordRow.label, RecordRow.split)
+        .join(numbered, numbered.c.seq == RecordRow.seq)
+        .where((numbered.c.n - 1) % every == 0)
+        .order_by(RecordRow.seq)
+    ).all()
+    return RecordChunk.from_rows(rows)
+
+
+class _ProgressReporter:
+    """The fit's progress callback: writes {epoch, loss, validation_metric}
+    to the job row at most once per ``every`` seconds (and the last one)."""
+
+    def __init__(self, writes: sessionmaker[Session], job_id: int, worker_id: str,
+                 every: float, max_epochs: int) -> None:
+        self.writes, self.job_id, self.worker_id = writes, job_id, worker_id
+        self.every, self.max_epochs = every, max_epochs
+        self._last_write = 0.0
+        self._pending: dict[str, Any] | None = None
+
+    def __call__(self, epoch: int, loss: float, validation_metric: float | None) -> None:
+        self._pending = {"epoch": int(epoch), "max_epochs": self.max_epochs,
+                         "loss": _finite_or_none(loss),
+                         "validation_metric": _finite_or_none(validation_metric)}
+        if time.monotonic() - self._last_write >= self.every:
+            self.flush()
+
+    def flush(self) -> None:
+        if self._pending is not None:
+            report_progress(self.writes, self.job_id, self.worker_id, self._pending)
+            self._last_write = time.monotonic()
+            self._pending = None
+
+
+def _finite_or_none(value: float | None) -> float | None:
+    if value is None:
+        return None
+    value = float(value)
+    return value if math.isfinite(value) else None
+
+
+def _plain(report: Any) -> dict[str, Any]:
+    """The fit report as JSON-ready values."""
+    fields = dataclasses.asdict(report) if dataclasses.is_dataclass(report) else dict(vars(report))
+    plain: dict[str, Any] = {}
+    for key, value in fields.items():
+        if isinstance(value, np.generic):
+            value = value.item()
+        if isinstance(value, float) and not math.isfinite(value):
+            value = None
+        if isinstance(value, int | float | str | bool) or value is None:
+            plain[key] = value
+    return plain

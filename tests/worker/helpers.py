@@ -1,0 +1,122 @@
+"""Helpers for worker tests: models and records through the service's own use
+cases, a worker on a thread, and waiting for the database to say something."""
+
+from __future__ import annotations
+
+import contextlib
+import threading
+import time
+from collections.abc import Callable, Iterator, Sequence
+from typing import Any
+
+from sqlalchemy import select
+
+from service.db import make_engine, make_sessionmaker
+from service.extensions import Database
+from service.store import ModelRow, RecordRow, TrainerRow, VersionRow
+from service.usecases.models import create_model
+from service.usecases.records import ingest_records
+from service.worker import run_worker
+
+# Fast settings for tests: a version after 0.5 s of quiet, short leases.
+FAST = {
+    "KEELSON_WORKER_IDLE_SECONDS": 0.5,
+    "KEELSON_WORKER_POLL_SECONDS": 0.05,
+    "KEELSON_WORKER_LEASE_SECONDS": 3.0,
+    "KEELSON_WORKER_PROGRESS_SECONDS": 0.0,
+}
+
+
+def database(url: str) -> Database:
+    engine = make_engine(url)
+    return Database(engine=engine, read=make_sessionmaker(engine),
+                    write=make_sessionmaker(engine, write=True))
+
+
+def numeric_spec(name: str, fields: Sequence[str], **overrides: Any) -> dict[str, Any]:
+    spec: dict[str, Any] = {
+        "name": name,
+        "task": "binary",
+        "target": "label",
+        "features": [{"name": field, "type": "numeric"} for field in fields],
+    }
+    training = overrides.pop("training", {})
+    spec.update(overrides)
+    spec["training"] = training
+    return spec
+
+
+def new_model(db: Database, spec: dict[str, Any]) -> int:
+    create_model(db, spec)
+    with db.read() as session:
+        return int(session.scalars(select(ModelRow.id).where(ModelRow.name == spec["name"])).one())
+
+
+def send(db: Database, name: str, records: Sequence[dict[str, Any]], batch: int = 500) -> None:
+    for start in range(0, len(records), batch):
+        ingest_records(db.write, name, list(records[start:start + batch]))
+
+
+@contextlib.contextmanager
+def worker_thread(url: str, worker_id: str = "test-worker", **settings: Any) -> Iterator[None]:
+    """A worker running on a thread until the block ends (then stopped cleanly)."""
+    stop = threading.Event()
+    config = {"KEELSON_DATABASE_URL": url, **FAST, **settings}
+    failure: list[BaseException] = []
+
+    def run() -> None:
+        try:
+            run_worker(config, stop=stop, worker_id=worker_id)
+        except BaseException as exc:  # surfaced in the test below
+            failure.append(exc)
+
+    thread = threading.Thread(target=run, daemon=True)
+    thread.start()
+    try:
+        yield
+    finally:
+        stop.set()
+        thread.join(60)
+    assert not thread.is_alive(), "the worker did not stop"
+    if failure:
+        raise failure[0]
+
+
+def wait_until(check: Callable[[], Any], timeout: float = 30.0, every: float = 0.05) -> Any:
+    deadline = time.monotonic() + timeout
+    while True:
+        value = check()
+        if value:
+            return value
+        if time.monotonic() > deadline:
+            raise AssertionError(f"timed out after {timeout} s waiting for {check}")
+        time.sleep(every)
+
+
+def caught_up(db: Database, model_id: int) -> bool:
+    """The trainer's stored cursor has reached the model's last record."""
+    with db.read() as session:
+        cursor = session.get(TrainerRow, model_id).cursor  # type: ignore[union-attr]
+        top = session.scalar(select(RecordRow.seq).where(RecordRow.model_id == model_id)
+                             .order_by(RecordRow.seq.desc()).limit(1))
+        return top is not None and cursor == top
+
+
+def versions(db: Database, model_id: int) -> list[VersionRow]:
+    with db.read() as session:
+        return list(session.scalars(select(VersionRow).where(VersionRow.model_id == model_id)
+                                    .order_by(VersionRow.number)))
+
+
+def trainer(db: Database, model_id: int) -> TrainerRow:
+    with db.read() as session:
+        row = session.get(TrainerRow, model_id)
+        assert row is not None
+        return row
+
+
+def model_row(db: Database, model_id: int) -> ModelRow:
+    with db.read() as session:
+        row = session.get(ModelRow, model_id)
+        assert row is not None
+        return row
