@@ -96,7 +96,6 @@ class OnlineTrainer:
         y_list = y.tolist()
         raw_list = raw_targets.tolist()
         flat_scores = scores.reshape(-1) if scalar_head else scores
-        p_buf = self._p
         # Overflow is detected on scalars and raised as NonFiniteError; no warnings.
         with np.errstate(over="ignore", invalid="ignore"):
             self._run(Xa, columns, y_list, raw_list, flat_scores, metrics,

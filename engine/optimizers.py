@@ -113,12 +113,10 @@ class SGD(Optimizer):
         self.nesterov = bool(training["nesterov"])
         b = self.buffer
         self._triples = (b[0:3], b[1:4])  # (v_a, g, w) and (g, w, v_b)
-        self._velocity_pair = b[0:4:3]  # (v_a, v_b)
         self._slots = (b[0], b[3])
         self._step = b[4]
         self._live = 0  # index of the slot holding the velocity
         self._coefficients = np.zeros(3)
-        self._pair_coefficients = np.zeros(2)
 
     @property
     def velocity(self) -> Array:
@@ -138,11 +136,12 @@ class SGD(Optimizer):
         np.dot(c, self._triples[live], out=new_velocity)
         update = new_velocity
         if self.nesterov:
-            # w + mu v_new - lr g' = w + (1 + mu) v_new - mu v  (since -lr g' = v_new - mu v)
-            pair = self._pair_coefficients
-            pair[live], pair[1 - live] = -self.momentum, 1.0 + self.momentum
-            np.dot(pair, self._velocity_pair, out=self._step)
-            update = self._step
+            # w + mu v_new - lr g' = w + v_new + mu (v_new - v), as -lr g' = v_new - mu v.
+            step = self._step
+            np.subtract(new_velocity, self._slots[live], out=step)
+            np.multiply(step, self.momentum, out=step)
+            np.add(step, new_velocity, out=step)
+            update = step
         # |update_i| < 1.3e154 when this is finite, so w + update cannot overflow.
         if not math.isfinite(float(np.dot(update, update))):
             raise NonFiniteError("the step would make a weight non-finite")

@@ -1,0 +1,48 @@
+"""engine/ stays pure: no web or database libraries, no I/O modules, deterministic."""
+
+from __future__ import annotations
+
+import ast
+import json
+import pathlib
+import subprocess
+import sys
+
+import engine
+
+ENGINE = pathlib.Path(engine.__file__).parent
+ALLOWED_IMPORTS = {"numpy", "engine", "__future__", "collections", "dataclasses", "typing",
+                   "math", "json", "hashlib", "copy", "io", "zipfile", "zlib", "functools",
+                   "itertools"}
+
+
+def test_importing_engine_loads_neither_flask_nor_sqlalchemy():
+    """STYLE.md: the sans-I/O core, held by a subprocess import check."""
+    code = ("import sys, json, engine; "
+            "print(json.dumps(sorted(m for m in sys.modules "
+            "if m.split('.')[0] in ('flask', 'sqlalchemy', 'werkzeug', 'marshmallow'))))")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                         check=True, cwd=ENGINE.parent, timeout=60)
+    assert json.loads(out.stdout) == []
+
+
+def test_engine_modules_import_only_numpy_and_the_standard_library_subset():
+    for path in ENGINE.glob("*.py"):
+        tree = ast.parse(path.read_text())
+        for node in ast.walk(tree):
+            if isinstance(node, ast.Import):
+                names = [alias.name for alias in node.names]
+            elif isinstance(node, ast.ImportFrom):
+                names = [node.module or "engine"] if node.level == 0 else ["engine"]
+            else:
+                continue
+            for name in names:
+                assert name.split(".")[0] in ALLOWED_IMPORTS, f"{path.name} imports {name}"
+
+
+def test_engine_reads_no_environment_and_opens_no_files():
+    for path in ENGINE.glob("*.py"):
+        source = path.read_text()
+        for forbidden in ("os.environ", "getenv", "open(", "np.random.seed",
+                          "np.random.rand", "default_rng()"):
+            assert forbidden not in source, f"{path.name} uses {forbidden}"
