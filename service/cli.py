@@ -230,9 +230,11 @@ def token_revoke(id_or_name: str) -> None:
 
 
 @cli.command()
-@click.option("--records", type=click.IntRange(min=200), default=2000, show_default=True,
+@click.option("--records", type=click.IntRange(min=200), default=5000, show_default=True,
               help="Weekly pump summaries to generate and send.")
 @click.option("--seed", type=int, default=7, show_default=True, help="Seed of the generator.")
+@click.option("--retrain/--no-retrain", default=True, show_default=True,
+              help="After online training, also run a full retrain job.")
 @click.option("--serve", "then_serve", is_flag=True,
               help="Afterwards keep serving the API (and a worker) on the same database.")
 @click.option("--host", default=None, help="With --serve: address [127.0.0.1].")
@@ -240,18 +242,19 @@ def token_revoke(id_or_name: str) -> None:
               help="With --serve: port [8000].")
 @click.option("--workers", type=click.IntRange(min=1), default=None,
               help="With --serve: API worker processes.")
-def demo(records: int, seed: int, then_serve: bool, host: str | None, port: int | None,
-         workers: int | None) -> None:
+def demo(records: int, seed: int, retrain: bool, then_serve: bool, host: str | None,
+         port: int | None, workers: int | None) -> None:
     """Load the invented pump-station scenario and show explained predictions.
 
     Creates the model `pump-risk` through the HTTP API, streams generated weekly
     pump summaries to it, trains until a version is active, and prints a few
     predictions with an explanation bar per field. The data is invented.
+    Runs again on the same database without storing anything twice.
     """
     from service.demo import run_demo
 
     run_demo(_config(), records=records, seed=seed, serve=then_serve, host=host, port=port,
-             web_workers=workers)
+             web_workers=workers, retrain=retrain)
 
 
 @cli.command("import")

@@ -1,0 +1,1 @@
+"""Benchmarks behind `keelson bench engine|http|worker` (figures, not tests)."""
