@@ -9,7 +9,7 @@ from __future__ import annotations
 from typing import Any
 
 from sqlalchemy import Row, select
-from sqlalchemy.orm import Session, aliased
+from sqlalchemy.orm import Session, aliased, defer
 
 from service import promotion
 from service.errors import NotFoundError
@@ -66,9 +66,9 @@ def promote_version(db: Database, name: str, number: int) -> dict[str, Any]:
         try:
             model = find_model(session, name, lock=True)
             version = session.scalars(
-                select(VersionRow).where(
-                    VersionRow.model_id == model.id, VersionRow.number == number
-                )
+                select(VersionRow)
+                .options(defer(VersionRow.snapshot))  # never load weights to move a pointer
+                .where(VersionRow.model_id == model.id, VersionRow.number == number)
             ).first()
             if version is None:
                 raise NotFoundError(f"Model {name!r} has no version {number}.")

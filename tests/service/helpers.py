@@ -11,7 +11,7 @@ from flask import Flask
 from sqlalchemy import func, select
 
 from service.extensions import get_database
-from service.store import ModelRow, RecordRow
+from service.store import ModelRow, RecordRow, VersionRow
 from service.tokens import create_token
 
 ADMIN_TOKEN = "test-admin-token"
@@ -110,3 +110,36 @@ def model_row(app: Flask, name: str) -> ModelRow:
         row = session.scalars(select(ModelRow).where(ModelRow.name == name)).one()
         session.expunge(row)
         return row
+
+
+def add_version(
+    app: Flask,
+    model: str,
+    number: int,
+    *,
+    status: str = "candidate",
+    origin: str = "online",
+    parent: int | None = None,
+    cursor: int = 0,
+    records_seen: int = 0,
+    metrics: dict[str, Any] | None = None,
+    active: bool = False,
+) -> int:
+    """Insert a version row as the worker would (the snapshot is not read here)."""
+    with get_database(app).write() as session:
+        model_id = session.scalars(select(ModelRow.id).where(ModelRow.name == model)).one()
+        parent_id = None
+        if parent is not None:
+            parent_id = session.scalars(select(VersionRow.id).where(
+                VersionRow.model_id == model_id, VersionRow.number == parent)).one()
+        row = VersionRow(
+            model_id=model_id, number=number, origin=origin, status=status,
+            snapshot=b"not read by these routes", cursor=cursor, records_seen=records_seen,
+            metrics=metrics or {}, parent_id=parent_id,
+        )
+        session.add(row)
+        session.flush()
+        if active:
+            session.get_one(ModelRow, model_id).active_version_id = row.id
+        session.commit()
+        return row.id

@@ -1,0 +1,160 @@
+"""Bearer tokens (RFC 6750) on every route: an auth matrix built from the
+app's own URL map, so a route added later is covered without editing this."""
+
+from __future__ import annotations
+
+import re
+from collections.abc import Iterator
+
+import pytest
+from flask import Flask
+from sqlalchemy import select
+
+from service.auth import PUBLIC, SCOPES, declared_scope, hash_token
+from service.errors import InvalidInputError, NotFoundError
+from service.extensions import get_database
+from service.store import TokenRow
+from service.tokens import create_token, list_tokens, revoke_token
+from tests.service.conftest import build_app
+from tests.service.helpers import ApiClient, create_model
+
+PATH_VALUES = {"name": "pump-risk", "number": "1", "job_id": "1", "id": "1"}
+# A token holding every scope but the one a route needs.
+WRONG = {"admin": ("ingest", "predict"), "ingest": ("predict",), "predict": ("ingest",)}
+
+
+def routes(app: Flask) -> Iterator[tuple[str, str, str | None]]:
+    """(method, concrete path, declared scope) for every route of the app."""
+    for rule in app.url_map.iter_rules():
+        path = re.sub(
+            r"<(?:[^:<>]+:)?([^<>]+)>", lambda m: PATH_VALUES.get(m.group(1), "x"), rule.rule
+        )
+        scope = declared_scope(app.view_functions[rule.endpoint])
+        for method in sorted((rule.methods or set()) - {"HEAD", "OPTIONS"}):
+            yield method, path, scope
+
+
+@pytest.fixture
+def matrix_api(api: ApiClient) -> ApiClient:
+    create_model(api)
+    return api
+
+
+def test_every_route_declares_a_scope(app: Flask) -> None:
+    found = list(routes(app))
+    assert len(found) >= 12
+    undeclared = [(m, p) for m, p, scope in found if scope is None]
+    assert undeclared == []
+    assert {scope for _, _, scope in found} <= {PUBLIC, *SCOPES}
+
+
+def test_the_public_routes_are_exactly_the_contracts(app: Flask) -> None:
+    public = {path for _, path, scope in routes(app) if scope == PUBLIC}
+    assert public <= {"/healthz", "/readyz", "/metrics", "/openapi.json"}
+    assert {"/healthz", "/readyz", "/openapi.json"} <= public
+
+
+def test_the_auth_matrix(matrix_api: ApiClient, app: Flask) -> None:
+    api = matrix_api
+    tokens = {scope: api.token(*WRONG[scope], name=f"not-{scope}") for scope in WRONG}
+    right = {scope: api.token(scope, name=scope) for scope in SCOPES}
+    checked = 0
+    for method, path, scope in routes(app):
+        if scope == PUBLIC:
+            response = api.client.open(path, method=method)
+            assert response.status_code not in (401, 403), (method, path)
+            continue
+        assert scope is not None
+        # No token: 401 with a Bearer challenge (RFC 6750 section 3).
+        response = api.client.open(path, method=method)
+        assert response.status_code == 401, (method, path)
+        assert response.headers["WWW-Authenticate"].startswith("Bearer ")
+        assert response.mimetype == "application/problem+json"
+        # A token nobody issued: 401, error="invalid_token".
+        response = api.client.open(path, method=method,
+                                   headers={"Authorization": "Bearer not-a-token"})
+        assert response.status_code == 401, (method, path)
+        assert 'error="invalid_token"' in response.headers["WWW-Authenticate"]
+        # Every scope but the needed one: 403 naming the scope.
+        response = api.client.open(path, method=method,
+                                   headers={"Authorization": f"Bearer {tokens[scope]}"})
+        assert response.status_code == 403, (method, path)
+        assert response.get_json()["detail"] == f"This token lacks the {scope!r} scope."
+        # The right scope, and admin: past the gate (whatever the view then says).
+        for token in (right[scope], right["admin"]):
+            response = api.client.open(path, method=method, json={},
+                                       headers={"Authorization": f"Bearer {token}"})
+            assert response.status_code not in (401, 403), (method, path, response.data)
+        checked += 1
+    assert checked >= 8
+
+
+def test_the_scheme_name_is_case_insensitive(matrix_api: ApiClient) -> None:
+    token = matrix_api.token("predict")
+    response = matrix_api.client.get("/v1/models", headers={"Authorization": f"bearer {token}"})
+    assert response.status_code == 200
+
+
+@pytest.mark.parametrize("header", ["", "Bearer", "Bearer ", "Basic dXNlcjpwYXNz", "Token x"])
+def test_a_malformed_authorization_header_is_401(matrix_api: ApiClient, header: str) -> None:
+    response = matrix_api.client.get("/v1/models", headers={"Authorization": header})
+    assert response.status_code == 401
+    assert response.headers["WWW-Authenticate"] == 'Bearer realm="keelson"'
+
+
+def test_tokens_are_stored_only_as_their_sha256(app: Flask) -> None:
+    with get_database(app).write() as session:
+        row, plaintext = create_token(session, "ingester", ["ingest"])
+    with get_database(app).read() as session:
+        stored = session.scalars(select(TokenRow)).one()
+    # FIPS 180-4 SHA-256, as hashlib computes it.
+    assert stored.token_hash == hash_token(plaintext) == row.token_hash
+    assert len(stored.token_hash) == 64 and plaintext not in stored.token_hash
+    assert stored.scopes == ["ingest"]
+    assert len(plaintext) >= 40
+
+
+def test_a_revoked_token_is_refused(sqlite_url: str) -> None:
+    app = build_app(sqlite_url, KEELSON_TOKEN_CACHE_SECONDS=1e-9)
+    api = ApiClient(app)
+    token = api.token("predict", name="reader")
+    api.request("GET", "/v1/models", 200, token=token)
+    with get_database(app).write() as session:
+        revoked = revoke_token(session, "reader")
+    assert [r.name for r in revoked] == ["reader"] and revoked[0].revoked_at is not None
+    body = api.request("GET", "/v1/models", 401, token=token)
+    assert body["detail"] == "The bearer token is unknown or revoked."
+
+
+def test_token_use_cases_list_revoke_by_id_and_refuse_nonsense(app: Flask) -> None:
+    with get_database(app).write() as session:
+        first, _ = create_token(session, "a", ["predict", "ingest", "predict"])
+        create_token(session, "b", ["admin"])
+        assert first.scopes == ["ingest", "predict"]
+        assert [t.name for t in list_tokens(session)] == ["a", "b"]
+        assert [t.id for t in revoke_token(session, first.id)] == [first.id]
+        with pytest.raises(NotFoundError):
+            revoke_token(session, first.id)
+        with pytest.raises(InvalidInputError) as bad:
+            create_token(session, "", ["root"])
+        assert set(bad.value.errors or {}) == {"name", "scopes"}
+        with pytest.raises(InvalidInputError):
+            create_token(session, "none", [])
+
+
+def test_the_environment_admin_token_holds_every_scope(sqlite_url: str) -> None:
+    app = build_app(sqlite_url, KEELSON_ADMIN_TOKEN="from-the-environment")
+    api = ApiClient(app)
+    api.request("POST", "/v1/models", 201, token="from-the-environment",
+                json_body={"name": "x", "task": "regression", "target": "y",
+                           "features": [{"name": "a", "type": "numeric"}]})
+    api.request("GET", "/v1/models/x", 200, token="from-the-environment")
+    api.request("POST", "/v1/models/x/records", 201, token="from-the-environment",
+                json_body={"records": [{"features": {"a": 1}, "label": 2}]})
+
+
+def test_without_an_environment_token_an_empty_bearer_never_passes(sqlite_url: str) -> None:
+    app = build_app(sqlite_url, KEELSON_ADMIN_TOKEN="")
+    api = ApiClient(app)
+    api.request("GET", "/v1/models", 401, token="")
+    api.request("GET", "/v1/models", 401, token="None")
