@@ -49,7 +49,7 @@ def split_validation(n: int, fraction: float,
     order = rng.permutation(n)
     n_val = int(round(fraction * n))
     if n_val < 2 or n - n_val < 2:
-        return order, order[:0]
+        return np.arange(n), order[:0]
     return np.sort(order[n_val:]), np.sort(order[:n_val])
 
 
