@@ -11,7 +11,7 @@ import flask_smorest
 from flask import Flask, Response
 
 from service import auth, observability, problems
-from service.api import jobs, models, ops, records, versions
+from service.api import jobs, models, ops, predictions, records, versions
 from service.config import load_config
 from service.extensions import init_database
 from service.schemas.views import ProblemSchema
@@ -22,6 +22,7 @@ BLUEPRINTS = [
     models.blueprint,
     records.blueprint,
     versions.blueprint,
+    predictions.blueprint,
     jobs.blueprint,
 ]
 

@@ -1,0 +1,101 @@
+"""GET and POST /v1/models/{name}/predictions (predict): scored and explained.
+
+The hot path of the service: a warm GET reads no database (the version cache
+holds the model and its network), builds no schema (each model's readers are
+built once) and dumps its answer straight to JSON.
+"""
+
+from __future__ import annotations
+
+import json
+import threading
+from typing import Any
+
+from flask import Flask, Response, current_app, request
+
+from service.api.base import Blueprint, read_json_body
+from service.auth import requires
+from service.extensions import get_database
+from service.schemas.predictions import (
+    PredictionBatchDocSchema,
+    PredictionBatchSchema,
+    PredictionQuerySchema,
+    PredictionSchema,
+    prediction_readers,
+)
+from service.usecases.predictions import find_model, predict
+from service.version_cache import VersionCache
+
+blueprint = Blueprint(
+    "predictions", __name__, url_prefix="/v1/models", description="Predictions."
+)
+
+CACHE_KEY = "keelson.version_cache"
+_cache_lock = threading.Lock()
+
+FEATURE_PARAMETERS = {
+    "in": "query",
+    "name": "features",
+    "description": "One parameter per declared feature of the model, typed by its spec "
+    "(numbers as decimals, booleans as true/false, categorical as a level). Unknown "
+    "parameters are refused.",
+    "schema": {"type": "object", "additionalProperties": {"type": "string"}},
+    "style": "form",
+    "explode": True,
+}
+BATCH_BODY = {
+    "required": True,
+    "content": {"application/json": {"schema": PredictionBatchDocSchema}},
+}
+
+
+def version_cache(app: Flask | None = None) -> VersionCache:
+    """The app's version cache, made on first use from the app's settings."""
+    target = app if app is not None else current_app
+    cache: VersionCache | None = target.extensions.get(CACHE_KEY)
+    if cache is None:
+        with _cache_lock:
+            cache = target.extensions.get(CACHE_KEY)
+            if cache is None:
+                cache = VersionCache(
+                    get_database(target).read,
+                    max_age=float(target.config["KEELSON_ACTIVE_STALENESS_SECONDS"]),
+                    capacity=int(target.config["KEELSON_VERSION_CACHE_SIZE"]),
+                )
+                target.extensions[CACHE_KEY] = cache
+    return cache
+
+
+def _json(body: dict[str, Any]) -> Response:
+    # Built here rather than dumped through the answer schema: the schema
+    # documents this exact shape (tests/service/test_predictions_api.py holds it).
+    return Response(json.dumps(body, ensure_ascii=False), mimetype="application/json")
+
+
+@blueprint.route("/<name>/predictions", methods=["GET"])
+@requires("predict")
+@blueprint.doc(parameters=[FEATURE_PARAMETERS, {"in": "query", "schema": PredictionQuerySchema}])
+@blueprint.response(200, PredictionSchema)
+def get_prediction(name: str) -> Response:
+    """Score one record given as query parameters, and explain the score."""
+    cache = version_cache()
+    entry = find_model(cache, name)
+    features, options = prediction_readers(entry).read_query(request.args)
+    number, (answer,) = predict(cache, entry, (features,), options)
+    return _json({"model": entry.name, "version": number, **answer})
+
+
+@blueprint.route("/<name>/predictions", methods=["POST"])
+@requires("predict")
+@blueprint.doc(requestBody=BATCH_BODY,
+               parameters=[{"in": "query", "schema": PredictionQuerySchema}])
+@blueprint.response(200, PredictionBatchSchema)
+def post_predictions(name: str) -> Response:
+    """Score a batch of records, in input order, each with its explanation."""
+    cache = version_cache()
+    entry = find_model(cache, name)
+    body = read_json_body(request)
+    limit = int(current_app.config["KEELSON_MAX_PREDICTION_BATCH"])
+    rows, options = prediction_readers(entry).read_body(body, request.args, limit)
+    number, answers = predict(cache, entry, rows, options)
+    return _json({"model": entry.name, "version": number, "results": answers})

@@ -1,0 +1,173 @@
+"""Use case: score validated feature rows with a version and explain each score.
+
+Read-only. The version cache picks the network (no query when warm); this turns
+its numbers into the bodies of API.md ("Predictions"), and the cache's lookups
+into the errors the API answers with.
+"""
+
+from __future__ import annotations
+
+import math
+import re
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+from service.errors import ConflictError, KeelsonError, NotFoundError
+from service.schemas.spec import MODEL_NAME_PATTERN
+from service.version_cache import (
+    LoadedVersion,
+    ModelEntry,
+    ModelNotFound,
+    NoActiveVersion,
+    SnapshotUnreadable,
+    VersionCache,
+    VersionNotFound,
+)
+
+EXPLAIN_METHODS = ("integrated_gradients", "gradient", "gradient_times_input", "smoothgrad",
+                   "none")
+DEFAULT_EXPLAIN = "integrated_gradients"
+DEFAULT_STEPS, MIN_STEPS, MAX_STEPS = 64, 2, 1024
+DEFAULT_SAMPLES, MAX_SAMPLES = 32, 1024
+DEFAULT_NOISE, MAX_NOISE = 0.15, 10.0
+_MODEL_NAME = re.compile(MODEL_NAME_PATTERN)
+
+
+@dataclass(frozen=True, slots=True)
+class PredictionOptions:
+    """The optional parameters of a prediction request, already validated.
+
+    ``output`` is the class itself (``True``, ``"failed"``), resolved from the
+    request's spelling by the model's reader; ``None`` means the predicted class.
+    """
+
+    explain: str = DEFAULT_EXPLAIN
+    version: int | None = None
+    output: Any = None
+    steps: int = DEFAULT_STEPS
+    samples: int = DEFAULT_SAMPLES
+    noise: float = DEFAULT_NOISE
+    seed: int = 0
+
+
+class VersionUnavailableError(KeelsonError):
+    """The version exists but cannot serve (its snapshot does not load)."""
+
+    status = 503
+    title = "Service Unavailable"
+
+
+class NonFiniteOutputError(KeelsonError):
+    """The network answered NaN or infinity: not JSON (RFC 8259), never served."""
+
+    status = 500
+    title = "Internal Server Error"
+
+
+def find_model(cache: VersionCache, name: str) -> ModelEntry:
+    """The cached model called ``name`` (its active pointer at most the bound old)."""
+    if not _MODEL_NAME.fullmatch(name):
+        raise NotFoundError(f"There is no model named {name!r}.")
+    try:
+        return cache.model(name)
+    except ModelNotFound:
+        raise NotFoundError(f"There is no model named {name!r}.") from None
+
+
+def predict(
+    cache: VersionCache,
+    entry: ModelEntry,
+    rows: Sequence[Mapping[str, Any]],
+    options: PredictionOptions,
+) -> tuple[int, list[dict[str, Any]]]:
+    """The serving version's number and ``{"result", "explanation"}`` per row, in order.
+
+    Engine inference allocates per call and keeps no state between calls, so
+    one cached network serves concurrent requests without a lock.
+    """
+    loaded = _version(cache, entry, options.version)
+    learner = loaded.learner
+    encoded = learner.encode(rows)
+    scores = learner.predict(encoded)
+    classes = learner.classes if learner.task != "regression" else None
+    answers = []
+    for index in range(len(rows)):
+        if classes is not None:
+            result, predicted = _classification(classes, scores[index])
+            output = predicted if options.output is None else options.output
+        else:
+            result, output = _regression(scores[index]), None
+        explanation = None
+        if options.explain != "none":
+            explanation = _explanation(learner.explain(
+                encoded[index], method=options.explain, output=output, steps=options.steps,
+                samples=options.samples, noise=options.noise, seed=options.seed))
+        answers.append({"result": result, "explanation": explanation})
+    return loaded.number, answers
+
+
+def _version(cache: VersionCache, entry: ModelEntry, number: int | None) -> LoadedVersion:
+    try:
+        return cache.version(entry, number)
+    except NoActiveVersion:
+        raise ConflictError(
+            f"Model {entry.name!r} has no active version yet: send records and let the "
+            "worker write one, or promote a version.") from None
+    except VersionNotFound as exc:
+        raise NotFoundError(f"Model {entry.name!r} has no version {exc.number}.",
+                            errors={"version": [f"No version {exc.number}."]}) from None
+    except SnapshotUnreadable as exc:
+        raise VersionUnavailableError(
+            f"Version {exc.number} of model {entry.name!r} cannot be loaded (its stored "
+            "snapshot is unreadable; the error is logged). Promote another version.") from None
+
+
+def class_key(label: Any) -> str:
+    """How a class is spelled as a JSON object key: booleans as ``false``/``true``."""
+    if isinstance(label, bool):
+        return "true" if label else "false"
+    return str(label)
+
+
+def _classification(classes: Sequence[Any], scores: Any) -> tuple[dict[str, Any], Any]:
+    probabilities = {}
+    best, best_p = 0, -1.0
+    for position, p in enumerate(scores.tolist()):
+        if not math.isfinite(p):
+            raise NonFiniteOutputError("The model answered a probability that is not finite.")
+        probabilities[class_key(classes[position])] = p
+        if p > best_p:
+            best, best_p = position, p
+    return {"label": classes[best], "probabilities": probabilities}, classes[best]
+
+
+def _regression(scores: Any) -> dict[str, Any]:
+    return {"value": _finite(scores[0])}
+
+
+def _explanation(explained: Any) -> dict[str, Any]:
+    gap = explained.completeness_gap
+    return {
+        "method": explained.method,
+        "output": explained.output,
+        "attributions": {name: _finite(v) for name, v in explained.attributions.items()},
+        "baseline": {name: _baseline(v) for name, v in explained.baseline.items()},
+        "completeness_gap": None if gap is None else _finite(gap),
+        "value": _finite(explained.value),
+        "baseline_value": _finite(explained.baseline_value),
+    }
+
+
+def _finite(value: Any) -> float:
+    number = float(value)
+    if not math.isfinite(number):
+        raise NonFiniteOutputError("The model answered a number that is not finite.")
+    return number
+
+
+def _baseline(value: Any) -> Any:
+    # Numeric: raw units; boolean: the share of true; categorical: {level: share}.
+    if isinstance(value, Mapping):
+        return {str(level): _finite(share) for level, share in value.items()}
+    return _finite(value)
