@@ -15,7 +15,9 @@ are summed.
   gradient along the straight line from baseline to x, by the trapezoid rule
   over `steps` intervals, all points in one batched backward pass
   (Sundararajan, Taly & Yan 2017). `completeness_gap` is
-  |sum(attributions) - (f(x) - f(baseline))|.
+  |sum(attributions) - (f(x) - f(baseline))|: the quadrature error, falling as
+  1/steps^2 for tanh and logistic units; relu gradients jump along the path, so
+  there it falls only as 1/steps (about 1e-2 of the change at 64 steps).
 - `smoothgrad`: the mean gradient at `samples` points x + N(0, noise^2) (noise in
   encoded units, i.e. standard deviations of a numeric field), reported like
   `gradient` (Smilkov et al. 2017).
@@ -185,8 +187,7 @@ def _row(name: str, values: Any, width: int) -> NDArray[np.float64]:
         row = np.asarray(values, dtype=np.float64).reshape(-1)
     if row.shape != (width,):
         raise InvalidInputError(f"{name} must hold {width} encoded values", field=name)
-    # NaN and inf times zero are NaN: one cheap product checks every value.
-    if not math.isfinite(float(np.dot(row, np.zeros(width)))):
+    if not all(map(math.isfinite, row.tolist())):  # cheaper than np.isfinite(row).all()
         raise InvalidInputError(f"{name} must be finite", field=name)
     return row
 
