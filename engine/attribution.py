@@ -54,39 +54,49 @@ def _trapezoid(steps: int) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
     return alphas, weights
 
 
-def _head_slopes(output: str, z: NDArray[np.float64], unit: int,
-                 m: int) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
-    """Head output of `unit` for every row (n,), and d output / d logits (m, k)
-    for the first m rows."""
+def _softmax_(z: NDArray[np.float64]) -> NDArray[np.float64]:
+    """Row-wise softmax in place; exp never overflows after the max is taken off."""
+    z -= z.max(axis=1, keepdims=True)
+    np.exp(z, out=z)
+    z /= z.sum(axis=1, keepdims=True)
+    return z
+
+
+def _head_slopes(output: str, z: NDArray[np.float64], unit: int | None, m: int,
+                 choose_row: int) -> tuple[int, NDArray[np.float64], NDArray[np.float64]]:
+    """The head unit explained (None: the most probable at row `choose_row`), its
+    output at every row (n,), and d output / d logits (m, k) at the first m rows."""
     if output == "softmax":
-        p = z - z.max(axis=1, keepdims=True)  # exp never overflows
-        np.exp(p, out=p)
-        p /= p.sum(axis=1, keepdims=True)
+        p = _softmax_(z)
+        if unit is None:
+            unit = int(p[choose_row].argmax())
         value = p[:, unit]
         # d p_u / d z_j = p_u (delta_uj - p_j)
         slopes = p[:m] * -value[:m, None]
         slopes[:, unit] += value[:m]
-        return value, slopes
+        return unit, value, slopes
+    unit = 0 if unit is None else unit
     slopes = np.zeros((m, z.shape[1]))
     if output == "identity":
         slopes[:, unit] = 1.0
-        return z[:, unit], slopes
+        return unit, z[:, unit], slopes
     # Logistic as (1 + tanh(z / 2)) / 2: no overflow; d p / d z = p (1 - p).
     p = z[:, unit] * 0.5
     np.tanh(p, out=p)
     p *= 0.5
     p += 0.5
     slopes[:, unit] = p[:m] * (1.0 - p[:m])
-    return p, slopes
+    return unit, p, slopes
 
 
 def output_and_input_gradient(
-    network: Network, X: NDArray[np.float64], unit: int, m: int,
-    row_weights: NDArray[np.float64] | None = None,
-) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    network: Network, X: NDArray[np.float64], unit: int | None, m: int,
+    row_weights: NDArray[np.float64] | None = None, choose_row: int = -1,
+) -> tuple[int, NDArray[np.float64], NDArray[np.float64]]:
     """Head output `unit` at every row of X (n,) and, by one backward pass from
     that output down to the inputs, its gradient at the first m rows (m, n_inputs),
     or their `row_weights`-weighted sum (n_inputs,) when weights (m,) are given.
+    Returns the unit too: None picks the most probable unit at row `choose_row`.
 
     The same backpropagation as Network.input_gradient (a test holds them equal),
     kept here because one pass must give both the values and the gradients, and
@@ -105,7 +115,7 @@ def output_and_input_gradient(
         hidden.append(a)
     z = np.dot(a, weights[last])
     z += biases[last]
-    value, slopes = _head_slopes(network.output, z, unit, m)
+    unit, value, slopes = _head_slopes(network.output, z, unit, m, choose_row)
     g = np.dot(slopes, weights[last].T)
     for i in range(last, 0, -1):
         h = hidden[i - 1][:m]
@@ -115,14 +125,15 @@ def output_and_input_gradient(
         g = np.dot(g, weights[i - 1].T)
     if last == 0 and row_weights is not None:
         g = np.dot(row_weights, g)
-    return value, g
+    return unit, value, g
 
 
 def gradient_at(network: Network, x: NDArray[np.float64], baseline: NDArray[np.float64],
-                unit: int) -> tuple[float, float, NDArray[np.float64]]:
-    """f(x), f(baseline) and d f / d x (n_inputs,) for head output `unit`: the
-    one-record case of `output_and_input_gradient`, trimmed for latency (both rows
-    go forward together, only x comes back; a single-unit head in Python floats)."""
+                unit: int | None) -> tuple[int, float, float, NDArray[np.float64]]:
+    """The unit (None: the most probable at x), f(x), f(baseline) and d f / d x
+    (n_inputs,) for that head output: the one-record case of
+    `output_and_input_gradient`, trimmed for latency (both rows go forward
+    together, only x comes back; a single-unit head in Python floats)."""
     activate = ACTIVATE[network.activation]
     derivative = DERIVATIVE[network.activation]
     weights, biases = network.weights, network.biases
@@ -137,14 +148,15 @@ def gradient_at(network: Network, x: NDArray[np.float64], baseline: NDArray[np.f
     if network.output == "softmax":
         p = np.dot(a, weights[last])
         p += biases[last]
-        p -= p.max(axis=1, keepdims=True)
-        np.exp(p, out=p)
-        p /= p.sum(axis=1, keepdims=True)
+        _softmax_(p)
+        if unit is None:
+            unit = int(p[0].argmax())
         value, baseline_value = p[:, unit].tolist()
         slopes = p[0] * -value  # d p_u / d z_j = p_u (delta_uj - p_j)
         slopes[unit] += value
         g = np.dot(weights[last], slopes)
     else:
+        unit = 0 if unit is None else unit
         column = weights[last][:, unit]
         bias = float(biases[last][unit])
         value, baseline_value = (z + bias for z in np.dot(a, column).tolist())
@@ -158,7 +170,7 @@ def gradient_at(network: Network, x: NDArray[np.float64], baseline: NDArray[np.f
         h = hidden[i - 1]
         g *= derivative(h, np.empty_like(h))
         g = np.dot(weights[i - 1], g)
-    return value, baseline_value, g
+    return unit, value, baseline_value, g
 
 
 @dataclass(frozen=True)
@@ -203,7 +215,7 @@ def explain(
     x: NDArray[np.float64],
     *,
     method: str,
-    output_index: int,
+    output_index: int | None,
     baseline: NDArray[np.float64],
     steps: int = 64,
     samples: int = 32,
@@ -211,8 +223,9 @@ def explain(
     seed: int = 0,
 ) -> Explanation:
     """Explain the network's output at one encoded row x (n_inputs,) relative to
-    an encoded baseline row (n_inputs,); `output_index` is a class index (0 for
-    regression)."""
+    an encoded baseline row (n_inputs,). `output_index` is a class index, or None
+    for the class predicted at x (found in the same forward pass); 0 or None for
+    regression."""
     if method not in METHODS:
         raise InvalidInputError(f"method must be one of {METHODS}, got {method!r}",
                                 field="explain")
@@ -222,24 +235,24 @@ def explain(
                                 f"{n_inputs} inputs and {encoder.n_outputs} outputs")
     x = _row("x", x, n_inputs)
     baseline = _row("baseline", baseline, n_inputs)
-    regression = encoder.task == "regression"
-    n_choices = 1 if regression else len(encoder.classes)
-    if isinstance(output_index, bool) or not isinstance(output_index, int | np.integer) \
-            or not 0 <= output_index < n_choices:
-        raise InvalidInputError(f"output index {output_index!r} is outside 0..{n_choices - 1}",
-                                field="output")
+    task = encoder.task
+    if output_index is not None:
+        n_choices = 1 if task == "regression" else len(encoder.classes)
+        if isinstance(output_index, bool) or not isinstance(output_index, int | np.integer) \
+                or not 0 <= output_index < n_choices:
+            raise InvalidInputError(
+                f"output index {output_index!r} is outside 0..{n_choices - 1}", field="output")
+        output_index = int(output_index)
     # A binary head has one unit, p(class 1); class 0 is 1 - p.
-    complement = encoder.task == "binary" and output_index == 0
-    unit = 0 if encoder.task == "binary" else int(output_index)
-    # d output / d unit: -1 for a complement, the target scale for raw regression units.
-    slope = -1.0 if complement else (encoder.target_scale if regression else 1.0)
+    unit = output_index if task == "multiclass" else 0
     delta = x - baseline
 
     if method == "integrated_gradients":
         _check_count("steps", steps, MAX_STEPS)
         alphas, trapezoid = _trapezoid(steps)
         path = baseline + alphas[:, None] * delta  # row 0 the baseline, row -1 x
-        values, gradient = output_and_input_gradient(network, path, unit, steps + 1, trapezoid)
+        unit, values, gradient = output_and_input_gradient(
+            network, path, unit, steps + 1, trapezoid, choose_row=-1)
         value, baseline_value = float(values[-1]), float(values[0])
         columns = gradient * delta
     else:
@@ -254,10 +267,11 @@ def explain(
             rows[:samples] += x
             rows[-2], rows[-1] = x, baseline
             mean = np.full(samples, 1.0 / samples)
-            values, gradient = output_and_input_gradient(network, rows, unit, samples, mean)
+            unit, values, gradient = output_and_input_gradient(
+                network, rows, unit, samples, mean, choose_row=-2)
             value, baseline_value = values[-2:].tolist()
         else:
-            value, baseline_value, gradient = gradient_at(network, x, baseline, unit)
+            unit, value, baseline_value, gradient = gradient_at(network, x, baseline, unit)
         if method == "gradient_times_input":
             columns = gradient * delta
         elif encoder.all_numeric:
@@ -270,19 +284,28 @@ def explain(
 
     if encoder.n_inputs != len(encoder.fields):
         columns = encoder.group(columns)
-    attributions = columns * slope
-    if complement:
-        value, baseline_value = 1.0 - value, 1.0 - baseline_value
-    elif regression:
+    label: Any = None
+    if task == "regression":
+        # Raw target units: value = standardised output * target_scale + target_center.
+        columns = columns * encoder.target_scale
         value = value * encoder.target_scale + encoder.target_center
         baseline_value = baseline_value * encoder.target_scale + encoder.target_center
+    elif task == "binary":
+        # The predicted class at a tie p = 0.5 is class 0, as argmax of [1 - p, p] gives.
+        index = output_index if output_index is not None else int(value > 0.5)
+        label = encoder.label_of(index)
+        if index == 0:
+            columns = -columns
+            value, baseline_value = 1.0 - value, 1.0 - baseline_value
+    else:
+        label = encoder.label_of(unit)
     gap = None
     if method == "integrated_gradients":
-        gap = abs(float(attributions.sum()) - (value - baseline_value))
+        gap = abs(float(columns.sum()) - (value - baseline_value))
     return Explanation(
         method=method,
-        output=None if regression else encoder.label_of(int(output_index)),
-        attributions=dict(zip(encoder.fields, attributions.tolist(), strict=True)),
+        output=label,
+        attributions=dict(zip(encoder.fields, columns.tolist(), strict=True)),
         baseline=encoder.raw_baseline(baseline),
         value=value,
         baseline_value=baseline_value,

@@ -64,13 +64,14 @@ def test_fused_passes_equal_the_networks_forward_and_input_gradient(
     for unit in range(encoder.n_outputs):
         expected_values = network.forward(rows)[:, unit]
         expected = network.input_gradient(rows, unit)
-        values, gradients = output_and_input_gradient(network, rows, unit, 9)
+        chosen, values, gradients = output_and_input_gradient(network, rows, unit, 9)
+        assert chosen == unit
         np.testing.assert_allclose(values, expected_values, rtol=1e-13, atol=1e-15)
         np.testing.assert_allclose(gradients, expected, rtol=1e-11, atol=1e-14)
         weights = np.linspace(0.1, 1.0, 9)
-        _, summed = output_and_input_gradient(network, rows, unit, 9, weights)
+        _, _, summed = output_and_input_gradient(network, rows, unit, 9, weights)
         np.testing.assert_allclose(summed, weights @ expected, rtol=1e-11, atol=1e-14)
-        value, baseline_value, gradient = gradient_at(network, rows[0], rows[1], unit)
+        _, value, baseline_value, gradient = gradient_at(network, rows[0], rows[1], unit)
         assert (value, baseline_value) == pytest.approx(tuple(expected_values[:2]), rel=1e-13)
         np.testing.assert_allclose(gradient, expected[0], rtol=1e-11, atol=1e-14)
 
@@ -127,6 +128,25 @@ def test_multiclass_explains_the_chosen_class_probability() -> None:
         gap = abs(sum(result.attributions.values()) - change)
         assert result.completeness_gap == pytest.approx(gap, abs=1e-15)
         assert gap < 1e-3 * abs(change)
+
+
+@pytest.mark.parametrize("task", ["binary", "multiclass", "regression"])
+@pytest.mark.parametrize("method", METHODS)
+def test_no_output_index_explains_the_predicted_class(task: str, method: str) -> None:
+    encoder, network, X = setup(task, seed=2)
+    baseline = X.mean(axis=0)
+    out = network.forward(X[:12])
+    if task == "binary":
+        predicted = (out[:, 0] > 0.5).astype(int)  # argmax of [1 - p, p]
+        assert len(set(predicted.tolist())) == 2  # both classes get explained
+    else:
+        predicted = out.argmax(axis=1) if task == "multiclass" else np.zeros(12, int)
+    for x, index in zip(X[:12], predicted.tolist(), strict=True):
+        chosen = explain(network, encoder, x, method=method, output_index=None,
+                         baseline=baseline)
+        explicit = explain(network, encoder, x, method=method, output_index=index,
+                           baseline=baseline)
+        assert chosen == explicit
 
 
 def test_smoothgrad_is_seeded() -> None:
