@@ -43,6 +43,7 @@ from service.usecases.predictions import (
 OPTION_NAMES = ("explain", "version", "output", "steps", "samples", "noise", "seed")
 MAX_SEED = 2**32 - 1
 _DIGITS = re.compile(r"[0-9]{1,10}")
+_ABSENT = object()
 
 
 class IntegerFromText(StrictInteger):
@@ -196,13 +197,16 @@ class PredictionReaders:
     def _options(self, given: dict[str, Any], *, text: bool,
                  errors: dict[str, list[str]]) -> dict[str, Any]:
         schema = self.query_options if text else self.body_options
+        # The class is checked against the model's own classes, apart from the
+        # rest, so one request learns about every bad parameter at once.
+        output = given.pop("output", _ABSENT)
         try:
             loaded: dict[str, Any] = schema.load(given)
         except ValidationError as exc:
             _merge(errors, exc.messages, "")
-            return {}
-        if "output" in loaded:
-            loaded["output"] = self._output(loaded["output"], text, errors)
+            loaded = dict(exc.valid_data or {})  # kept so conflicts are reported too
+        if output is not _ABSENT:
+            loaded["output"] = self._output(output, text, errors)
         return loaded
 
     def _output(self, value: Any, text: bool, errors: dict[str, list[str]]) -> Any:

@@ -55,14 +55,12 @@ class VersionUnavailableError(KeelsonError):
     """The version exists but cannot serve (its snapshot does not load)."""
 
     status = 503
-    title = "Service Unavailable"
 
 
 class NonFiniteOutputError(KeelsonError):
     """The network answered NaN or infinity: not JSON (RFC 8259), never served."""
 
     status = 500
-    title = "Internal Server Error"
 
 
 def find_model(cache: VersionCache, name: str) -> ModelEntry:
