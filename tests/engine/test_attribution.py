@@ -8,12 +8,7 @@ import json
 import numpy as np
 import pytest
 
-from engine.attribution import (
-    METHODS,
-    explain,
-    gradient_at,
-    output_and_input_gradient,
-)
+from engine.attribution import METHODS, explain
 from engine.encoding import Encoder
 from engine.errors import InvalidInputError
 from engine.network import Network
@@ -50,30 +45,6 @@ def setup(task: str, hidden: tuple[int, ...] = (8, 5), activation: str = "tanh",
                              HEAD[task], np.random.default_rng(seed + 1))
     network.params[:] = np.random.default_rng(seed + 2).normal(0.0, 0.8, network.params.size)
     return encoder, network, encoder.encode(rows)
-
-
-CASES = [(task, hidden, activation) for task in HEAD for hidden in ((), (7,), (8, 5), (6, 5, 4))
-         for activation in ("tanh", "logistic", "relu")]
-
-
-@pytest.mark.parametrize(("task", "hidden", "activation"), CASES)
-def test_fused_passes_equal_the_networks_forward_and_input_gradient(
-        task: str, hidden: tuple[int, ...], activation: str) -> None:
-    encoder, network, X = setup(task, hidden, activation)
-    rows = X[:9]
-    for unit in range(encoder.n_outputs):
-        expected_values = network.forward(rows)[:, unit]
-        expected = network.input_gradient(rows, unit)
-        chosen, values, gradients = output_and_input_gradient(network, rows, unit, 9)
-        assert chosen == unit
-        np.testing.assert_allclose(values, expected_values, rtol=1e-13, atol=1e-15)
-        np.testing.assert_allclose(gradients, expected, rtol=1e-11, atol=1e-14)
-        weights = np.linspace(0.1, 1.0, 9)
-        _, _, summed = output_and_input_gradient(network, rows, unit, 9, weights)
-        np.testing.assert_allclose(summed, weights @ expected, rtol=1e-11, atol=1e-14)
-        _, value, baseline_value, gradient = gradient_at(network, rows[0], rows[1], unit)
-        assert (value, baseline_value) == pytest.approx(tuple(expected_values[:2]), rel=1e-13)
-        np.testing.assert_allclose(gradient, expected[0], rtol=1e-11, atol=1e-14)
 
 
 def test_gradient_is_per_raw_unit_and_first_order_change_for_one_hot_fields() -> None:

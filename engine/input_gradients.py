@@ -1,0 +1,139 @@
+"""One forward and one backward pass from a chosen head output down to the inputs.
+
+Attribution needs, in a single pass, the explained output at several rows and
+its gradient with respect to the inputs: the backward pass of
+Network.input_gradient (tests hold the two equal) started from one output
+rather than from the loss. Kept apart from Network because the explanation
+path is latency-bound: values and gradients come from one pass, a weighted sum
+over rows is taken before the last product, and the one-record case keeps a
+single-unit head in Python floats.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+from numpy.typing import NDArray
+
+from .activations import ACTIVATE, DERIVATIVE
+from .network import Network
+
+
+def _softmax_(z: NDArray[np.float64]) -> NDArray[np.float64]:
+    """Row-wise softmax in place; exp never overflows after the max is taken off."""
+    z -= z.max(axis=1, keepdims=True)
+    np.exp(z, out=z)
+    z /= z.sum(axis=1, keepdims=True)
+    return z
+
+
+def _head_slopes(output: str, z: NDArray[np.float64], unit: int | None, m: int,
+                 choose_row: int) -> tuple[int, NDArray[np.float64], NDArray[np.float64]]:
+    """The head unit explained (None: the most probable at row `choose_row`), its
+    output at every row (n,), and d output / d logits (m, k) at the first m rows."""
+    if output == "softmax":
+        p = _softmax_(z)
+        if unit is None:
+            unit = int(p[choose_row].argmax())
+        value = p[:, unit]
+        # d p_u / d z_j = p_u (delta_uj - p_j)
+        slopes = p[:m] * -value[:m, None]
+        slopes[:, unit] += value[:m]
+        return unit, value, slopes
+    unit = 0 if unit is None else unit
+    slopes = np.zeros((m, z.shape[1]))
+    if output == "identity":
+        slopes[:, unit] = 1.0
+        return unit, z[:, unit], slopes
+    # Logistic as (1 + tanh(z / 2)) / 2: no overflow; d p / d z = p (1 - p).
+    p = z[:, unit] * 0.5
+    np.tanh(p, out=p)
+    p *= 0.5
+    p += 0.5
+    slopes[:, unit] = p[:m] * (1.0 - p[:m])
+    return unit, p, slopes
+
+
+def output_and_input_gradient(
+    network: Network, X: NDArray[np.float64], unit: int | None, m: int,
+    row_weights: NDArray[np.float64] | None = None, choose_row: int = -1,
+) -> tuple[int, NDArray[np.float64], NDArray[np.float64]]:
+    """Head output `unit` at every row of X (n,) and, by one backward pass from
+    that output down to the inputs, its gradient at the first m rows (m, n_inputs),
+    or their `row_weights`-weighted sum (n_inputs,) when weights (m,) are given.
+    Returns the unit too: None picks the most probable unit at row `choose_row`.
+
+    The same backpropagation as Network.input_gradient (a test holds them equal),
+    kept here because one pass must give both the values and the gradients, and
+    because the weighted sum can be taken before the last product.
+    """
+    activate = ACTIVATE[network.activation]
+    derivative = DERIVATIVE[network.activation]
+    weights, biases = network.weights, network.biases
+    last = len(weights) - 1
+    hidden: list[NDArray[np.float64]] = []
+    a = X
+    for i in range(last):
+        a = np.dot(a, weights[i])
+        a += biases[i]
+        activate(a)
+        hidden.append(a)
+    z = np.dot(a, weights[last])
+    z += biases[last]
+    unit, value, slopes = _head_slopes(network.output, z, unit, m, choose_row)
+    g = np.dot(slopes, weights[last].T)
+    for i in range(last, 0, -1):
+        h = hidden[i - 1][:m]
+        g *= derivative(h, np.empty_like(h))
+        if i == 1 and row_weights is not None:
+            g = np.dot(row_weights, g)  # sum the rows before, not after, the last product
+        g = np.dot(g, weights[i - 1].T)
+    if last == 0 and row_weights is not None:
+        g = np.dot(row_weights, g)
+    return unit, value, g
+
+
+def gradient_at(network: Network, x: NDArray[np.float64], baseline: NDArray[np.float64],
+                unit: int | None) -> tuple[int, float, float, NDArray[np.float64]]:
+    """The unit (None: the most probable at x), f(x), f(baseline) and d f / d x
+    (n_inputs,) for that head output: the one-record case of
+    `output_and_input_gradient`, trimmed for latency (both rows go forward
+    together, only x comes back; a single-unit head in Python floats)."""
+    activate = ACTIVATE[network.activation]
+    derivative = DERIVATIVE[network.activation]
+    weights, biases = network.weights, network.biases
+    last = len(weights) - 1
+    hidden: list[NDArray[np.float64]] = []
+    a = np.concatenate((x, baseline)).reshape(2, -1)
+    for i in range(last):
+        a = np.dot(a, weights[i])
+        a += biases[i]
+        activate(a)
+        hidden.append(a[0])
+    if network.output == "softmax":
+        p = np.dot(a, weights[last])
+        p += biases[last]
+        _softmax_(p)
+        if unit is None:
+            unit = int(p[0].argmax())
+        value, baseline_value = p[:, unit].tolist()
+        slopes = p[0] * -value  # d p_u / d z_j = p_u (delta_uj - p_j)
+        slopes[unit] += value
+        g = np.dot(weights[last], slopes)
+    else:
+        unit = 0 if unit is None else unit
+        column = weights[last][:, unit]
+        bias = float(biases[last][unit])
+        value, baseline_value = (z + bias for z in np.dot(a, column).tolist())
+        slope = 1.0
+        if network.output == "logistic":
+            value = 0.5 + 0.5 * math.tanh(0.5 * value)
+            baseline_value = 0.5 + 0.5 * math.tanh(0.5 * baseline_value)
+            slope = value * (1.0 - value)
+        g = column * slope
+    for i in range(last, 0, -1):
+        h = hidden[i - 1]
+        g *= derivative(h, np.empty_like(h))
+        g = np.dot(weights[i - 1], g)
+    return unit, value, baseline_value, g

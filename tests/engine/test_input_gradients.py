@@ -1,0 +1,57 @@
+"""The fused forward/backward passes used by attribution agree with Network's own."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from engine.input_gradients import gradient_at, output_and_input_gradient
+from engine.network import Network
+
+HEAD = {"binary": ("logistic", 1), "multiclass": ("softmax", 3), "regression": ("identity", 1)}
+
+
+def setup(task: str, hidden: tuple[int, ...], activation: str) -> tuple[Network, np.ndarray]:
+    head, outputs = HEAD[task]
+    network = Network.create((6, *hidden, outputs), activation, head, np.random.default_rng(1))
+    network.params[:] = np.random.default_rng(2).normal(0.0, 0.8, network.params.size)
+    return network, np.random.default_rng(3).normal(size=(9, 6))
+
+
+CASES = [(task, hidden, activation) for task in HEAD for hidden in ((), (7,), (8, 5), (6, 5, 4))
+         for activation in ("tanh", "logistic", "relu")]
+
+
+@pytest.mark.parametrize(("task", "hidden", "activation"), CASES)
+def test_fused_passes_equal_the_networks_forward_and_input_gradient(
+        task: str, hidden: tuple[int, ...], activation: str) -> None:
+    network, rows = setup(task, hidden, activation)
+    for unit in range(network.n_outputs):
+        expected_values = network.forward(rows)[:, unit]
+        expected = network.input_gradient(rows, unit)
+        chosen, values, gradients = output_and_input_gradient(network, rows, unit, 9)
+        assert chosen == unit
+        np.testing.assert_allclose(values, expected_values, rtol=1e-13, atol=1e-15)
+        np.testing.assert_allclose(gradients, expected, rtol=1e-11, atol=1e-14)
+        weights = np.linspace(0.1, 1.0, 9)
+        _, _, summed = output_and_input_gradient(network, rows, unit, 9, weights)
+        np.testing.assert_allclose(summed, weights @ expected, rtol=1e-11, atol=1e-14)
+        _, value, baseline_value, gradient = gradient_at(network, rows[0], rows[1], unit)
+        assert (value, baseline_value) == pytest.approx(tuple(expected_values[:2]), rel=1e-13)
+        np.testing.assert_allclose(gradient, expected[0], rtol=1e-11, atol=1e-14)
+
+
+@pytest.mark.parametrize("hidden", [(), (7,), (8, 5)])
+def test_no_unit_picks_the_most_probable_class(hidden: tuple[int, ...]) -> None:
+    network, rows = setup("multiclass", hidden, "tanh")
+    predicted = network.forward(rows).argmax(axis=1)
+    for r in range(4):
+        unit, _, _, gradient = gradient_at(network, rows[r], rows[r + 1], None)
+        assert unit == predicted[r]
+        np.testing.assert_allclose(gradient, network.input_gradient(rows[r], unit)[0],
+                                   rtol=1e-11, atol=1e-14)
+    unit, _, _ = output_and_input_gradient(network, rows, None, 9, choose_row=-2)
+    assert unit == predicted[-2]
+    for task in ("binary", "regression"):
+        network, rows = setup(task, hidden, "tanh")
+        assert gradient_at(network, rows[0], rows[1], None)[0] == 0
