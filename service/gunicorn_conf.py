@@ -20,7 +20,7 @@ Command-line flags (and ``GUNICORN_CMD_ARGS``) still win over these.
 from __future__ import annotations
 
 import os
-import shutil
+import re
 import tempfile
 from pathlib import Path
 from typing import Any
@@ -86,15 +86,18 @@ access_log_format = '%(h)s "%(r)s" %(s)s %(b)s %(M)sms'
 forwarded_allow_ips = os.environ.get("FORWARDED_ALLOW_IPS", "127.0.0.1")
 
 
+# prometheus_client's sample files: <kind>_<pid>.db. Only these are removed, so
+# a folder shared with anything else loses nothing else.
+_SAMPLE_FILE = re.compile(r"^(counter|gauge_[a-z]+|histogram|summary)_\d+\.db$")
+
+
 def on_starting(server: Any) -> None:
     """Start from an empty metrics folder: samples left by an earlier run
     would otherwise be summed into this one's."""
     _METRICS_DIR.mkdir(parents=True, exist_ok=True)
     for entry in _METRICS_DIR.iterdir():
-        if entry.is_file() and entry.suffix == ".db":
+        if entry.is_file() and _SAMPLE_FILE.match(entry.name):
             entry.unlink()
-        elif entry.is_dir():
-            shutil.rmtree(entry, ignore_errors=True)
 
 
 def child_exit(server: Any, worker: Any) -> None:

@@ -45,6 +45,7 @@ REQUEST_ID_HEADER = "X-Request-Id"
 # newlines or markup into logs and headers.
 _SANE_REQUEST_ID = re.compile(r"^[A-Za-z0-9._:-]{1,128}$")
 _UNMATCHED_ROUTE = "<unmatched>"
+_log = logging.getLogger("keelson.observability")
 
 
 @functools.cache
@@ -71,6 +72,9 @@ def request_metrics() -> tuple[Counter, Histogram]:
 
 def init_app(app: Flask) -> None:
     """Bind metrics, request ids and the /metrics route to ``app``."""
+    folder = multiprocess_dir()
+    if folder is not None:  # prometheus_client writes there but never creates it
+        os.makedirs(folder, exist_ok=True)
     requests, latency = request_metrics()
 
     def finish_request(response: Response) -> Response:
@@ -82,8 +86,11 @@ def init_app(app: Flask) -> None:
             request_id = g.request_id = uuid.uuid4().hex
         rule = request.url_rule
         route = rule.rule if rule is not None else _UNMATCHED_ROUTE
-        requests.labels(request.method, route, str(response.status_code)).inc()
-        latency.labels(request.method, route).observe(time.perf_counter() - started)
+        try:
+            requests.labels(request.method, route, str(response.status_code)).inc()
+            latency.labels(request.method, route).observe(time.perf_counter() - started)
+        except OSError:  # a lost metrics folder must not fail the answer itself
+            _log.exception("could not record request metrics")
         response.headers[REQUEST_ID_HEADER] = request_id
         return response
 
