@@ -219,6 +219,9 @@ def logging_config(level: str = "INFO") -> dict[str, Any]:
         "loggers": {
             "gunicorn.error": {"level": level, "handlers": ["stderr"], "propagate": False},
             "gunicorn.access": {"level": "INFO", "handlers": ["access"], "propagate": False},
+            # /readyz asks alembic whether the schema is current: one line per
+            # probe at INFO would drown the log.
+            "alembic": {"level": "WARNING"},
         },
     }
 

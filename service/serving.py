@@ -9,6 +9,7 @@ stopped too and the exit status says so.
 
 from __future__ import annotations
 
+import contextlib
 import os
 import shutil
 import signal
@@ -62,11 +63,12 @@ def run_server(
     try:
         children["api"] = subprocess.Popen(
             [sys.executable, "-m", "gunicorn", "--config", "python:service.gunicorn_conf"],
-            env=env, process_group=0,
+            env=env, process_group=0, preexec_fn=_stop_with_parent,
         )
         if with_worker:
             children["worker"] = subprocess.Popen(
                 [sys.executable, "-m", "service.cli", "worker"], env=env, process_group=0,
+                preexec_fn=_stop_with_parent,
             )
         print(f"keelson: API on {listen_address(env)}"
               f"{' with a training worker' if with_worker else ''}; Ctrl-C stops",
@@ -92,6 +94,18 @@ def run_server(
             signal.signal(signum, handler)
         if own_metrics_dir is not None:
             shutil.rmtree(own_metrics_dir, ignore_errors=True)
+
+
+def _stop_with_parent() -> None:
+    """In the child, before exec: get SIGTERM if this supervisor dies, even by
+    SIGKILL, so no orphan keeps serving (Linux prctl PR_SET_PDEATHSIG)."""
+    if not sys.platform.startswith("linux"):
+        return
+    import ctypes
+
+    pr_set_pdeathsig = 1
+    with contextlib.suppress(OSError, AttributeError):
+        ctypes.CDLL(None, use_errno=True).prctl(pr_set_pdeathsig, signal.SIGTERM)
 
 
 def _stop_all(children: Mapping[str, subprocess.Popen[bytes]]) -> int:
