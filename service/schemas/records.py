@@ -9,7 +9,8 @@ Every field is required and non-null; unknown fields are rejected.
 from __future__ import annotations
 
 import json
-from collections.abc import Mapping
+import math
+from collections.abc import Callable, Mapping, Sequence
 from functools import lru_cache
 from typing import Any
 
@@ -94,3 +95,97 @@ def _record_schema(key: str, text: bool) -> Schema:
     }
     schema_class = Schema.from_dict(declared, name="Record")
     return schema_class(unknown=RAISE)
+
+
+Loader = Callable[[Sequence[Any]], "list[dict[str, Any]] | None"]
+
+
+def fast_record_loader(spec: Mapping[str, Any]) -> Loader:
+    """A plain-Python twin of ``record_schema(spec).load(records, many=True)``
+    for the common case where every record is valid.
+
+    It returns the same loaded records, or None at the first thing it does not
+    accept; the caller then runs the marshmallow schema, which names every bad
+    field. It accepts a strict subset of what the schema accepts (the tests hold
+    the two together), at a small fraction of the cost per record.
+    """
+    return _fast_record_loader(_cache_key(spec))
+
+
+@lru_cache(maxsize=CACHE_SIZE)
+def _fast_record_loader(key: str) -> Loader:
+    spec = json.loads(key)
+    plan = []
+    for feature in spec["features"]:
+        kind = feature["type"]
+        if kind == "numeric":
+            plan.append((feature["name"], 0, feature.get("min"), feature.get("max")))
+        elif kind == "categorical":
+            plan.append((feature["name"], 1, frozenset(feature["levels"]), None))
+        else:
+            plan.append((feature["name"], 2, None, None))
+    width = len(plan)
+    regression = spec["task"] == "regression" or spec.get("classes") is None
+    classes = {} if regression else {(type(c), c): c for c in spec["classes"]}
+    allowed = {"key", "features", "label"}
+
+    def number(value: Any, low: Any, high: Any) -> float | None:
+        kind = type(value)
+        if kind is int:
+            try:
+                value = float(value)
+            except OverflowError:
+                return None
+        elif kind is not float:
+            return None
+        if not math.isfinite(value):
+            return None
+        if (low is not None and value < low) or (high is not None and value > high):
+            return None
+        return float(value)
+
+    def load(records: Sequence[Any]) -> list[dict[str, Any]] | None:
+        loaded = []
+        for record in records:
+            if type(record) is not dict or not record.keys() <= allowed:
+                return None
+            row = record.get("features")
+            if type(row) is not dict or len(row) != width or "label" not in record:
+                return None
+            features: dict[str, Any] = {}
+            for name, kind, a, b in plan:
+                if name not in row:
+                    return None
+                value = row[name]
+                if kind == 0:
+                    value = number(value, a, b)
+                    if value is None:
+                        return None
+                elif kind == 1:
+                    if type(value) is not str or value not in a:
+                        return None
+                elif value is not True and value is not False:
+                    return None
+                features[name] = value
+            label = record["label"]
+            if regression:
+                label = number(label, None, None)
+                if label is None:
+                    return None
+            else:
+                label = classes.get((type(label), label), _MISSING)
+                if label is _MISSING:
+                    return None
+            out: dict[str, Any] = {"features": features, "label": label}
+            if "key" in record:
+                record_key = record["key"]
+                if type(record_key) is not str or not 1 <= len(record_key) <= MAX_KEY_LENGTH:
+                    return None
+                out["key"] = record_key
+            loaded.append(out)
+        return loaded
+
+    return load
+
+
+_MISSING = object()

@@ -12,21 +12,23 @@ while seq n may still commit.
 from __future__ import annotations
 
 import hashlib
+import json
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
 from marshmallow import ValidationError
-from sqlalchemy import func, insert, select, text, update
+from sqlalchemy import String, any_, bindparam, func, insert, select, text, update
+from sqlalchemy.dialects.postgresql import ARRAY
 from sqlalchemy.orm import Session, sessionmaker
 
 from service.errors import InvalidInputError, TooLargeError
 from service.problems import flatten_messages
-from service.schemas.records import record_schema
+from service.schemas.records import fast_record_loader, record_schema
 from service.store import ModelRow, RecordRow, utcnow
 from service.usecases.common import find_model
 
-KEY_CHUNK = 500  # keys per IN (...) lookup: well under every backend's parameter limit
+KEY_CHUNK = 500  # keys per IN (...) on SQLite: under its parameter limit
 _SPLIT_SCALE = float(2**64)
 
 
@@ -80,6 +82,9 @@ def ingest_records(
 def validate_records(spec: Mapping[str, Any], records: Sequence[Any]) -> list[dict[str, Any]]:
     """The records loaded by the model's schema, or InvalidInputError naming
     every bad field as ``records.<i>.<field>``."""
+    fast = fast_record_loader(spec)(records)
+    if fast is not None:
+        return fast
     try:
         loaded: list[dict[str, Any]] = record_schema(spec).load(records, many=True)
     except ValidationError as exc:
@@ -104,22 +109,27 @@ def split_of(model_id: int, key: str | None, seq: int, holdout_fraction: float) 
 
 
 def _store(session: Session, model: ModelRow, valid: list[dict[str, Any]]) -> IngestResult:
-    fresh, duplicates = _drop_duplicates(session, model.id, valid)
+    postgres = session.get_bind().dialect.name == "postgresql"
+    if postgres:
+        # The key lookup below runs once per batch; psycopg prepares it after
+        # a few runs and PostgreSQL may then settle on a generic plan costed
+        # from statistics taken when the table was small (a sequential scan
+        # that grows with the table). Plan each statement for its values.
+        session.execute(text("SET LOCAL plan_cache_mode = force_custom_plan"))
+    fresh = _drop_duplicates(session, model.id, valid, postgres=postgres)
     if not fresh:
-        return IngestResult(accepted=0, duplicates=duplicates)
-    seqs = _allocate_seqs(session, len(fresh))
+        return IngestResult(accepted=0, duplicates=len(valid))
+    seqs = _allocate_seqs(session, len(fresh), postgres=postgres)
     fraction = float(model.spec["training"]["holdout_fraction"])
     now = utcnow()
-    rows = []
-    holdout = 0
-    for seq, record in zip(seqs, fresh, strict=True):
-        key = record.get("key")
-        split = split_of(model.id, key, seq, fraction)
-        holdout += split == "holdout"
-        rows.append({"seq": seq, "model_id": model.id, "key": key,
-                     "features": record["features"], "label": record["label"],
-                     "split": split, "received_at": now})
-    session.execute(insert(RecordRow.__table__), rows)  # one executemany
+    rows = [
+        {"seq": seq, "model_id": model.id, "key": record.get("key"),
+         "features": record["features"], "label": record["label"],
+         "split": split_of(model.id, record.get("key"), seq, fraction), "received_at": now}
+        for seq, record in zip(seqs, fresh, strict=True)
+    ]
+    holdout = sum(row["split"] == "holdout" for row in rows)
+    _bulk_insert(session, rows, postgres=postgres)
     session.execute(
         update(ModelRow)
         .where(ModelRow.id == model.id)
@@ -129,25 +139,34 @@ def _store(session: Session, model: ModelRow, valid: list[dict[str, Any]]) -> In
         )
         .execution_options(synchronize_session=False)
     )
-    return IngestResult(accepted=len(rows), duplicates=duplicates)
+    return IngestResult(accepted=len(rows), duplicates=len(valid) - len(rows))
 
 
 def _drop_duplicates(
-    session: Session, model_id: int, valid: list[dict[str, Any]]
-) -> tuple[list[dict[str, Any]], int]:
-    keys = [r["key"] for r in valid if "key" in r]
+    session: Session, model_id: int, valid: list[dict[str, Any]], *, postgres: bool
+) -> list[dict[str, Any]]:
+    """The batch without keys already stored or repeated within it (first wins).
+
+    Runs under the model lock, so no other transaction can store one of these
+    keys for this model before this one commits.
+    """
+    keys = list(dict.fromkeys(r["key"] for r in valid if "key" in r))
     if not keys:
-        return valid, 0
+        return valid
     stored: set[str] = set()
-    unique = list(dict.fromkeys(keys))
-    for start in range(0, len(unique), KEY_CHUNK):
-        chunk = unique[start:start + KEY_CHUNK]
-        stored.update(
-            session.scalars(
-                select(RecordRow.key).where(RecordRow.model_id == model_id,
-                                            RecordRow.key.in_(chunk))
+    if postgres:  # one array parameter instead of thousands of scalars
+        stored.update(session.scalars(
+            select(RecordRow.key).where(
+                RecordRow.model_id == model_id,
+                RecordRow.key == any_(bindparam("keys", keys, type_=ARRAY(String))),
             )
-        )
+        ))
+    else:
+        for start in range(0, len(keys), KEY_CHUNK):
+            stored.update(session.scalars(
+                select(RecordRow.key).where(RecordRow.model_id == model_id,
+                                            RecordRow.key.in_(keys[start:start + KEY_CHUNK]))
+            ))
     fresh = []
     for record in valid:
         key = record.get("key")
@@ -156,12 +175,31 @@ def _drop_duplicates(
                 continue
             stored.add(key)  # a later repeat in this batch is a duplicate too
         fresh.append(record)
-    return fresh, len(valid) - len(fresh)
+    return fresh
 
 
-def _allocate_seqs(session: Session, count: int) -> list[int]:
+_COLUMNS = ("seq", "model_id", "key", "features", "label", "split", "received_at")
+
+
+def _bulk_insert(session: Session, rows: list[dict[str, Any]], *, postgres: bool) -> None:
+    """Insert ``rows`` in one round trip: COPY on PostgreSQL (several times
+    faster than row-by-row binds), one executemany on SQLite (a C loop)."""
+    if not postgres:
+        session.execute(insert(RecordRow.__table__), rows)
+        return
+    connection = session.connection().connection.driver_connection
+    dumps = json.dumps
+    with connection.cursor() as cursor, cursor.copy(
+        f"COPY records ({', '.join(_COLUMNS)}) FROM STDIN"
+    ) as copy:
+        for row in rows:
+            copy.write_row((row["seq"], row["model_id"], row["key"], dumps(row["features"]),
+                            dumps(row["label"]), row["split"], row["received_at"]))
+
+
+def _allocate_seqs(session: Session, count: int, *, postgres: bool) -> list[int]:
     """``count`` increasing sequence numbers, taken while the model lock is held."""
-    if session.get_bind().dialect.name == "postgresql":
+    if postgres:
         seqs = session.scalars(
             text("SELECT nextval(pg_get_serial_sequence('records', 'seq')) "
                  "FROM generate_series(1, :n)"),
