@@ -173,6 +173,8 @@ def _fast_record_loader(key: str) -> Loader:
                 if label is None:
                     return None
             else:
+                if type(label) not in _CLASS_TYPES:  # also keeps lists out of the lookup
+                    return None
                 label = classes.get((type(label), label), _MISSING)
                 if label is _MISSING:
                     return None
@@ -189,3 +191,4 @@ def _fast_record_loader(key: str) -> Loader:
 
 
 _MISSING = object()
+_CLASS_TYPES = (str, int, bool)
