@@ -157,7 +157,7 @@ class Encoder:
             try:
                 self._class_index = {_exact_key(c): i for i, c in enumerate(self.classes)}
             except TypeError as exc:
-                raise InvalidInputError("classes must be strings or booleans",
+                raise InvalidInputError("classes must be strings, integers or booleans",
                                         field="classes") from exc
             wanted_two = task == "binary"
             if len(self._class_index) != len(self.classes) or (
