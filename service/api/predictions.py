@@ -8,10 +8,10 @@ built once) and dumps its answer straight to JSON.
 from __future__ import annotations
 
 import json
-import threading
 from typing import Any
 
 from flask import Flask, Response, current_app, request
+from flask.blueprints import BlueprintSetupState
 
 from service.api.base import Blueprint, read_json_body
 from service.auth import requires
@@ -31,7 +31,7 @@ blueprint = Blueprint(
 )
 
 CACHE_KEY = "keelson.version_cache"
-_cache_lock = threading.Lock()
+
 
 FEATURE_PARAMETERS = {
     "in": "query",
@@ -49,20 +49,20 @@ BATCH_BODY = {
 }
 
 
+@blueprint.record_once
+def _make_cache(state: BlueprintSetupState) -> None:
+    # Made with the app, so a bad setting fails create_app, not the first request.
+    app = state.app
+    app.extensions[CACHE_KEY] = VersionCache(
+        get_database(app).read,
+        max_age=float(app.config["KEELSON_ACTIVE_STALENESS_SECONDS"]),
+        capacity=int(app.config["KEELSON_VERSION_CACHE_SIZE"]),
+    )
+
+
 def version_cache(app: Flask | None = None) -> VersionCache:
-    """The app's version cache, made on first use from the app's settings."""
-    target = app if app is not None else current_app
-    cache: VersionCache | None = target.extensions.get(CACHE_KEY)
-    if cache is None:
-        with _cache_lock:
-            cache = target.extensions.get(CACHE_KEY)
-            if cache is None:
-                cache = VersionCache(
-                    get_database(target).read,
-                    max_age=float(target.config["KEELSON_ACTIVE_STALENESS_SECONDS"]),
-                    capacity=int(target.config["KEELSON_VERSION_CACHE_SIZE"]),
-                )
-                target.extensions[CACHE_KEY] = cache
+    """The app's version cache (one per app, shared by its threads)."""
+    cache: VersionCache = (app if app is not None else current_app).extensions[CACHE_KEY]
     return cache
 
 

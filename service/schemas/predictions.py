@@ -196,6 +196,8 @@ class PredictionReaders:
 
     def _options(self, given: dict[str, Any], *, text: bool,
                  errors: dict[str, list[str]]) -> dict[str, Any]:
+        if not given:
+            return {}  # the common request: defaults, no schema pass needed
         schema = self.query_options if text else self.body_options
         # The class is checked against the model's own classes, apart from the
         # rest, so one request learns about every bad parameter at once.

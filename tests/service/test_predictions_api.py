@@ -290,3 +290,9 @@ def test_concurrent_requests_share_one_cached_network_safely(api: ApiClient) -> 
         thread.join()
     assert failures == []
     assert len(version_cache(api.app)._versions) == 1
+
+
+def test_a_staleness_bound_above_one_second_fails_at_app_creation(sqlite_url: str) -> None:
+    # ARCHITECTURE.md invariant 3 promises promotions visible within a short bound (<= 1 s).
+    with pytest.raises(ValueError, match="max_age"):
+        build_app(sqlite_url, KEELSON_ACTIVE_STALENESS_SECONDS=2.5)
