@@ -31,6 +31,9 @@ def parse_csv_records(
     Raises MalformedError (the text is not CSV), TooLargeError (more than
     ``max_records`` rows) or InvalidInputError (a header or cell breaks a rule).
     """
+    # Spreadsheets often start UTF-8 files with a byte order mark; it is not
+    # part of the first column's name (common practice, no source).
+    text = text.removeprefix("\ufeff")
     # RFC 4180 quoting; strict makes a stray quote an error instead of data.
     reader = csv.reader(io.StringIO(text, newline=""), strict=True)
     try:

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from typing import Any
 
-from flask import current_app
+from flask import Response, current_app, jsonify
 from sqlalchemy import text
 
 from service.api.base import Blueprint
@@ -49,7 +49,5 @@ def readyz() -> dict[str, Any]:
 @blueprint.route("/openapi.json", methods=["GET"])
 @public
 @blueprint.doc(summary="This API's OpenAPI 3 document.")
-def openapi_json() -> Any:
-    from flask import jsonify
-
+def openapi_json() -> Response:
     return jsonify(current_app.extensions["keelson.openapi"]())

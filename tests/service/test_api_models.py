@@ -169,3 +169,11 @@ def test_an_unknown_model_is_not_found(api: ApiClient) -> None:
     body = api.request("GET", "/v1/models/no-such", 404)
     assert body == {"type": "about:blank", "title": "Not Found", "status": 404,
                     "detail": "There is no model named 'no-such'."}
+
+
+def test_feature_names_cannot_shadow_prediction_query_parameters() -> None:
+    # GET predictions reads features and options from one query string.
+    from service.schemas import RESERVED_FIELD_NAMES
+    from service.schemas.predictions import PredictionQuerySchema
+
+    assert set(PredictionQuerySchema().fields) <= RESERVED_FIELD_NAMES
