@@ -3,20 +3,25 @@
 The per-record path works in buffers allocated once: the hidden activations
 of all layers side by side (each followed by a constant 1 that multiplies the
 bias row), their derivatives, the deltas, and the gradient, which is a row of
-the optimizer's buffer. Every NumPy call writes through `out=`; single-output
-heads run in Python floats. Nothing grows with the number of records.
+the optimizer's buffer. Every NumPy call writes into its `out` argument (given
+positionally: keyword parsing costs as much as a small array operation), and
+single-output heads run in Python floats. Nothing grows with the records.
+
+A single-output network backpropagates d z / d params (z the output unit's
+pre-activation) and lets the optimizer multiply by the scalar dLoss/dz: that
+folds the loss into one coefficient instead of one pass per layer.
 """
 
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
 
 from engine import heads
-from engine.activations import DERIVATIVE
 from engine.errors import InvalidInputError, NonFiniteError
 from engine.metrics import Prequential
 from engine.network import Network
@@ -33,6 +38,42 @@ def augment(X: Array) -> Array:
     return out
 
 
+def _tanh_(z: Array) -> None:
+    np.tanh(z, z)
+
+
+def _relu_(z: Array) -> None:
+    np.maximum(z, 0.0, out=z)
+
+
+def _logistic_(z: Array) -> None:
+    # (1 + tanh(z / 2)) / 2: no overflow for any z.
+    np.multiply(z, 0.5, z)
+    np.tanh(z, z)
+    np.multiply(z, 0.5, z)
+    np.add(z, 0.5, z)
+
+
+def _tanh_slope(y: Array, out: Array) -> None:
+    np.multiply(y, y, out)  # d tanh/dz = 1 - y^2
+    np.subtract(1.0, out, out)
+
+
+def _logistic_slope(y: Array, out: Array) -> None:
+    np.subtract(1.0, y, out)  # d logistic/dz = y (1 - y)
+    np.multiply(out, y, out)
+
+
+def _relu_slope(y: Array, out: Array) -> None:
+    np.sign(y, out)  # y >= 0, so sign(y) = [y > 0]
+
+
+_ACTIVATE: dict[str, Callable[[Array], None]] = {
+    "tanh": _tanh_, "relu": _relu_, "logistic": _logistic_}
+_SLOPE: dict[str, Callable[[Array, Array], None]] = {
+    "tanh": _tanh_slope, "relu": _relu_slope, "logistic": _logistic_slope}
+
+
 class OnlineTrainer:
     """Applies records one at a time to `network` with `optimizer` (binds them together)."""
 
@@ -40,38 +81,48 @@ class OnlineTrainer:
         heads.check_head(network.output, loss)
         network.bind_(optimizer.params)
         self.network, self.optimizer, self.loss = network, optimizer, loss
-        sizes = network.sizes
-        hidden = sizes[1:-1]
-        k = sizes[-1]
+        hidden = network.sizes[1:-1]
+        k = network.sizes[-1]
         self.n_outputs = k
-        # Hidden activations, each followed by a 1 (never overwritten).
+        last = len(network.layers) - 1
+        self._last = last
+        # Hidden activations side by side, each followed by a 1 (never overwritten).
         self._hidden = np.ones(sum(h + 1 for h in hidden))
-        self._derivative = np.empty_like(self._hidden)
-        acts: list[Array] = []
-        cores: list[Array] = []
-        slopes: list[Array] = []
-        offset = 0
+        self._slopes_all = np.empty_like(self._hidden)
+        acts, cores, slopes, offset = [], [], [], 0
         for h in hidden:
             acts.append(self._hidden[offset : offset + h + 1])
             cores.append(self._hidden[offset : offset + h])
-            slopes.append(self._derivative[offset : offset + h])
+            slopes.append(self._slopes_all[offset : offset + h])
             offset += h + 1
-        self._acts, self._cores, self._slopes = acts, cores, slopes
         self._act_columns = [a[:, None] for a in acts]
         self._deltas = [np.empty(h) for h in hidden] + [np.empty(k)]
         self._delta_rows = [d[None, :] for d in self._deltas]
         self._grads = network._views(optimizer.grad)
         self._z = np.empty(k)
         self._p = np.empty(k)  # head outputs of the current record
-        self._exp = np.empty(k)
-        self._activate = _ACTIVATE_INPLACE[network.activation]
-        self._derive = DERIVATIVE[network.activation]
-        last = len(network.layers) - 1
-        self._last = last
-        # Single-output heads: the last layer's gradient and back-propagated delta are
-        # a vector times a Python float (cheaper than an outer product).
+        self._activate = _ACTIVATE[network.activation]
+        self._slope = _SLOPE[network.activation]
+        self._forward_plan = list(zip(network.layers[:-1], cores, acts, strict=True))
+        # Backward plan for hidden layer i, last first: (source, slopes, delta, delta row,
+        # column of what feeds the layer (None: the input), gradient block, and the
+        # weights and delta one layer down (None at the first layer)). The delta is
+        # source * slopes, where source holds the weights times the delta above.
+        self._backward_plan: list[tuple[Array, Array, Array, Array, Array | None, Array,
+                                        tuple[Array, Array] | None]] = []
+        for i in range(last - 1, -1, -1):
+            self._backward_plan.append((
+                self._deltas[i], slopes[i], self._deltas[i], self._delta_rows[i],
+                self._act_columns[i - 1] if i > 0 else None, self._grads[i],
+                (network.weights[i], self._deltas[i - 1]) if i > 0 else None))
+        # Single output: dz/d(last hidden) is the output weight column, so the first
+        # delta is that column times the slopes, straight from the weights.
+        self._scalar_plan = list(self._backward_plan)
+        if k == 1 and last > 0:
+            first = self._scalar_plan[0]
+            self._scalar_plan[0] = (network.weights[last].reshape(-1), *first[1:])
+        self._last_layer_flat = network.layers[last].reshape(-1)  # (h + 1,) when k == 1
         self._last_grad_flat = self._grads[last].reshape(-1)
-        self._last_weights_flat = network.weights[last].reshape(-1)  # used when k == 1
         self._binary = network.output == "logistic"
         self._squared_logistic = self._binary and loss == "squared_error"
         self._identity = network.output == "identity"
@@ -91,127 +142,138 @@ class OnlineTrainer:
             return 0
         Xa = augment(X)
         columns = Xa[:, :, None]
-        scalar_head = self.n_outputs == 1
         raw_targets = (y * target_scale + target_center) if self._identity else y
-        y_list = y.tolist()
-        raw_list = raw_targets.tolist()
-        flat_scores = scores.reshape(-1) if scalar_head else scores
+        flat_scores = scores.reshape(-1) if self.n_outputs == 1 else scores
         # Overflow is detected on scalars and raised as NonFiniteError; no warnings.
         with np.errstate(over="ignore", invalid="ignore"):
-            self._run(Xa, columns, y_list, raw_list, flat_scores, metrics,
+            self._run(Xa, columns, y.tolist(), raw_targets.tolist(), flat_scores, metrics,
                       target_center, target_scale)
         return n
 
-    def _run(self, Xa: Array, columns: Array, y_list: list[Any], raw_list: list[Any],
+    def _run(self, Xa: Array, columns: Array, targets: list[Any], raw_targets: list[Any],
              flat_scores: Array, metrics: Prequential | None,
              target_center: float, target_scale: float) -> None:
-        scalar_head = self.n_outputs == 1
-        p_buf = self._p
+        if self.n_outputs == 1:
+            self._run_scalar(Xa, columns, targets, raw_targets, flat_scores, metrics,
+                             target_center, target_scale)
+            return
+        p = self._p
+        update = None if metrics is None else metrics.update
         for i in range(Xa.shape[0]):
             try:
-                value = self._step(Xa[i], columns[i], y_list[i])
+                self._vector_step(Xa[i], columns[i], targets[i])
             except NonFiniteError as exc:
                 raise NonFiniteError(f"record {i}: {exc}", applied=i) from exc
-            if scalar_head:
-                if self._identity:
-                    value = value * target_scale + target_center
-                    p_buf[0] = value
-                flat_scores[i] = value
-            else:
-                flat_scores[i] = p_buf
-            if metrics is not None:
-                metrics.update(raw_list[i], p_buf)
+            flat_scores[i] = p
+            if update is not None:
+                update(raw_targets[i], p)
 
-    def _step(self, x: Array, x_column: Array, target: Any) -> float:
-        """Forward, score, backward and one optimizer step for one record.
-
-        Returns the single head output (p or value) or nan for a softmax head
-        (whose outputs are left in self._p). Raises NonFiniteError before any change.
-        """
-        net = self.network
-        layers = net.layers
-        a = x
-        for layer, core, act in zip(layers, self._cores, self._acts, strict=False):
-            np.dot(a, layer, out=core)
-            self._activate(core)
-            a = act
-        z = self._z
-        np.dot(a, layers[self._last], out=z)
-        deltas = self._deltas
-        last = self._last
-        result = math.nan
-        if self.n_outputs == 1:
-            z0 = float(z[0])
-            if not math.isfinite(z0):
-                raise NonFiniteError("the network output is not finite")
-            if self._identity:
-                result = z0
-                d = z0 - target
-            else:
-                if z0 >= 0.0:
-                    result = 1.0 / (1.0 + math.exp(-z0))
+    def _run_scalar(self, Xa: Array, columns: Array, targets: list[Any],
+                    raw_targets: list[Any], flat_scores: Array, metrics: Prequential | None,
+                    target_center: float, target_scale: float) -> None:
+        """The single-output loop, written out in one function: per record it costs
+        about fifteen small NumPy calls, so Python call overhead matters."""
+        dot, multiply, copyto = np.dot, np.multiply, np.copyto
+        exp, isfinite = math.exp, math.isfinite
+        forward_plan = self._forward_plan
+        tanh = np.tanh if self.network.activation == "tanh" else None
+        activate = self._activate
+        slope, hidden, slopes_all = self._slope, self._hidden, self._slopes_all
+        plan = self._scalar_plan if self._last > 0 else []
+        last_flat, last_grad = self._last_layer_flat, self._last_grad_flat
+        step = self.optimizer.step_
+        identity, squared_logistic = self._identity, self._squared_logistic
+        p = self._p
+        update = None if metrics is None else metrics.update
+        i = 0
+        try:
+            for i in range(Xa.shape[0]):
+                a = Xa[i]
+                for layer, core, act in forward_plan:
+                    dot(a, layer, core)
+                    if tanh is not None:
+                        tanh(core, core)
+                    else:
+                        activate(core)
+                    a = act
+                z = float(dot(a, last_flat))
+                if not isfinite(z):
+                    raise NonFiniteError("the network output is not finite")
+                target = targets[i]
+                if identity:
+                    result = z
+                    d = z - target  # squared error on identity: dL/dz = z - t
                 else:
-                    e = math.exp(z0)
-                    result = e / (1.0 + e)
-                d = result - target  # logistic + cross-entropy: dL/dz = p - t
-                if self._squared_logistic:
-                    d *= result * (1.0 - result)
-                self._p[0] = result
-            np.multiply(a, d, out=self._last_grad_flat)
-            if last > 0:
-                np.multiply(self._last_weights_flat, d, out=deltas[last - 1])
-        else:
-            peak = float(z.max())
-            if not math.isfinite(peak):
-                raise NonFiniteError("the network output is not finite")
-            ex = self._exp
-            np.subtract(z, peak, out=ex)  # exp never overflows
-            np.exp(ex, out=ex)
-            np.multiply(ex, 1.0 / float(ex.sum()), out=self._p)
-            dz = deltas[last]
-            np.copyto(dz, self._p)
-            dz[target] -= 1.0  # softmax + cross-entropy: dL/dz = p - onehot
-            grads = self._grads
-            np.dot(self._act_columns[last - 1] if last > 0 else x_column,
-                   self._delta_rows[last], out=grads[last])
-            if last > 0:
-                np.dot(net.weights[last], dz, out=deltas[last - 1])
+                    if z >= 0.0:
+                        result = 1.0 / (1.0 + exp(-z))
+                    else:
+                        e = exp(z)
+                        result = e / (1.0 + e)
+                    d = result - target  # logistic + cross-entropy: dL/dz = p - t
+                    if squared_logistic:
+                        d *= result * (1.0 - result)  # chain through dp/dz = p (1 - p)
+                # Backpropagate dz/dparams; the optimizer scales it by dL/dz = d.
+                copyto(last_grad, a)  # dz/dW_last = the last layer's input
+                if plan:
+                    slope(hidden, slopes_all)  # every hidden layer in one pass
+                    for source, slopes, delta, delta_row, column, grad, below in plan:
+                        multiply(source, slopes, delta)
+                        dot(columns[i] if column is None else column, delta_row, grad)
+                        if below is not None:
+                            dot(below[0], delta, below[1])
+                step(d)
+                if identity:
+                    result = result * target_scale + target_center
+                p[0] = result
+                flat_scores[i] = result
+                if update is not None:
+                    update(raw_targets[i], p)
+        except NonFiniteError as exc:
+            raise NonFiniteError(f"record {i}: {exc}", applied=i) from exc
+
+    def _forward_hidden(self, x: Array) -> Array:
+        """Fill the hidden buffers for input x (augmented); returns the last layer's input."""
+        dot, activate = np.dot, self._activate
+        a = x
+        for layer, core, act in self._forward_plan:
+            dot(a, layer, core)
+            activate(core)
+            a = act
+        return a
+
+    def _backward_hidden(self, x_column: Array, plan: list[Any]) -> None:
+        """Deltas of the hidden layers down to the first layer's gradient;
+        dL/dW = input (column) times delta (row)."""
+        self._slope(self._hidden, self._slopes_all)  # every hidden layer in one pass
+        dot, multiply = np.dot, np.multiply
+        for source, slopes, delta, delta_row, column, grad, below in plan:
+            multiply(source, slopes, delta)
+            dot(x_column if column is None else column, delta_row, grad)
+            if below is not None:
+                dot(below[0], delta, below[1])
+
+    def _vector_step(self, x: Array, x_column: Array, target: int) -> float:
+        """One record through a softmax network; head outputs are left in self._p."""
+        a = self._forward_hidden(x)
+        z, p = self._z, self._p
+        np.dot(a, self.network.layers[self._last], z)
+        peak = float(z.max())
+        if not math.isfinite(peak):
+            raise NonFiniteError("the network output is not finite")
+        np.subtract(z, peak, p)  # exp never overflows
+        np.exp(p, p)
+        np.multiply(p, 1.0 / float(p.sum()), p)
+        last = self._last
+        dz = self._deltas[last]
+        np.copyto(dz, p)
+        dz[target] -= 1.0  # softmax + cross-entropy: dL/dz = p - onehot
+        column = self._act_columns[last - 1] if last > 0 else x_column
+        np.dot(column, self._delta_rows[last], self._grads[last])
         if last > 0:
-            self._backward_hidden(x_column)
+            np.dot(self.network.weights[last], dz, self._deltas[last - 1])
+            self._backward_hidden(x_column, self._backward_plan)
         self.optimizer.step_()
-        return result
-
-    def _backward_hidden(self, x_column: Array) -> None:
-        """From the delta of the last hidden layer down to the first layer's gradient."""
-        self._derive(self._hidden, self._derivative)  # all hidden layers in one pass
-        deltas, slopes, grads = self._deltas, self._slopes, self._grads
-        weights = self.network.weights
-        for i in range(self._last - 1, -1, -1):
-            d = deltas[i]
-            np.multiply(d, slopes[i], out=d)
-            np.dot(self._act_columns[i - 1] if i > 0 else x_column, self._delta_rows[i],
-                   out=grads[i])
-            if i > 0:
-                np.dot(weights[i], d, out=deltas[i - 1])
-
-
-def _tanh_(z: Array) -> None:
-    np.tanh(z, out=z)
-
-
-def _relu_(z: Array) -> None:
-    np.maximum(z, 0.0, out=z)
-
-
-def _logistic_(z: Array) -> None:
-    # (1 + tanh(z / 2)) / 2: no overflow for any z.
-    np.multiply(z, 0.5, out=z)
-    np.tanh(z, out=z)
-    np.multiply(z, 0.5, out=z)
-    np.add(z, 0.5, out=z)
-
-
-_ACTIVATE_INPLACE = {"tanh": _tanh_, "relu": _relu_, "logistic": _logistic_}
+        return math.nan
 
 
 def check_targets(y: NDArray[Any], n: int, n_outputs: int, output: str) -> NDArray[Any]:

@@ -44,6 +44,8 @@ class Optimizer:
         self.schedule = str(training["lr_schedule"])
         self.power_t = float(training["power_t"])
         self.step_count = 0
+        # Below this squared gradient norm no clipping applies (NaN compares False).
+        self._clip_squared = math.inf if clip is None else float(clip) ** 2
         self.buffer = np.zeros((self.rows, n_params))
         self.params: Array = self.buffer[self.params_row]
         self.grad: Array = self.buffer[self.grad_row]
@@ -54,22 +56,28 @@ class Optimizer:
             return self.learning_rate / math.pow(self.step_count + 1, self.power_t)
         return self.learning_rate
 
-    def clip_scale(self) -> float:
-        """Factor that brings the gradient's norm within clip_norm (1.0 if it is).
+    def clip_scale(self, grad_scale: float = 1.0) -> float:
+        """Factor on `grad` that gives the gradient grad_scale * grad, clipped to clip_norm.
 
         Raises NonFiniteError if the gradient is not finite: one dot product checks
         every element, since any NaN or inf (or an overflow) makes it non-finite.
         """
         g = self.grad
-        squared = float(np.dot(g, g))
+        squared = float(np.dot(g, g)) * (grad_scale * grad_scale)
         if not math.isfinite(squared):
             raise NonFiniteError("the gradient is not finite")
-        if self.clip_norm is not None and squared > self.clip_norm * self.clip_norm:
-            return self.clip_norm / math.sqrt(squared)
-        return 1.0
+        clip = self.clip_norm
+        if clip is not None and squared > clip * clip:
+            return grad_scale * (clip / math.sqrt(squared))
+        return grad_scale
 
-    def step_(self) -> None:
-        """Apply one step from `grad` to `params` (mutates; all or nothing)."""
+    def step_(self, grad_scale: float = 1.0) -> None:
+        """Apply one step to `params` (mutates; all or nothing) for the loss gradient
+        grad_scale * grad; `grad` may be overwritten.
+
+        The scale lets a single-output network backpropagate d output / d params once
+        and fold dLoss/doutput into the step instead of into every layer.
+        """
         raise NotImplementedError
 
     # ---------------------------------------------------------------- state
@@ -117,35 +125,44 @@ class SGD(Optimizer):
         self._step = b[4]
         self._live = 0  # index of the slot holding the velocity
         self._coefficients = np.zeros(3)
+        # Constant rate: only the gradient's coefficient changes from step to step.
+        decay = -self.learning_rate * self.l2
+        self._fixed = (np.array([self.momentum, 0.0, decay]),
+                       np.array([0.0, decay, self.momentum]))
 
     @property
     def velocity(self) -> Array:
         live: Array = self._slots[self._live]
         return live
 
-    def step_(self) -> None:
-        scale = self.clip_scale()
-        lr = self.rate()
-        c, live = self._coefficients, self._live
-        # Order of coefficients follows the rows of the triple in use.
-        if live == 0:
-            c[0], c[1], c[2] = self.momentum, -lr * scale, -lr * self.l2
+    def step_(self, grad_scale: float = 1.0) -> None:
+        # clip_scale inlined: this runs once per record.
+        g = self.grad
+        squared = float(np.dot(g, g)) * (grad_scale * grad_scale)
+        scale = grad_scale if squared < self._clip_squared else self.clip_scale(grad_scale)
+        live = self._live
+        # Coefficients follow the rows of the triple in use: (v_a, g, w) or (g, w, v_b).
+        if self.schedule == "constant":
+            c = self._fixed[live]
+            c[1 - live] = -self.learning_rate * scale
         else:
-            c[0], c[1], c[2] = -lr * scale, -lr * self.l2, self.momentum
+            lr = self.rate()
+            c = self._coefficients
+            c[0], c[1], c[2] = ((self.momentum, -lr * scale, -lr * self.l2) if live == 0
+                                else (-lr * scale, -lr * self.l2, self.momentum))
         new_velocity = self._slots[1 - live]
-        np.dot(c, self._triples[live], out=new_velocity)
+        np.dot(c, self._triples[live], new_velocity)
         update = new_velocity
         if self.nesterov:
             # w + mu v_new - lr g' = w + v_new + mu (v_new - v), as -lr g' = v_new - mu v.
-            step = self._step
-            np.subtract(new_velocity, self._slots[live], out=step)
-            np.multiply(step, self.momentum, out=step)
-            np.add(step, new_velocity, out=step)
-            update = step
+            update = self._step
+            np.subtract(new_velocity, self._slots[live], update)
+            np.multiply(update, self.momentum, update)
+            np.add(update, new_velocity, update)
         # |update_i| < 1.3e154 when this is finite, so w + update cannot overflow.
         if not math.isfinite(float(np.dot(update, update))):
             raise NonFiniteError("the step would make a weight non-finite")
-        np.add(self.params, update, out=self.params)
+        np.add(self.params, update, self.params)
         self._live = 1 - live
         self.step_count += 1
 
@@ -185,8 +202,8 @@ class Adam(Optimizer):
         moment: Array = self._v
         return moment
 
-    def step_(self) -> None:
-        scale = self.clip_scale()
+    def step_(self, grad_scale: float = 1.0) -> None:
+        scale = self.clip_scale(grad_scale)
         g, w, s = self.grad, self.params, self._scratch
         if scale != 1.0:
             np.multiply(g, scale, out=g)

@@ -69,7 +69,7 @@ def test_truncated_or_corrupt_bytes_raise_snapshot_error():
         with pytest.raises(SnapshotError):
             Learner.from_bytes(data[:cut])
     rng = np.random.default_rng(0)
-    for position in rng.integers(0, len(data), size=20):
+    for position in rng.integers(0, len(data), size=300):
         damaged = bytearray(data)
         damaged[position] ^= 0xFF
         try:
