@@ -36,6 +36,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+import orjson
 
 Progress = Callable[[str], None]
 FIELDS = [f"f{i:02d}" for i in range(20)]
@@ -98,7 +99,7 @@ def _measure(url: str, records: int, progress: Progress) -> dict[str, Any]:
 
     backend = url.split(":", 1)[0].split("+", 1)[0]
     upgrade_database(url)
-    engine = make_engine(url)
+    engine = make_engine(url, json_deserializer=orjson.loads)
     reads, writes = make_sessionmaker(engine), make_sessionmaker(engine, write=True)
     progress(f"[{backend}] storing {records} records")
     started = time.perf_counter()

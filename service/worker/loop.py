@@ -22,6 +22,7 @@ import time
 from collections.abc import Mapping
 from typing import Any
 
+import orjson
 from sqlalchemy import Engine
 from sqlalchemy.orm import Session, sessionmaker
 
@@ -63,7 +64,9 @@ def run_worker(
     if own_signals:
         for signum in (signal.SIGTERM, signal.SIGINT):
             previous[signum] = signal.signal(signum, lambda *_: stop.set())
-    engine = make_engine(settings.database_url)
+    # The worker decodes every record's JSON once; orjson does it several
+    # times faster than the standard library, to the same values.
+    engine = make_engine(settings.database_url, json_deserializer=orjson.loads)
     try:
         Worker(settings, engine, worker_id or default_worker_id(), stop).run()
     finally:

@@ -150,13 +150,17 @@ def run_retrain(
             learner = Learner.create(spec, warmup=sample.features, warmup_labels=sample.labels)
             encoder, parent_id = f"retrain:{job_id}", None
 
+    started = time.perf_counter()
     X, Y = _load_train(reads, learner, model_id, cursor, n_train, settings.chunk_records,
                        cancel)
+    loaded = time.perf_counter()
     reporter = _ProgressReporter(writes, job_id, worker_id, settings.progress_seconds,
                                  int(spec.get("training", {}).get("max_epochs", 0)))
     report = learner.fit(X, Y, progress=reporter, cancel=cancel, warm_start=warm_start)
     del X, Y
     reporter.flush()
+    log.info("job %s: %s train records loaded in %.2f s, fitted in %.2f s (%s epochs)",
+             job_id, n_train, loaded - started, time.perf_counter() - loaded, report.epochs)
 
     window = HoldoutWindow(settings.holdout_window)
     with reads() as session:

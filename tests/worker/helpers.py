@@ -4,13 +4,19 @@ cases, a worker on a thread, and waiting for the database to say something."""
 from __future__ import annotations
 
 import contextlib
+import os
+import signal
+import subprocess
+import sys
 import threading
 import time
 from collections.abc import Callable, Iterator, Sequence
+from pathlib import Path
 from typing import Any
 
 from sqlalchemy import select
 
+from engine import Learner
 from service.db import make_engine, make_sessionmaker
 from service.extensions import Database
 from service.store import ModelRow, RecordRow, TrainerRow, VersionRow
@@ -120,3 +126,61 @@ def model_row(db: Database, model_id: int) -> ModelRow:
         row = session.get(ModelRow, model_id)
         assert row is not None
         return row
+
+
+ROOT = Path(__file__).resolve().parents[2]
+
+
+def start_worker_process(url: str, worker_id: str, log: Path,
+                         **settings: str) -> subprocess.Popen[bytes]:
+    """``python -m service.worker ID`` (what ``keelson worker --id`` runs)."""
+    env = {**os.environ, "KEELSON_DATABASE_URL": url, "PYTHONPATH": str(ROOT),
+           **{key: str(value) for key, value in FAST.items()}, **settings}
+    with log.open("ab") as out:
+        return subprocess.Popen([sys.executable, "-m", "service.worker", worker_id],
+                                cwd=ROOT, env=env, stdout=out, stderr=subprocess.STDOUT)
+
+
+def stop_process(process: subprocess.Popen[bytes], signum: int = signal.SIGTERM) -> int:
+    if process.poll() is None:
+        process.send_signal(signum)
+    return process.wait(30)
+
+
+def uninterrupted(db: Database, model_id: int) -> Learner:
+    """One pass of the engine alone over the model's train records in sequence
+    order, from the same spec and warm-up records a worker starts from."""
+    with db.read() as session:
+        spec = session.get(ModelRow, model_id).spec  # type: ignore[union-attr]
+        rows = session.execute(
+            select(RecordRow.features, RecordRow.label)
+            .where(RecordRow.model_id == model_id, RecordRow.split == "train")
+            .order_by(RecordRow.seq)
+        ).all()
+    features, labels = [r[0] for r in rows], [r[1] for r in rows]
+    warmup = spec["training"]["warmup_records"]
+    learner = Learner.create(spec, warmup=features[:warmup], warmup_labels=labels[:warmup])
+    learner.learn(learner.encode(features), learner.encode_labels(labels))
+    return learner
+
+
+def assert_same_state(resumed: Learner, replay: Learner) -> None:
+    """Bit-identical weights, optimizer state and prequential sums."""
+    assert resumed.records_seen == replay.records_seen
+    assert resumed.network.params.tobytes() == replay.network.params.tobytes()
+    replay_state = replay.optimizer.state_arrays()
+    for name, array in resumed.optimizer.state_arrays().items():
+        assert array.tobytes() == replay_state[name].tobytes(), name
+    assert resumed.prequential_metrics() == replay.prequential_metrics()
+
+
+def assert_one_chain(db: Database, model_id: int) -> list[VersionRow]:
+    """The online versions form one chain: each the child of the one before,
+    cursors and records seen strictly increasing (one writer at a time)."""
+    chain = versions(db, model_id)
+    assert chain and chain[0].parent_id is None
+    assert [v.number for v in chain] == list(range(1, len(chain) + 1))
+    for parent, child in zip(chain, chain[1:], strict=False):
+        assert child.parent_id == parent.id
+        assert child.cursor > parent.cursor and child.records_seen > parent.records_seen
+    return chain

@@ -16,11 +16,9 @@ so it takes its own lease back at once instead of waiting for it to expire.
 
 from __future__ import annotations
 
-import os
 import random
 import signal
 import subprocess
-import sys
 import time
 from pathlib import Path
 
@@ -30,18 +28,20 @@ from sqlalchemy import select
 from engine import Learner
 from service.store import RecordRow
 from tests.worker.helpers import (
+    assert_one_chain,
+    assert_same_state,
     caught_up,
     database,
     model_row,
     new_model,
     numeric_spec,
     send,
+    start_worker_process,
     trainer,
-    versions,
+    uninterrupted,
     wait_until,
 )
 
-ROOT = Path(__file__).resolve().parents[2]
 FIELDS = [f"x{i}" for i in range(8)]
 
 
@@ -55,12 +55,9 @@ def stream(n: int, seed: int) -> list[dict]:
 
 
 def start_worker(url: str, log: Path) -> subprocess.Popen[bytes]:
-    env = {**os.environ, "KEELSON_DATABASE_URL": url, "PYTHONPATH": str(ROOT),
-           "KEELSON_WORKER_CHUNK_RECORDS": "40", "KEELSON_WORKER_IDLE_SECONDS": "0.5",
-           "KEELSON_WORKER_POLL_SECONDS": "0.05", "KEELSON_WORKER_LEASE_SECONDS": "30"}
-    with log.open("ab") as out:
-        return subprocess.Popen([sys.executable, "-m", "service.worker", "crash-worker"],
-                                cwd=ROOT, env=env, stdout=out, stderr=subprocess.STDOUT)
+    # A long lease: the restarted worker takes its own lease back by id.
+    return start_worker_process(url, "crash-worker", log, KEELSON_WORKER_CHUNK_RECORDS="40",
+                                KEELSON_WORKER_LEASE_SECONDS="30")
 
 
 def test_a_worker_killed_at_random_moments_reaches_bit_identical_weights(
@@ -101,27 +98,8 @@ def test_a_worker_killed_at_random_moments_reaches_bit_identical_weights(
         assert process.wait(30) == 0
     assert trainer(db, model_id).error is None
 
-    head = versions(db, model_id)[-1]
-    resumed = Learner.from_bytes(head.snapshot)
-    replay = uninterrupted(db, model_id, model_row(db, model_id).spec)
-    n_train = model_row(db, model_id).records_train
-    assert head.records_seen == resumed.records_seen == replay.records_seen == n_train
-    assert resumed.network.params.tobytes() == replay.network.params.tobytes()
-    for name, array in replay.optimizer.state_arrays().items():
-        assert resumed.optimizer.state_arrays()[name].tobytes() == array.tobytes()
-    assert resumed.prequential_metrics() == replay.prequential_metrics()
+    chain = assert_one_chain(db, model_id)
+    resumed = Learner.from_bytes(chain[-1].snapshot)
+    assert chain[-1].records_seen == model_row(db, model_id).records_train
+    assert_same_state(resumed, uninterrupted(db, model_id))
     db.engine.dispose()
-
-
-def uninterrupted(db, model_id: int, spec: dict) -> Learner:  # type: ignore[no-untyped-def]
-    with db.read() as session:
-        rows = session.execute(
-            select(RecordRow.features, RecordRow.label)
-            .where(RecordRow.model_id == model_id, RecordRow.split == "train")
-            .order_by(RecordRow.seq)
-        ).all()
-    features, labels = [r[0] for r in rows], [r[1] for r in rows]
-    warmup = spec["training"]["warmup_records"]
-    learner = Learner.create(spec, warmup=features[:warmup], warmup_labels=labels[:warmup])
-    learner.learn(learner.encode(features), learner.encode_labels(labels))
-    return learner
