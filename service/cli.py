@@ -334,11 +334,20 @@ def bench_http(as_json: bool, duration: int, connections: int, postgres_url: str
 
 @bench.command("worker")
 @click.option("--json", "as_json", is_flag=True, help="One JSON object.")
-def bench_worker(as_json: bool) -> None:
+@click.option("--records", type=click.IntRange(min=1000), default=100_000, show_default=True,
+              help="Records stored before the worker starts.")
+@click.option("--postgres-url", default=None, envvar="KEELSON_BENCH_POSTGRES_URL",
+              help="Also measure on this PostgreSQL server (a scratch database is made).")
+@click.option("--database-url", default=None,
+              help="Measure on this empty scratch database only (instead of SQLite + "
+                   "PostgreSQL).")
+def bench_worker(as_json: bool, records: int, postgres_url: str | None,
+                 database_url: str | None) -> None:
     """Training worker throughput and memory against the engine alone."""
     from service.bench.worker import run_worker_bench
 
-    _emit(run_worker_bench(), as_json)
+    _emit(run_worker_bench(database_url=database_url, records=records,
+                           postgres_url=postgres_url, progress=_progress), as_json)
 
 
 def _progress(message: str) -> None:
