@@ -103,6 +103,10 @@ def serve(host: str | None, port: int | None, workers: int | None, no_worker: bo
 
     config = _config()
     upgrade_database(config["KEELSON_DATABASE_URL"])
+    if not config["KEELSON_ADMIN_TOKEN"]:
+        click.echo("keelson: KEELSON_ADMIN_TOKEN is not set; clients need a token from "
+                   "`keelson token create --name NAME --scope admin|ingest|predict`.",
+                   err=True)
     status = run_server(host=host, port=port, web_workers=workers, with_worker=not no_worker)
     sys.exit(status)
 
