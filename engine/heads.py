@@ -38,6 +38,21 @@ def sigmoid(z: Array) -> Array:
     return np.where(z >= 0.0, 1.0 / (1.0 + e), e / (1.0 + e))
 
 
+def activate_(output: str, z: Array) -> Array:
+    """Head outputs (n, k) from logits (n, k), computed in place over z (mutates z)."""
+    if output == "logistic":
+        # (1 + tanh(z / 2)) / 2 is the logistic function: no overflow, four passes.
+        np.multiply(z, 0.5, out=z)
+        np.tanh(z, out=z)
+        np.multiply(z, 0.5, out=z)
+        return np.add(z, 0.5, out=z)
+    if output == "softmax":
+        z -= z.max(axis=1, keepdims=True)  # exp never overflows
+        np.exp(z, out=z)
+        z /= z.sum(axis=1, keepdims=True)
+    return z
+
+
 def activate(output: str, z: Array) -> Array:
     """Head outputs (n, k) from logits (n, k): probabilities or values."""
     if output == "logistic":

@@ -41,6 +41,7 @@ class Learner:
         self.records_seen = records_seen
         self.input_sum = np.zeros(encoder.n_inputs) if input_sum is None else input_sum
         self.input_count = input_count
+        self._mean: Array | None = None  # input_mean, computed when first asked for
         self.extra: dict[str, Any] = dict(extra or {})
         self._install(network, make_optimizer(network.params.size, self.spec["training"]))
 
@@ -83,9 +84,11 @@ class Learner:
     def input_mean(self) -> Array:
         """Mean encoded input of every record learnt (the default attribution baseline);
         zeros, the centre of the standardisation, before any."""
-        if self.input_count == 0:
-            return np.zeros(self.encoder.n_inputs)
-        return self.input_sum / self.input_count
+        if self._mean is None:
+            self._mean = (self.input_sum / self.input_count if self.input_count
+                          else np.zeros(self.encoder.n_inputs))
+            self._mean.flags.writeable = False  # shared between calls: read-only
+        return self._mean
 
     # ----------------------------------------------------------------- encoding
     def encode(self, rows: Sequence[Mapping[str, Any]]) -> Array:
@@ -129,6 +132,7 @@ class Learner:
         stacked = np.concatenate([self.input_sum[None, :], X])
         self.input_sum = np.add.reduce(stacked, axis=0)
         self.input_count += X.shape[0]
+        self._mean = None
         self.records_seen += X.shape[0]
 
     def fit(self, X: Array, Y: NDArray[Any], progress: batch.Progress | None = None,
@@ -155,6 +159,7 @@ class Learner:
         if not warm_start:
             self.input_sum = np.zeros(self.encoder.n_inputs)
             self.input_count = 0
+            self._mean = None
         count_before = self.records_seen
         self._count(X)
         self.records_seen = count_before
@@ -165,7 +170,10 @@ class Learner:
         """Class probabilities (n, n_classes), or values (n, 1) in raw target units."""
         out = self.network.forward(X)
         if self.task == "binary":
-            return np.hstack([1.0 - out, out])
+            both = np.empty((out.shape[0], 2))
+            np.subtract(1.0, out[:, 0], out=both[:, 0])
+            both[:, 1] = out[:, 0]
+            return both
         if self.task == "regression":
             return self.encoder.decode_values(out)
         return out
@@ -195,10 +203,11 @@ class Learner:
         """
         x = self._row(x_row, "x")
         base = self.input_mean if baseline is None else self._row(baseline, "baseline")
+        index: int | None
         if self.task == "regression":
             index = 0
         elif output is None:
-            index = int(np.argmax(self.predict(x[None, :])[0]))
+            index = None  # explain() picks the predicted class from its own forward pass
         else:
             try:
                 index = int(self.encoder.encode_labels([output])[0])
@@ -208,14 +217,11 @@ class Learner:
                        baseline=base, steps=steps, samples=samples, noise=noise, seed=seed)
 
     def _row(self, row: Array | Mapping[str, Any], name: str) -> Array:
+        """An encoded row; explain() itself checks its shape and finiteness."""
         if isinstance(row, Mapping):
             encoded: Array = self.encode([row])[0]
             return encoded
-        x: Array = np.asarray(row, dtype=np.float64)
-        if x.shape != (self.encoder.n_inputs,) or not np.all(np.isfinite(x)):
-            raise InvalidInputError(
-                f"{name} must be {self.encoder.n_inputs} finite encoded values", field=name)
-        return x
+        return row
 
     # --------------------------------------------------------------- snapshot
     def to_bytes(self, extra: Mapping[str, Any] | None = None) -> bytes:

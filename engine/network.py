@@ -9,6 +9,7 @@ gives the next pre-activation, bias included, in one product.
 
 from __future__ import annotations
 
+import math
 from collections.abc import Sequence
 
 import numpy as np
@@ -121,7 +122,9 @@ class Network:
             raise InvalidInputError(
                 f"expected inputs of shape (n, {self.sizes[0]}), got {X.shape}", field=None
             )
-        if not np.isfinite(X).all():
+        # A finite sum proves every element finite (one pass); only an overflowing
+        # or non-finite sum needs the elementwise look.
+        if not math.isfinite(float(X.sum())) and not np.isfinite(X).all():
             raise InvalidInputError("inputs must be finite", field=None)
         return X
 
@@ -145,7 +148,7 @@ class Network:
 
     def forward(self, X: Array) -> Array:
         """Head outputs (n, n_outputs): probabilities (logistic/softmax) or values."""
-        return heads.activate(self.output, self.logits(X))
+        return heads.activate_(self.output, self.logits(X))
 
     def _backward(self, outs: list[Array], d: Array, grad: Array | None,
                   scale: float) -> Array:
