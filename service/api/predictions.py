@@ -17,9 +17,9 @@ from service.api.base import Blueprint, read_json_body
 from service.auth import requires
 from service.extensions import get_database
 from service.schemas.predictions import (
-    PredictionBatchDocSchema,
     PredictionBatchSchema,
     PredictionQuerySchema,
+    PredictionRequestSchema,
     PredictionSchema,
     prediction_readers,
 )
@@ -45,7 +45,7 @@ FEATURE_PARAMETERS = {
 }
 BATCH_BODY = {
     "required": True,
-    "content": {"application/json": {"schema": PredictionBatchDocSchema}},
+    "content": {"application/json": {"schema": PredictionRequestSchema}},
 }
 
 

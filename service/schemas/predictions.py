@@ -86,16 +86,16 @@ PredictionQuerySchema = Schema.from_dict(_options_fields(text=True), name="Predi
 PredictionOptionsSchema = Schema.from_dict(_options_fields(text=False), name="PredictionOptions")
 
 
-class PredictionRecordDocSchema(Schema):
+class PredictionRecordSchema(Schema):
     features = fields.Dict(keys=fields.String(), required=True, metadata={
         "description": "One value per declared feature, nothing else."})
 
 
-class PredictionBatchDocSchema(PredictionOptionsSchema):  # type: ignore[misc,valid-type]
+class PredictionRequestSchema(PredictionOptionsSchema):  # type: ignore[misc,valid-type]
     """The POST body: records to score, and the optional parameters (also
     accepted as query parameters; given in both places they must agree)."""
 
-    records = fields.List(fields.Nested(PredictionRecordDocSchema), required=True)
+    records = fields.List(fields.Nested(PredictionRecordSchema), required=True)
 
 
 @dataclass(frozen=True, slots=True)
@@ -271,7 +271,7 @@ def prediction_readers(entry: Any) -> PredictionReaders:
 
 
 # -- answers (they document what the views send; tests hold the two together) --
-class PredictionResultDocSchema(Schema):
+class PredictionResultSchema(Schema):
     label = fields.Raw(metadata={"description": "Classification: the predicted class."})
     probabilities = fields.Dict(keys=fields.String(), values=fields.Float(), metadata={
         "description": "Classification: class -> probability (booleans spelled false/true)."})
@@ -295,7 +295,7 @@ class ExplanationSchema(Schema):
 
 
 class ScoredRecordSchema(Schema):
-    result = fields.Nested(PredictionResultDocSchema, required=True)
+    result = fields.Nested(PredictionResultSchema, required=True)
     explanation = fields.Nested(ExplanationSchema, required=True, allow_none=True, metadata={
         "description": "null when explain=none."})
 

@@ -296,3 +296,25 @@ def test_a_staleness_bound_above_one_second_fails_at_app_creation(sqlite_url: st
     # ARCHITECTURE.md invariant 3 promises promotions visible within a short bound (<= 1 s).
     with pytest.raises(ValueError, match="max_age"):
         build_app(sqlite_url, KEELSON_ACTIVE_STALENESS_SECONDS=2.5)
+
+
+def test_the_openapi_document_describes_both_prediction_routes(api: ApiClient) -> None:
+    doc = api.request("GET", "/openapi.json", 200, token=None)
+    route = doc["paths"]["/v1/models/{name}/predictions"]
+    parameters = {p["name"]: p for p in route["get"]["parameters"]}
+    assert set(parameters) == {"features", "explain", "version", "output", "steps", "samples",
+                               "noise", "seed"}
+    assert parameters["explain"]["schema"]["enum"] == [
+        "integrated_gradients", "gradient", "gradient_times_input", "smoothgrad", "none"]
+    assert parameters["steps"]["schema"] == {"type": "integer", "minimum": 2, "maximum": 1024}
+    assert route["get"]["x-scope"] == route["post"]["x-scope"] == "predict"
+    ok = route["get"]["responses"]["200"]["content"]["application/json"]["schema"]
+    assert ok == {"$ref": "#/components/schemas/Prediction"}
+    body = route["post"]["requestBody"]["content"]["application/json"]["schema"]
+    assert body == {"$ref": "#/components/schemas/PredictionRequest"}
+    request_schema = doc["components"]["schemas"]["PredictionRequest"]
+    assert request_schema["required"] == ["records"]
+    assert set(request_schema["properties"]) == set(parameters) - {"features"} | {"records"}
+    explanation = doc["components"]["schemas"]["Explanation"]
+    assert set(explanation["required"]) == {"method", "output", "attributions", "baseline",
+                                            "completeness_gap", "value", "baseline_value"}
