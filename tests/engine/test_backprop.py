@@ -90,3 +90,44 @@ def test_logistic_and_tanh_derivatives_follow_the_published_rules():
     t = np.tanh(z)
     np.testing.assert_allclose(DERIVATIVE["tanh"](t, np.empty_like(t)),
                                1 / np.cosh(z) ** 2, rtol=1e-12)
+
+
+def _cost_ratio(sizes: tuple[int, ...]) -> tuple[int, float]:
+    """Time of a full gradient by forward differences over one backpropagation."""
+    import time
+    rng = np.random.default_rng(0)
+    net = Network.create(sizes, "tanh", "logistic", rng)
+    X, y = rng.normal(size=(1, sizes[0])), np.array([1])
+
+    def best_of(run, repeats=5):
+        times = []
+        for _ in range(repeats):
+            start = time.process_time()
+            run()
+            times.append(time.process_time() - start)
+        return min(times)
+
+    def perturb_all():
+        base = net.loss_gradient(X, y, "cross_entropy")[0]
+        for j in range(net.params.size):
+            saved = net.params[j]
+            net.params[j] = saved + EPS
+            _ = (net.loss_gradient(X, y, "cross_entropy")[0] - base) / EPS
+            net.params[j] = saved
+
+    def backprop_many():
+        for _ in range(50):
+            net.loss_gradient(X, y, "cross_entropy")
+
+    return net.params.size, best_of(perturb_all) / (best_of(backprop_many) / 50)
+
+
+def test_perturbation_costs_grow_with_the_weight_count_and_backprop_does_not():
+    """Perturbing one weight at a time needs a forward pass per weight; backpropagation
+    a constant number: the measured ratio grows with the weights (common practice,
+    no source)."""
+    small_weights, small_ratio = _cost_ratio((3, 4, 1))
+    large_weights, large_ratio = _cost_ratio((20, 24, 16, 1))
+    assert large_weights > 20 * small_weights
+    assert large_ratio > 5 * small_ratio
+    assert large_ratio > large_weights / 10

@@ -181,3 +181,23 @@ def test_explain_uses_labels_and_the_input_mean_baseline():
     with pytest.raises(InvalidInputError) as caught:
         learner.explain(X[0], output="broken")
     assert caught.value.field == "output"
+
+
+def test_a_fit_that_turns_non_finite_raises_and_leaves_the_learner_unchanged():
+    rows, labels = rows_and_labels("regression", 60)
+    learner = Learner.create(
+        spec("regression", training={"learning_rate": 1e6, "clip_norm": None, "momentum": 0.0,
+                                     "max_epochs": 50}),
+        warmup=rows, warmup_labels=labels)
+    X, Y = learner.encode(rows), learner.encode_labels(labels)
+    params = learner.network.params.copy()
+    with pytest.raises(NonFiniteError):
+        learner.fit(X, Y * 1e100)
+    assert np.array_equal(params, learner.network.params)
+    assert learner.input_count == 0
+
+
+def test_learner_refuses_an_invalid_spec_naming_the_field():
+    with pytest.raises(InvalidInputError) as caught:
+        Learner.create(spec(hidden_layers=[0]))
+    assert caught.value.field == "hidden_layers"
