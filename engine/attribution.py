@@ -166,10 +166,10 @@ def explain(
         output_index = int(output_index)
     # A binary head has one unit, p(class 1); class 0 is 1 - p.
     unit = output_index if task == "multiclass" else 0
-    delta = x - baseline
 
     if method == "integrated_gradients":
         _check_count("steps", steps, MAX_STEPS)
+        delta = x - baseline
         alphas, rule = path_rule(network, baseline, delta, steps)
         path = baseline + alphas[:, None] * delta  # quadrature nodes, then x, then baseline
         unit, values, gradient = output_and_input_gradient(
@@ -194,14 +194,14 @@ def explain(
         else:
             unit, value, baseline_value, gradient = gradient_at(network, x, baseline, unit)
         if method == "gradient_times_input":
-            columns = gradient * delta
+            columns = gradient * (x - baseline)
         elif encoder.all_numeric:
             columns = gradient / encoder.scale  # per raw unit: encoded = (raw - center) / scale
         else:
             # Numeric columns per raw unit; one-hot and boolean columns the
             # first-order change from the baseline to x.
             columns = np.where(encoder.column_numeric, gradient / encoder.scale,
-                               gradient * delta)
+                               gradient * (x - baseline))
 
     if encoder.n_inputs != len(encoder.fields):
         columns = encoder.group(columns)
