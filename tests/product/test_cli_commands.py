@@ -1,0 +1,85 @@
+"""`keelson db upgrade` and `keelson token create|list|revoke` against real databases.
+
+Our own contract (API.md: tokens are stored only as hashes; printed once).
+The hash check uses SHA-256 from Python's hashlib (FIPS 180-4).
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+from pathlib import Path
+
+from click.testing import CliRunner
+from sqlalchemy import create_engine, inspect, text
+
+from service.app import create_app
+from service.cli import cli
+
+
+def _run(database_url: str, *args: str) -> tuple[int, str, str]:
+    result = CliRunner().invoke(cli, list(args), env={"KEELSON_DATABASE_URL": database_url},
+                                prog_name="keelson")
+    return result.exit_code, result.stdout, result.stderr
+
+
+def test_db_upgrade_builds_the_schema_in_a_new_sqlite_file(tmp_path: Path) -> None:
+    url = f"sqlite:///{tmp_path}/sub/new.db"
+    status, out, _ = _run(url, "db", "upgrade")
+    assert status == 0, out
+    engine = create_engine(url)
+    try:
+        tables = set(inspect(engine).get_table_names())
+    finally:
+        engine.dispose()
+    assert {"models", "records", "versions", "jobs", "tokens", "alembic_version"} <= tables
+    assert _run(url, "db", "upgrade")[0] == 0  # idempotent
+
+
+def test_db_upgrade_on_an_unreachable_server_fails_with_one_clear_line() -> None:
+    status, out, err = _run("postgresql+psycopg://nobody@127.0.0.1:1/none", "db", "upgrade")
+    assert status == 1
+    assert "Error: cannot use the database (postgresql+psycopg://nobody@127.0.0.1:1/none)" \
+        in err
+    assert "Traceback" not in out + err
+
+
+def test_a_created_token_is_printed_once_stored_as_a_hash_and_works(database_url: str) -> None:
+    status, out, err = _run(database_url, "token", "create", "--name", "scada-bridge",
+                            "--scope", "ingest", "--scope", "predict")
+    assert status == 0, err
+    plaintext = out.strip()
+    assert len(plaintext) >= 40 and "\n" not in plaintext
+    assert "cannot be shown again" in err
+    engine = create_engine(database_url)
+    try:
+        with engine.connect() as connection:
+            stored = connection.execute(text("SELECT name, token_hash FROM tokens")).all()
+    finally:
+        engine.dispose()
+    assert stored == [("scada-bridge", hashlib.sha256(plaintext.encode()).hexdigest())]
+    client = create_app({"KEELSON_DATABASE_URL": database_url}).test_client()
+    headers = {"Authorization": f"Bearer {plaintext}"}
+    assert client.get("/v1/models", headers=headers).status_code == 200
+    assert client.post("/v1/models", json={}, headers=headers).status_code == 403  # not admin
+
+
+def test_tokens_are_listed_without_secrets_and_revoked_by_name(database_url: str) -> None:
+    _, first, _ = _run(database_url, "token", "create", "--name", "a", "--scope", "admin")
+    _run(database_url, "token", "create", "--name", "b", "--scope", "predict")
+    status, out, _ = _run(database_url, "token", "list", "--json")
+    assert status == 0
+    listed = json.loads(out)["tokens"]
+    assert [(t["name"], t["scopes"], t["revoked_at"]) for t in listed] == [
+        ("a", ["admin"], None), ("b", ["predict"], None)]
+    assert first.strip() not in out
+    status, out, _ = _run(database_url, "token", "revoke", "a")
+    assert status == 0 and "revoked" in out
+    client = create_app({"KEELSON_DATABASE_URL": database_url,
+                         "KEELSON_TOKEN_CACHE_SECONDS": 0.001}).test_client()
+    answer = client.get("/v1/models", headers={"Authorization": f"Bearer {first.strip()}"})
+    assert answer.status_code == 401
+    status, _, err = _run(database_url, "token", "revoke", "a")  # nothing live by that name
+    assert status == 1 and "No live token matches 'a'" in err
+    status, out, _ = _run(database_url, "token", "list")
+    assert "revoked" in out and "active" in out
