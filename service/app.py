@@ -41,6 +41,15 @@ class Api(flask_smorest.Api):
 
     ERROR_SCHEMA = ProblemSchema
 
+    def _register_responses(self) -> None:
+        # Errors are answered as application/problem+json (service.problems):
+        # document them so, or clients validating against the document reject them.
+        self.DEFAULT_RESPONSE_CONTENT_TYPE = problems.PROBLEM_MIMETYPE
+        try:
+            super()._register_responses()  # type: ignore[no-untyped-call]
+        finally:
+            del self.DEFAULT_RESPONSE_CONTENT_TYPE
+
 
 def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     """Build the API app; ``config`` overrides the environment (tests pass one)."""
@@ -82,7 +91,7 @@ def _openapi_document(app: Flask, api: Api) -> Any:
     def document() -> dict[str, Any]:
         if built:
             return built[0]
-        spec = copy.deepcopy(api.spec.to_dict())
+        spec: dict[str, Any] = copy.deepcopy(api.spec.to_dict())
         for rule in app.url_map.iter_rules():
             scope = auth.declared_scope(app.view_functions.get(rule.endpoint))
             path = spec.get("paths", {}).get(_CONVERTER.sub(r"{\1}", rule.rule), {})

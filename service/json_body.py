@@ -15,8 +15,8 @@ from typing import Any
 from service.errors import InvalidInputError, MalformedError, UnsupportedMediaError
 
 MAX_DEPTH = 32
-_STRING = re.compile(rb'"(?:[^"\\]|\\.)*"', re.DOTALL)
-_NOT_BRACKET = re.compile(rb"[^\[\]{}]+")
+_OTHER_BYTES = bytes(b for b in range(256) if b not in b'[]{}"')
+_STRING = re.compile(rb'"[^"]*"')
 _INNERMOST = re.compile(rb"\[\]|\{\}")
 
 
@@ -48,10 +48,13 @@ def require_json(mimetype: str, charset: str | None) -> None:
 def nesting_depth_exceeds(data: bytes, limit: int = MAX_DEPTH) -> bool:
     """True when brackets nest deeper than ``limit`` (strings ignored).
 
-    Runs in C regex passes: strip strings and everything but brackets, then
-    peel innermost pairs ``limit`` times; anything left is deeper than that.
+    Runs in C passes over the bytes: drop escaped backslashes, then escaped
+    quotes (in that order, so pairs match left to right as in JSON), keep only
+    brackets and quotes, drop strings, then peel innermost pairs ``limit``
+    times; anything left nests deeper than that.
     """
-    brackets = _NOT_BRACKET.sub(b"", _STRING.sub(b"", data))
+    unescaped = data.replace(b"\\\\", b"").replace(b'\\"', b"")
+    brackets = _STRING.sub(b"", unescaped.translate(None, _OTHER_BYTES))
     for _ in range(limit):
         if not brackets:
             return False

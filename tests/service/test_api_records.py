@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import datetime as dt
 import hashlib
 from typing import Any
 
@@ -9,7 +10,8 @@ from flask import Flask
 from sqlalchemy import select
 
 from service.extensions import get_database
-from service.store import RecordRow
+from service.store import RecordRow, utcnow
+from service.usecases.common import as_utc
 from service.usecases.records import split_of
 from tests.service.helpers import ApiClient, count_records, create_model, model_row, record
 
@@ -31,6 +33,9 @@ def test_records_are_stored_as_sent_in_sequence_order(any_api: ApiClient, any_ap
     assert [r.features for r in rows] == [s["features"] for s in sent]
     assert [r.label for r in rows] == [s["label"] for s in sent]
     assert [r.seq for r in rows] == sorted(r.seq for r in rows)
+    received = {as_utc(r.received_at) for r in rows}
+    assert len(received) == 1 and abs(received.pop() - utcnow()) < dt.timedelta(minutes=1)
+    assert all(r.model_id == model_row(any_app, "pump-risk").id for r in rows)
     assert len({r.seq for r in rows}) == 5
     shown = any_api.request("GET", "/v1/models/pump-risk", 200)
     holdout = sum(r.split == "holdout" for r in rows)

@@ -5,6 +5,8 @@ from __future__ import annotations
 import json
 
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from service.config import DEFAULTS, ConfigError, load_config
 from service.errors import InvalidInputError, MalformedError, UnsupportedMediaError
@@ -74,3 +76,28 @@ def test_configuration_defaults_environment_and_overrides() -> None:
 def test_unusable_settings_are_refused(env: dict[str, str]) -> None:
     with pytest.raises(ConfigError):
         load_config(environ=env)
+
+
+def _depth(value: object) -> int:
+    if isinstance(value, dict):
+        return 1 + max(map(_depth, value.values()), default=0)
+    if isinstance(value, list):
+        return 1 + max(map(_depth, value), default=0)
+    return 0
+
+
+tricky_text = st.text(alphabet='[]{}"\\\\ab\n\u00e9', max_size=6)
+nested = st.recursive(
+    st.one_of(st.none(), st.integers(), tricky_text),
+    lambda inner: st.one_of(st.lists(inner, max_size=3),
+                            st.dictionaries(tricky_text, inner, max_size=3)),
+    max_leaves=30,
+)
+
+
+@settings(max_examples=400, deadline=None)
+@given(value=nested, limit=st.integers(min_value=0, max_value=6), ascii_only=st.booleans())
+def test_the_depth_check_matches_the_true_depth(value: object, limit: int,
+                                                ascii_only: bool) -> None:
+    data = json.dumps(value, ensure_ascii=ascii_only).encode()
+    assert nesting_depth_exceeds(data, limit) == (_depth(value) > limit)
