@@ -8,7 +8,7 @@ built once) and dumps its answer straight to JSON.
 from __future__ import annotations
 
 import json
-from typing import Any
+from typing import Any, cast
 
 from flask import Flask, Response, current_app, request
 from flask.blueprints import BlueprintSetupState
@@ -52,7 +52,7 @@ BATCH_BODY = {
 @blueprint.record_once
 def _make_cache(state: BlueprintSetupState) -> None:
     # Made with the app, so a bad setting fails create_app, not the first request.
-    app = state.app
+    app = cast(Flask, state.app)
     app.extensions[CACHE_KEY] = VersionCache(
         get_database(app).read,
         max_age=float(app.config["KEELSON_ACTIVE_STALENESS_SECONDS"]),

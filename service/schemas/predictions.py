@@ -56,7 +56,7 @@ class IntegerFromText(StrictInteger):
         return super()._deserialize(value, attr, data, **kwargs)
 
 
-def _options_fields(text: bool) -> dict[str, fields.Field]:
+def _options_fields(text: bool) -> dict[str, fields.Field[Any]]:
     integer = IntegerFromText if text else StrictInteger
     number = NumberFromText if text else StrictNumber
     return {
@@ -95,7 +95,8 @@ class PredictionRequestSchema(PredictionOptionsSchema):  # type: ignore[misc,val
     """The POST body: records to score, and the optional parameters (also
     accepted as query parameters; given in both places they must agree)."""
 
-    records = fields.List(fields.Nested(PredictionRecordSchema), required=True)
+    records = fields.List(fields.Nested(PredictionRecordSchema), required=True,
+                          validate=validate.Length(min=1))  # an empty batch is refused
 
 
 @dataclass(frozen=True, slots=True)
@@ -247,8 +248,8 @@ def _merge(errors: dict[str, list[str]], messages: Any, prefix: str) -> None:
 
 def build_readers(spec: Mapping[str, Any]) -> PredictionReaders:
     """Everything needed to read a prediction request for a model with ``spec``."""
-    classes = spec.get("classes")
-    if spec["task"] == "binary" and classes is None:
+    classes: list[Any] = list(spec.get("classes") or [])
+    if spec["task"] == "binary" and not classes:
         classes = [False, True]
     regression = spec["task"] == "regression"
     return PredictionReaders(
