@@ -15,13 +15,13 @@ folds the loss into one coefficient instead of one pass per layer.
 from __future__ import annotations
 
 import math
-from collections.abc import Callable
 from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
 
 from engine import heads
+from engine.activations import ACTIVATE, DERIVATIVE
 from engine.errors import InvalidInputError, NonFiniteError
 from engine.metrics import Prequential
 from engine.network import Network
@@ -36,42 +36,6 @@ def augment(X: Array) -> Array:
     out[:, :-1] = X
     out[:, -1] = 1.0
     return out
-
-
-def _tanh_(z: Array) -> None:
-    np.tanh(z, z)
-
-
-def _relu_(z: Array) -> None:
-    np.maximum(z, 0.0, out=z)
-
-
-def _logistic_(z: Array) -> None:
-    # (1 + tanh(z / 2)) / 2: no overflow for any z.
-    np.multiply(z, 0.5, z)
-    np.tanh(z, z)
-    np.multiply(z, 0.5, z)
-    np.add(z, 0.5, z)
-
-
-def _tanh_slope(y: Array, out: Array) -> None:
-    np.multiply(y, y, out)  # d tanh/dz = 1 - y^2
-    np.subtract(1.0, out, out)
-
-
-def _logistic_slope(y: Array, out: Array) -> None:
-    np.subtract(1.0, y, out)  # d logistic/dz = y (1 - y)
-    np.multiply(out, y, out)
-
-
-def _relu_slope(y: Array, out: Array) -> None:
-    np.sign(y, out)  # y >= 0, so sign(y) = [y > 0]
-
-
-_ACTIVATE: dict[str, Callable[[Array], None]] = {
-    "tanh": _tanh_, "relu": _relu_, "logistic": _logistic_}
-_SLOPE: dict[str, Callable[[Array, Array], None]] = {
-    "tanh": _tanh_slope, "relu": _relu_slope, "logistic": _logistic_slope}
 
 
 class OnlineTrainer:
@@ -101,8 +65,8 @@ class OnlineTrainer:
         self._grads = network._views(optimizer.grad)
         self._z = np.empty(k)
         self._p = np.empty(k)  # head outputs of the current record
-        self._activate = _ACTIVATE[network.activation]
-        self._slope = _SLOPE[network.activation]
+        self._activate = ACTIVATE[network.activation]
+        self._slope = DERIVATIVE[network.activation]
         self._forward_plan = list(zip(network.layers[:-1], cores, acts, strict=True))
         # Backward plan for hidden layer i, last first: (source, slopes, delta, delta row,
         # column of what feeds the layer (None: the input), gradient block, and the
