@@ -6,13 +6,15 @@ import datetime as dt
 import hashlib
 from typing import Any
 
+import pytest
 from flask import Flask
 from sqlalchemy import select
 
+from service.errors import InvalidInputError, TooLargeError
 from service.extensions import get_database
 from service.store import RecordRow, utcnow
 from service.usecases.common import as_utc
-from service.usecases.records import split_of
+from service.usecases.records import ingest_records, split_of
 from tests.service.helpers import ApiClient, count_records, create_model, model_row, record
 
 RECORDS = "/v1/models/pump-risk/records"
@@ -156,3 +158,18 @@ def test_records_of_two_models_keep_their_own_keys(api: ApiClient, app: Flask) -
                        json_body={"records": [record(1, key="a")]})
     assert body == {"accepted": 1, "duplicates": 0}
     assert count_records(app, "pump-risk") == count_records(app, "other") == 1
+
+
+def test_the_use_case_takes_a_session_as_the_command_line_passes_it(
+    api: ApiClient, app: Flask
+) -> None:
+    create_model(api)
+    with get_database(app).write() as session:
+        result = ingest_records(session, "pump-risk", [record(1, key="a"), record(2)])
+        assert (result.accepted, result.duplicates) == (2, 0)
+        with pytest.raises(InvalidInputError) as error:
+            ingest_records(session, "pump-risk", [record(3), {"features": {}, "label": "ok"}])
+        assert "records.1.features.vibration_rms" in (error.value.errors or {})
+        with pytest.raises(TooLargeError):
+            ingest_records(session, "pump-risk", [record(4)] * 3, max_records=2)
+    assert count_records(app) == 2
