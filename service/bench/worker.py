@@ -36,7 +36,6 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-import orjson
 
 Progress = Callable[[str], None]
 FIELDS = [f"f{i:02d}" for i in range(20)]
@@ -96,10 +95,11 @@ def run_worker_bench(
 
 def _measure(url: str, records: int, progress: Progress) -> dict[str, Any]:
     from service.db import make_engine, make_sessionmaker, upgrade_database
+    from service.worker.records import decode_json
 
     backend = url.split(":", 1)[0].split("+", 1)[0]
     upgrade_database(url)
-    engine = make_engine(url, json_deserializer=orjson.loads)
+    engine = make_engine(url, json_deserializer=decode_json)
     reads, writes = make_sessionmaker(engine), make_sessionmaker(engine, write=True)
     progress(f"[{backend}] storing {records} records")
     started = time.perf_counter()

@@ -22,7 +22,6 @@ import time
 from collections.abc import Mapping
 from typing import Any
 
-import orjson
 from sqlalchemy import Engine
 from sqlalchemy.orm import Session, sessionmaker
 
@@ -35,6 +34,7 @@ from service.worker.leasing import (
     renew_trainers,
 )
 from service.worker.online import LineageStopped, OnlineLineage
+from service.worker.records import decode_json
 from service.worker.retrain import JobRunner
 from service.worker.settings import WorkerSettings
 from service.worker.versions import Fenced, stop_lineage
@@ -64,9 +64,7 @@ def run_worker(
     if own_signals:
         for signum in (signal.SIGTERM, signal.SIGINT):
             previous[signum] = signal.signal(signum, lambda *_: stop.set())
-    # The worker decodes every record's JSON once; orjson does it several
-    # times faster than the standard library, to the same values.
-    engine = make_engine(settings.database_url, json_deserializer=orjson.loads)
+    engine = make_engine(settings.database_url, json_deserializer=decode_json)
     try:
         Worker(settings, engine, worker_id or default_worker_id(), stop).run()
     finally:

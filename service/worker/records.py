@@ -16,11 +16,23 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
+import orjson
 from numpy.typing import NDArray
 from sqlalchemy import func, select
 from sqlalchemy.orm import Session, sessionmaker
 
 from service.store import RecordRow
+
+
+def decode_json(value: str | bytes | float) -> Any:
+    """The JSON decoder the worker's engine uses: orjson, several times faster
+    than the standard library on record features, to the same values. SQLite
+    hands a JSON column holding a bare number back as that number (its NUMERIC
+    affinity converted it); SQLAlchemy's own decoder lets those through too."""
+    if isinstance(value, int | float):
+        return value
+    return orjson.loads(value)
+
 
 _COLUMNS = (RecordRow.seq, RecordRow.features, RecordRow.label, RecordRow.split)
 
