@@ -69,7 +69,7 @@ def version_cache(app: Flask | None = None) -> VersionCache:
 def _json(body: dict[str, Any]) -> Response:
     # Built here rather than dumped through the answer schema: the schema
     # documents this exact shape (tests/service/test_predictions_api.py holds it).
-    return Response(json.dumps(body, ensure_ascii=False), mimetype="application/json")
+    return Response(json.dumps(body), mimetype="application/json")
 
 
 @blueprint.route("/<name>/predictions", methods=["GET"])
