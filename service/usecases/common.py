@@ -27,8 +27,8 @@ def find_model(session: Session, name: str, *, lock: bool = False) -> ModelRow:
     if not _MODEL_NAME.fullmatch(name):
         raise NotFoundError(f"There is no model named {name!r}.")
     query = select(ModelRow).where(ModelRow.name == name)
-    if lock:
-        query = query.with_for_update()
+    if lock:  # and refresh a row this session may hold from an earlier transaction
+        query = query.with_for_update().execution_options(populate_existing=True)
     row = session.scalars(query).first()
     if row is None:
         raise NotFoundError(f"There is no model named {name!r}.")
