@@ -9,13 +9,13 @@ the spec defaults) per record.
 
 from __future__ import annotations
 
+import contextlib
 import statistics
 import time
 from collections.abc import Callable
 from typing import Any
 
 import numpy as np
-from threadpoolctl import threadpool_limits
 
 from engine import Learner
 from engine.network import Network
@@ -210,7 +210,7 @@ def run_engine_bench() -> dict[str, Any]:
         import torch
 
         torch.set_num_threads(1)
-    with threadpool_limits(limits=1):
+    with _one_blas_thread(notes):
         online = []
         for net in ONLINE_NETS:
             rows = 20000 if net[1] <= 32 else 5000
@@ -232,6 +232,17 @@ def run_engine_bench() -> dict[str, Any]:
     if notes:
         result["notes"] = notes
     return result
+
+
+def _one_blas_thread(notes: list[str]) -> contextlib.AbstractContextManager[Any]:
+    """Pin BLAS to one thread (threadpoolctl comes with scikit-learn)."""
+    try:
+        from threadpoolctl import threadpool_limits
+    except ImportError:
+        notes.append("threadpoolctl is not installed: BLAS threads were not pinned")
+        return contextlib.nullcontext()
+    pinned: contextlib.AbstractContextManager[Any] = threadpool_limits(limits=1)
+    return pinned
 
 
 def _importable(name: str, notes: list[str]) -> bool:
