@@ -3,8 +3,12 @@
 from __future__ import annotations
 
 import numpy as np
+import pytest
+from sklearn.metrics import accuracy_score, log_loss
+from sqlalchemy import select
 
 from engine import Learner
+from service.store import RecordRow
 from tests.worker.helpers import (
     caught_up,
     database,
@@ -50,4 +54,39 @@ def test_xor_is_learned_online_from_records_alone(database_url: str) -> None:
     grid = [{"a": 0.0, "b": 0.0}, {"a": 0.0, "b": 1.0}, {"a": 1.0, "b": 0.0}, {"a": 1.0, "b": 1.0}]
     p_true = learner.predict(learner.encode(grid))[:, 1]
     assert list(p_true > 0.5) == [False, True, True, False]
+    db.engine.dispose()
+
+
+def test_the_stored_prequential_metrics_are_those_of_each_records_score_before_its_step(
+    database_url: str,
+) -> None:
+    """Prequential (test-then-train) evaluation: each record is scored by the
+    model as it was before learning from it, and the running metric is the
+    metric of those scores (Dawid 1984; Gama, Sebastiao & Rodrigues 2013).
+    Checked against scikit-learn's log_loss and accuracy_score over the scores
+    a single uninterrupted pass gives each record (the worker's weights equal
+    that pass bit for bit: test_crash_replay.py)."""
+    db = database(database_url)
+    spec = numeric_spec("prequential", ["a", "b"], hidden_layers=[8],
+                        training={"checkpoint_every": 400, "warmup_records": 64})
+    model_id = new_model(db, spec)
+    send(db, "prequential", xor_records(2500, seed=5))
+    with worker_thread(database_url, KEELSON_WORKER_CHUNK_RECORDS=70):
+        wait_until(lambda: caught_up(db, model_id), timeout=40)
+    stored = versions(db, model_id)[-1].metrics["prequential"]
+
+    with db.read() as session:
+        rows = session.execute(
+            select(RecordRow.features, RecordRow.label)
+            .where(RecordRow.model_id == model_id, RecordRow.split == "train")
+            .order_by(RecordRow.seq)).all()
+    spec_full = model_row(db, model_id).spec
+    features, labels = [r[0] for r in rows], [r[1] for r in rows]
+    learner = Learner.create(spec_full, warmup=features[:64], warmup_labels=labels[:64])
+    scores = learner.learn(learner.encode(features), learner.encode_labels(labels))[:, 0]
+    truth = np.array(labels, dtype=bool)
+    assert stored["n"] == len(rows)
+    assert stored["accuracy"] == pytest.approx(accuracy_score(truth, scores > 0.5), abs=1e-12)
+    assert stored["log_loss"] == pytest.approx(log_loss(truth, scores, labels=[False, True]),
+                                               rel=1e-9)
     db.engine.dispose()
