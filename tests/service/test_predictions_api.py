@@ -204,7 +204,8 @@ def test_an_unknown_model_answers_404(api: ApiClient) -> None:
 
 
 def test_a_promotion_is_served_within_the_staleness_bound(sqlite_url: str) -> None:
-    app = build_app(sqlite_url, KEELSON_ACTIVE_STALENESS_SECONDS=0.5)
+    bound = 1.0  # the largest allowed: the most room for a slow machine
+    app = build_app(sqlite_url, KEELSON_ACTIVE_STALENESS_SECONDS=bound)
     api = ApiClient(app)
     try:
         create_model(api)
@@ -213,12 +214,20 @@ def test_a_promotion_is_served_within_the_staleness_bound(sqlite_url: str) -> No
         assert api.request("GET", f"{PATH}?{PUMP_QUERY}", 200)["version"] == 1
         activate(api.app, "pump-risk", 2)
         promoted_at = time.monotonic()
-        # Not before needed: until the bound the pointer is not re-read.
-        assert api.request("GET", f"{PATH}?{PUMP_QUERY}", 200)["version"] == 1
-        while api.request("GET", f"{PATH}?{PUMP_QUERY}", 200)["version"] == 1:
-            assert time.monotonic() - promoted_at < 0.5 + 0.25, "promotion not seen in time"
+        stale_starts = []
+        while True:
+            started = time.monotonic()
+            if api.request("GET", f"{PATH}?{PUMP_QUERY}", 200)["version"] == 2:
+                break
+            stale_starts.append(started)
+            assert started - promoted_at < 10 * bound, "the promotion was never seen"
             time.sleep(0.01)
-        assert time.monotonic() - promoted_at <= 0.5 + 0.25
+        # The old version may answer only requests that began within the bound of
+        # the promotion (the pointer this process held was read before it).
+        assert all(start <= promoted_at + bound for start in stale_starts)
+        # Served from the cache until then: without the bound it would have been
+        # seen by the first request after the promotion.
+        assert stale_starts, "the pointer was re-read sooner than needed"
     finally:
         get_database(app).engine.dispose()
 
@@ -231,12 +240,20 @@ def test_a_warm_get_makes_no_database_query(api: ApiClient) -> None:
     engine = get_database(api.app).engine
     listener = lambda *args: statements.append(args[2])  # noqa: E731
     event.listen(engine, "before_cursor_execute", listener)
+    started = time.monotonic()
     try:
         for _ in range(20):
             api.request("GET", f"{PATH}?{PUMP_QUERY}&explain=gradient", 200)
     finally:
         event.remove(engine, "before_cursor_execute", listener)
-    assert statements == []
+    elapsed = time.monotonic() - started
+    # At most one re-read of the active pointer per elapsed bound (1 s by default;
+    # on a loaded machine 20 requests can take longer than that), and nothing else.
+    selects = [s for s in statements if s.lstrip().upper().startswith("SELECT")]
+    assert len(selects) <= int(elapsed / 1.0)
+    assert all("FROM models" in s for s in selects)
+    assert all(s.strip().upper() in ("BEGIN", "COMMIT", "ROLLBACK") for s in statements
+               if s not in selects)
 
 
 def test_a_corrupt_snapshot_is_a_503_problem_and_never_runs_code(
