@@ -109,10 +109,9 @@ class LoadedVersion:
 
     id: int
     number: int
+    # Shared by every thread of the process without a lock: engine inference
+    # allocates its work arrays per call and never writes to the network.
     learner: Any
-    # Serialises calls into one network: the engine may reuse work buffers
-    # between calls, so two threads must not run the same network at once.
-    lock: threading.Lock = field(default_factory=threading.Lock, compare=False)
 
 
 class _Unreadable:
