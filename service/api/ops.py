@@ -48,6 +48,7 @@ def readyz() -> dict[str, Any]:
 
 @blueprint.route("/openapi.json", methods=["GET"])
 @public
-@blueprint.doc(summary="This API's OpenAPI 3 document.")
+@blueprint.doc(summary="This API's OpenAPI 3 document.", responses={"200": {
+    "description": "OK", "content": {"application/json": {"schema": {"type": "object"}}}}})
 def openapi_json() -> Response:
     return jsonify(current_app.extensions["keelson.openapi"]())
