@@ -16,6 +16,7 @@ from http import HTTPStatus
 from typing import Any
 
 from flask import Flask, Response, current_app
+from sqlalchemy import exc as sa_exc
 from werkzeug.exceptions import HTTPException
 
 from service.errors import KeelsonError
@@ -114,6 +115,20 @@ def handle_keelson_error(error: KeelsonError) -> Response:
     )
 
 
+# Failures to reach or use the database that pass when it is back (server
+# restarting, connection dropped, pool exhausted): a 503 the client can retry,
+# not a 500. The engine's pre-ping reconnects on the next request.
+DATABASE_UNAVAILABLE = (sa_exc.OperationalError, sa_exc.InterfaceError, sa_exc.TimeoutError)
+RETRY_AFTER_SECONDS = "1"
+
+
+def handle_database_unavailable(error: Exception) -> Response:
+    log.warning("database unavailable while answering a request: %s",
+                type(getattr(error, "orig", None) or error).__name__)
+    return problem(503, "The database is unavailable for the moment; retry shortly.",
+                   headers={"Retry-After": RETRY_AFTER_SECONDS})
+
+
 def handle_unexpected(error: Exception) -> Response:
     if current_app.testing or current_app.config.get("PROPAGATE_EXCEPTIONS"):
         raise error
@@ -125,4 +140,6 @@ def init_app(app: Flask) -> None:
     """Register the handlers (after flask-smorest's own, which they replace)."""
     app.register_error_handler(HTTPException, handle_http_exception)
     app.register_error_handler(KeelsonError, handle_keelson_error)
+    for database_error in DATABASE_UNAVAILABLE:
+        app.register_error_handler(database_error, handle_database_unavailable)
     app.register_error_handler(Exception, handle_unexpected)
