@@ -15,6 +15,7 @@ folds the loss into one coefficient instead of one pass per layer.
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 from typing import Any
 
 import numpy as np
@@ -36,6 +37,20 @@ def augment(X: Array) -> Array:
     out[:, :-1] = X
     out[:, -1] = 1.0
     return out
+
+
+def _relu_into(z: Array, out: Array) -> None:
+    np.maximum(z, 0.0, out=out)
+
+
+def _logistic_into(z: Array, out: Array) -> None:
+    np.copyto(out, z)
+    ACTIVATE["logistic"](out)
+
+
+# f(z, out) forms: np.tanh itself for tanh, saving a Python call per layer.
+_ACTIVATE_INTO: dict[str, Callable[[Array, Array], object]] = {
+    "tanh": np.tanh, "relu": _relu_into, "logistic": _logistic_into}
 
 
 class OnlineTrainer:
@@ -85,6 +100,14 @@ class OnlineTrainer:
         if k == 1 and last > 0:
             first = self._scalar_plan[0]
             self._scalar_plan[0] = (network.weights[last].reshape(-1), *first[1:])
+        # The same plan flattened for the single-output loop: the hidden layers above
+        # the first, then the first (fed by the input row, found per record).
+        self._scalar_upper = [(src, sl, de, col, row, gr, down[0], down[1])
+                              for src, sl, de, row, col, gr, down in self._scalar_plan
+                              if col is not None and down is not None]
+        self._scalar_first = None if last == 0 else (
+            self._scalar_plan[-1][0], self._scalar_plan[-1][1], self._scalar_plan[-1][2],
+            self._scalar_plan[-1][3], self._scalar_plan[-1][5])
         self._last_layer_flat = network.layers[last].reshape(-1)  # (h + 1,) when k == 1
         self._last_grad_flat = self._grads[last].reshape(-1)
         self._binary = network.output == "logistic"
@@ -140,10 +163,9 @@ class OnlineTrainer:
         dot, multiply, copyto = np.dot, np.multiply, np.copyto
         exp, isfinite = math.exp, math.isfinite
         forward_plan = self._forward_plan
-        tanh = np.tanh if self.network.activation == "tanh" else None
-        activate = self._activate
+        activate = _ACTIVATE_INTO[self.network.activation]
         slope, hidden, slopes_all = self._slope, self._hidden, self._slopes_all
-        plan = self._scalar_plan if self._last > 0 else []
+        upper, first = self._scalar_upper, self._scalar_first
         last_flat, last_grad = self._last_layer_flat, self._last_grad_flat
         step = self.optimizer.step_
         identity, squared_logistic = self._identity, self._squared_logistic
@@ -155,10 +177,7 @@ class OnlineTrainer:
                 a = Xa[i]
                 for layer, core, act in forward_plan:
                     dot(a, layer, core)
-                    if tanh is not None:
-                        tanh(core, core)
-                    else:
-                        activate(core)
+                    activate(core, core)
                     a = act
                 z = float(dot(a, last_flat))
                 if not isfinite(z):
@@ -178,13 +197,15 @@ class OnlineTrainer:
                         d *= result * (1.0 - result)  # chain through dp/dz = p (1 - p)
                 # Backpropagate dz/dparams; the optimizer scales it by dL/dz = d.
                 copyto(last_grad, a)  # dz/dW_last = the last layer's input
-                if plan:
+                if first is not None:
                     slope(hidden, slopes_all)  # every hidden layer in one pass
-                    for source, slopes, delta, delta_row, column, grad, below in plan:
+                    for source, slopes, delta, column, delta_row, grad, down, below in upper:
                         multiply(source, slopes, delta)
-                        dot(columns[i] if column is None else column, delta_row, grad)
-                        if below is not None:
-                            dot(below[0], delta, below[1])
+                        dot(column, delta_row, grad)  # dL/dW = input x delta
+                        dot(down, delta, below)  # the delta one layer down, before slopes
+                    source, slopes, delta, delta_row, grad = first
+                    multiply(source, slopes, delta)
+                    dot(columns[i], delta_row, grad)
                 step(d)
                 if identity:
                     result = result * target_scale + target_center
