@@ -9,6 +9,8 @@ from typing import Any
 
 import flask_smorest
 from flask import Flask, Response
+from flask_smorest.spec.plugins import integerconverter2paramschema
+from werkzeug.routing import IntegerConverter
 
 from service import auth, observability, problems
 from service.api import jobs, models, ops, predictions, records, versions
@@ -33,7 +35,18 @@ SECURITY_HEADERS = {
     "Content-Security-Policy": "default-src 'none'; frame-ancestors 'none'",
     "Cache-Control": "no-store",
 }
+# The largest id or number the database holds (a signed 64-bit integer).
+MAX_PATH_INTEGER = 2**63 - 1
 _CONVERTER = re.compile(r"<(?:[^:<>]+:)?([^<>]+)>")
+
+
+class BoundedIntegerConverter(IntegerConverter):
+    """``<int:...>`` path segments beyond what the database can hold match no
+    route (404), instead of overflowing the driver (SQLite raises on them)."""
+
+    def __init__(self, map: Any, fixed_digits: int = 0, min: int | None = None,
+                 max: int | None = MAX_PATH_INTEGER, signed: bool = False) -> None:
+        super().__init__(map, fixed_digits, min, max, signed)
 
 
 class Api(flask_smorest.Api):
@@ -54,6 +67,7 @@ class Api(flask_smorest.Api):
 def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     """Build the API app; ``config`` overrides the environment (tests pass one)."""
     app = Flask("keelson", static_folder=None)
+    app.url_map.converters["int"] = BoundedIntegerConverter
     settings = load_config(config)
     app.config.update(settings)
     app.config.update(
@@ -68,6 +82,7 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     auth.init_app(app)
     observability.init_app(app)
     api = Api(app, spec_kwargs={"info": {"description": "Keelson HTTP API (v1)."}})
+    api.register_converter(BoundedIntegerConverter, integerconverter2paramschema)
     api.spec.components.security_scheme("bearer", {"type": "http", "scheme": "bearer"})
     for blueprint in BLUEPRINTS:
         api.register_blueprint(blueprint)
