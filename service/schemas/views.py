@@ -6,7 +6,7 @@ out (flask-smorest dumps each view's return value through its schema).
 
 from __future__ import annotations
 
-from marshmallow import RAISE, Schema, fields
+from marshmallow import RAISE, Schema, fields, validate
 
 from service.schemas.fields import StrictBoolean
 from service.schemas.spec import ModelSpecSchema
@@ -49,7 +49,8 @@ class RecordDocSchema(Schema):
 
 
 class RecordBatchDocSchema(Schema):
-    records = fields.List(fields.Nested(RecordDocSchema), required=True)
+    records = fields.List(fields.Nested(RecordDocSchema), required=True,
+                          validate=validate.Length(min=1))  # an empty batch is refused
 
 
 class IngestResultSchema(Schema):
