@@ -37,7 +37,7 @@ class KeelsonGroup(click.Group):
 
 
 def _explain_failure(error: Exception) -> str | None:
-    from sqlalchemy.exc import OperationalError
+    from sqlalchemy.exc import OperationalError, ProgrammingError
 
     from service.config import ConfigError
     from service.errors import KeelsonError
@@ -48,9 +48,12 @@ def _explain_failure(error: Exception) -> str | None:
         details = [f"  {path}: {'; '.join(messages)}"
                    for path, messages in (error.errors or {}).items()]
         return "\n".join([error.detail, *details])
-    if isinstance(error, OperationalError):
-        return (f"cannot use the database ({_database_url_for_humans()}): "
-                f"{str(error.orig).strip() or error}")
+    if isinstance(error, OperationalError | ProgrammingError):
+        reason = str(error.orig).strip().splitlines()[0] if error.orig else str(error)
+        hint = ""
+        if "no such table" in reason or ("relation" in reason and "does not exist" in reason):
+            hint = "; is the schema there? run `keelson db upgrade`"
+        return f"cannot use the database ({_database_url_for_humans()}): {reason}{hint}"
     return None
 
 

@@ -44,6 +44,12 @@ def test_db_upgrade_on_an_unreachable_server_fails_with_one_clear_line() -> None
     assert "Traceback" not in out + err
 
 
+def test_a_database_without_the_schema_gets_a_hint_to_upgrade(tmp_path: Path) -> None:
+    status, _, err = _run(f"sqlite:///{tmp_path}/empty.db", "token", "list")
+    assert status == 1
+    assert "no such table: tokens; is the schema there? run `keelson db upgrade`" in err
+
+
 def test_a_created_token_is_printed_once_stored_as_a_hash_and_works(database_url: str) -> None:
     status, out, err = _run(database_url, "token", "create", "--name", "scada-bridge",
                             "--scope", "ingest", "--scope", "predict")
