@@ -44,7 +44,8 @@ def _relu_into(z: Array, out: Array) -> None:
 
 
 def _logistic_into(z: Array, out: Array) -> None:
-    np.copyto(out, z)
+    if out is not z:
+        np.copyto(out, z)
     ACTIVATE["logistic"](out)
 
 
