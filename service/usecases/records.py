@@ -122,10 +122,10 @@ def _store(session: Session, model: ModelRow, valid: list[dict[str, Any]]) -> In
         return IngestResult(accepted=0, duplicates=len(valid))
     seqs = _allocate_seqs(session, len(fresh), postgres=postgres)
     fraction = float(model.spec["training"]["holdout_fraction"])
-    dumps = json.dumps
+    dumps, model_id = json.dumps, model.id
     rows = [
-        (seq, model.id, record.get("key"), dumps(record["features"]), dumps(record["label"]),
-         split_of(model.id, record.get("key"), seq, fraction))
+        (seq, model_id, record.get("key"), dumps(record["features"]), dumps(record["label"]),
+         split_of(model_id, record.get("key"), seq, fraction))
         for seq, record in zip(seqs, fresh, strict=True)
     ]
     holdout = sum(row[5] == "holdout" for row in rows)
