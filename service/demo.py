@@ -23,6 +23,7 @@ from service import demo_data
 from service.demo_display import CAUTIONS, render_prediction, render_versions
 
 BATCH_RECORDS = 250
+DEMO_TOKEN_NAME = "demo-admin"
 TRAINING_TIMEOUT_SECONDS = 300.0
 
 Echo = Callable[[str], None]
@@ -234,8 +235,9 @@ def _show_predictions(api: InProcessApi, echo: Echo) -> None:
 
 def _serve(config: dict[str, Any], host: str | None, port: int | None,
            web_workers: int | None, echo: Echo) -> None:
+    from service.errors import NotFoundError
     from service.serving import listen_address, run_server, server_environment
-    from service.tokens import create_token
+    from service.tokens import create_token, revoke_token
 
     address = listen_address(server_environment(host, port, web_workers))
     token = config.get("KEELSON_ADMIN_TOKEN")
@@ -246,9 +248,12 @@ def _serve(config: dict[str, Any], host: str | None, port: int | None,
 
         sessions = make_sessionmaker(make_engine(config["KEELSON_DATABASE_URL"]), write=True)
         with sessions() as session:
-            _, token = create_token(session, "demo-admin", ["admin"])
-        how = ("a new admin token (stored only as a hash; shown this once; "
-               "`keelson token revoke demo-admin` to revoke)")
+            # One demo token at a time: the one printed by an earlier run stops working.
+            with contextlib.suppress(NotFoundError):
+                revoke_token(session, DEMO_TOKEN_NAME)
+            _, token = create_token(session, DEMO_TOKEN_NAME, ["admin"])
+        how = ("a new admin token (stored only as a hash, shown this once, replacing "
+               f"any earlier demo token; `keelson token revoke {DEMO_TOKEN_NAME}` revokes it)")
     echo(f"Serving on {address} with {how}:\n\n    {token}\n")
     echo(f"Try:\n    curl -H 'Authorization: Bearer {token}' "
          f"'{address}/v1/models/{demo_data.MODEL_NAME}/predictions?vibration_rms=9.5"
