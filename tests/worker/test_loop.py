@@ -51,6 +51,7 @@ def test_sigterm_finishes_the_step_writes_what_was_applied_and_frees_the_lease(
     process = start_worker_process(database_url, "successor", log,
                                    KEELSON_WORKER_CHUNK_RECORDS="25")
     try:
+        wait_until(lambda: trainer(db, model_id).leased_by == "successor", timeout=30)
         wait_until(lambda: caught_up(db, model_id), timeout=40)
     finally:
         assert stop_process(process, signal.SIGTERM) == 0
