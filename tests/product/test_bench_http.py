@@ -7,6 +7,8 @@ wrk's report format from memory (src/wrk.c prints them only when non-zero).
 
 from __future__ import annotations
 
+from pathlib import Path
+
 import pytest
 
 from service.bench.http import parse_wrk
@@ -64,7 +66,7 @@ def test_output_that_is_not_a_report_is_refused() -> None:
 
 
 def test_without_wrk_the_command_says_what_to_install(monkeypatch: pytest.MonkeyPatch,
-                                                      tmp_path) -> None:  # noqa: ANN001
+                                                      tmp_path: Path) -> None:
     from click.testing import CliRunner
 
     from service.cli import cli
