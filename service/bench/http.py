@@ -62,7 +62,9 @@ def run_http_bench(duration: int = 10, connections: int = 16, postgres_url: str 
     result: dict[str, Any] = {
         "benchmark": "http",
         "machine": {"cpus": os.cpu_count(), "python": platform.python_version(),
-                    "platform": platform.platform()},
+                    "platform": platform.platform(),
+                    # Other work on the machine skews every figure: say how much there was.
+                    "load_average_1m_at_start": round(os.getloadavg()[0], 2)},
         "settings": {"web_workers": WEB_WORKERS, "connections": connections,
                      "duration_s_per_route": duration, "ingest_batch": INGEST_BATCH,
                      "load_generator": _wrk_version(wrk)},
@@ -77,6 +79,7 @@ def run_http_bench(duration: int = 10, connections: int = 16, postgres_url: str 
         else:
             result["postgresql"] = {"skipped": "no --postgres-url (or "
                                                "KEELSON_BENCH_POSTGRES_URL) given"}
+    result["machine"]["load_average_1m_at_end"] = round(os.getloadavg()[0], 2)
     return result
 
 
