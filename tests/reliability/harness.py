@@ -122,14 +122,23 @@ def stop_group(process: subprocess.Popen[bytes], signum: int = signal.SIGTERM,
 
 @contextlib.contextmanager
 def api_server(database_url: str, tmp_path: Path, workers: int = 2, with_worker: bool = False,
-               **extra: str) -> Iterator[tuple[str, subprocess.Popen[bytes]]]:
-    """``keelson serve`` on a free loopback port; yields (base URL, process)."""
+               gunicorn_only: bool = False, **extra: str
+               ) -> Iterator[tuple[str, subprocess.Popen[bytes]]]:
+    """``keelson serve`` on a free loopback port; yields (base URL, process).
+
+    ``gunicorn_only``: gunicorn itself (what ``serve`` starts, in a process
+    group of its own), so killing the group kills the master and its workers
+    at once; the database must already be migrated."""
     port = free_port()
-    env = server_env(database_url, tmp_path, **extra)
-    command = [sys.executable, "-m", "service.cli", "serve", "--host", "127.0.0.1",
-               "--port", str(port), "--workers", str(workers)]
-    if not with_worker:
-        command.append("--no-worker")
+    env = server_env(database_url, tmp_path, KEELSON_HOST="127.0.0.1", KEELSON_PORT=str(port),
+                     KEELSON_WEB_WORKERS=str(workers), **extra)
+    if gunicorn_only:
+        command = [sys.executable, "-m", "gunicorn", "--config", "python:service.gunicorn_conf"]
+    else:
+        command = [sys.executable, "-m", "service.cli", "serve", "--host", "127.0.0.1",
+                   "--port", str(port), "--workers", str(workers)]
+        if not with_worker:
+            command.append("--no-worker")
     process = start_group(command, env, tmp_path / "api.log")
     base = f"http://127.0.0.1:{port}"
     try:
