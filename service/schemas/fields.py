@@ -10,11 +10,13 @@ cells), with the same rules once converted.
 from __future__ import annotations
 
 import math
+import re
 from collections.abc import Sequence
 from typing import Any
 
 from marshmallow import ValidationError, fields
 
+_JSON_NUMBER = re.compile(r"-?(?:0|[1-9][0-9]*)(?:\.[0-9]+)?(?:[eE][+-]?[0-9]+)?")
 NON_FINITE = "NaN and Infinity are not numbers JSON allows (RFC 8259 section 6)."
 TRUE_TEXT = frozenset({"true", "1"})
 FALSE_TEXT = frozenset({"false", "0"})
@@ -80,10 +82,15 @@ class NumberFromText(StrictNumber):
     def _deserialize(self, value: Any, attr: str | None, data: Any, **kwargs: Any) -> Any:
         if not isinstance(value, str):
             return super()._deserialize(value, attr, data, **kwargs)
+        text = value.strip()
         try:
-            number = float(value.strip())
+            number = float(text)
         except ValueError as exc:
             raise ValidationError("Not a number.") from exc
+        # float() also reads "1_000", "0012" and non-ASCII digits; a number
+        # spelled as text must be spelled as JSON spells it (RFC 8259 section 6).
+        if math.isfinite(number) and not _JSON_NUMBER.fullmatch(text):
+            raise ValidationError("Not a number.")
         return self.check(number)
 
 

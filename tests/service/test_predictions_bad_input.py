@@ -67,6 +67,11 @@ GET_CASES = [
     ("Infinity", query(vibration_rms="Infinity"), {"vibration_rms": [NON_FINITE]}),
     ("-Infinity", query(vibration_rms="-Infinity"), {"vibration_rms": [NON_FINITE]}),
     ("empty number", query(vibration_rms=""), {"vibration_rms": ["Not a number."]}),
+    # Text numbers follow the JSON number grammar (RFC 8259 section 6), not Python's float().
+    ("digit separators", query(vibration_rms="1_0"), {"vibration_rms": ["Not a number."]}),
+    ("leading plus", query(vibration_rms="%2B4"), {"vibration_rms": ["Not a number."]}),
+    ("hexadecimal", query(vibration_rms="0x1A"), {"vibration_rms": ["Not a number."]}),
+    ("non-ASCII digits", query(vibration_rms="\u0664"), {"vibration_rms": ["Not a number."]}),
     ("missing field", query(has_vfd=None), {"has_vfd": ["Missing data for required field."]}),
     ("unknown field", query(colour="red"), {"colour": ["Unknown field."]}),
     ("below the minimum", query(vibration_rms="-0.5"), {"vibration_rms": ["Must be at least 0."]}),
