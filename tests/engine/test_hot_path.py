@@ -13,18 +13,21 @@ from engine.online import OnlineTrainer, augment
 from engine.optimizers import make_optimizer
 from engine.spec import TRAINING_DEFAULTS
 
-CASES = [("binary", "logistic", "cross_entropy", 1, "sgd"),
-         ("multiclass", "softmax", "cross_entropy", 3, "adam"),
-         ("regression", "identity", "squared_error", 1, "sgd")]
+CASES = [("binary", "logistic", "cross_entropy", 1, "sgd", "tanh"),
+         ("binary", "logistic", "squared_error", 1, "adam", "relu"),
+         ("multiclass", "softmax", "cross_entropy", 3, "adam", "tanh"),
+         ("multiclass", "softmax", "cross_entropy", 3, "sgd", "logistic"),
+         ("regression", "identity", "squared_error", 1, "sgd", "logistic")]
 
 
-@pytest.mark.parametrize(("task", "output", "loss", "k", "optimizer"), CASES)
-def test_online_records_allocate_only_a_small_constant(task, output, loss, k, optimizer):
+@pytest.mark.parametrize(("task", "output", "loss", "k", "optimizer", "activation"), CASES)
+def test_online_records_allocate_only_a_small_constant(task, output, loss, k, optimizer,
+                                                       activation):
     rng = np.random.default_rng(0)
     n = 3000
     X = rng.normal(size=(n, 20))
     y = rng.normal(size=n) if output == "identity" else rng.integers(0, max(k, 2), size=n)
-    net = Network.create((20, 32, 16, k), "tanh", output, rng)
+    net = Network.create((20, 32, 16, k), activation, output, rng)
     settings = {**TRAINING_DEFAULTS, "optimizer": optimizer, "nesterov": True}
     trainer = OnlineTrainer(net, make_optimizer(net.params.size, settings), loss)
     metrics = Prequential(task, k)
