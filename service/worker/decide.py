@@ -5,17 +5,25 @@ latest holdout records at or before the new version's cursor), so the choice
 is between two models on one set of rows, not between two numbers measured on
 different data at different times. ``service.promotion.should_promote`` then
 applies the policy.
+
+Scoring the active version over the whole window at every checkpoint would
+double the evaluation work, so :class:`ActiveScore` keeps its primary metric
+current instead: both primary metrics are means over rows (log loss of each
+row; squared error under the root of RMSE), so the sum over the window
+changes only by the rows that enter and leave it.
 """
 
 from __future__ import annotations
 
+import math
 from typing import Any
 
+from numpy.typing import NDArray
 from sqlalchemy import select
 from sqlalchemy.orm import Session, sessionmaker
 
 from engine import Learner
-from service.promotion import should_promote
+from service.promotion import primary_metric, should_promote
 from service.store import ModelRow, VersionRow
 from service.worker.holdout import HoldoutWindow, evaluate
 from service.worker.records import read_latest_holdout
@@ -29,29 +37,47 @@ def encoder_of(learner: Learner) -> str | None:
     return None if value is None else str(value)
 
 
-class ActiveVersions:
-    """The active version's learner, loaded once per version id (versions are
-    immutable, so a cached one never goes stale)."""
+class ActiveScore:
+    """The active version's primary holdout metric on one lineage's window,
+    updated as rows enter and leave the window (mutable)."""
 
-    def __init__(self) -> None:
-        self._id: int | None = None
-        self._snapshot: bytes | None = None
-        self._learner: Learner | None = None
+    def __init__(self, metric: str) -> None:
+        self.metric = metric
+        self.version_id: int | None = None
+        self.learner: Learner | None = None
+        self._total = 0.0
+        self._n = 0
 
-    def remember(self, version_id: int, snapshot: bytes) -> None:
-        """A version this worker just wrote and promoted: parsed only if needed."""
-        self._id, self._snapshot, self._learner = version_id, snapshot, None
+    def start(self, version_id: int, learner: Learner, holdout: dict[str, Any]) -> None:
+        """Track ``learner`` (version ``version_id``), whose metrics on the
+        current window are ``holdout``."""
+        self.version_id, self.learner = version_id, learner
+        self._n = int(holdout.get("n") or 0)
+        value = holdout.get(self.metric)
+        self._total = 0.0 if value is None or not self._n else self._sum(float(value), self._n)
 
-    def get(self, session: Session, version_id: int) -> Learner:
-        if self._id != version_id:
-            snapshot = session.execute(
-                select(VersionRow.snapshot).where(VersionRow.id == version_id)
-            ).scalar_one()
-            self.remember(version_id, snapshot)
-        if self._learner is None:
-            assert self._snapshot is not None
-            self._learner, self._snapshot = Learner.from_bytes(self._snapshot), None
-        return self._learner
+    def forget(self) -> None:
+        self.version_id, self.learner = None, None
+
+    def update(self, X_in: NDArray[Any], Y_in: NDArray[Any],
+               X_out: NDArray[Any], Y_out: NDArray[Any]) -> None:
+        """Rows entered (``_in``) and left (``_out``) the window."""
+        if self.learner is None:
+            return
+        for X, Y, sign in ((X_in, Y_in, 1), (X_out, Y_out, -1)):
+            if len(X):
+                metrics = self.learner.evaluate(X, Y)
+                self._total += sign * self._sum(float(metrics[self.metric]), len(X))
+                self._n += sign * len(X)
+
+    def value(self) -> float | None:
+        if not self._n:
+            return None
+        mean = max(self._total, 0.0) / self._n
+        return math.sqrt(mean) if self.metric == "rmse" else mean
+
+    def _sum(self, value: float, n: int) -> float:
+        return value * value * n if self.metric == "rmse" else value * n
 
 
 def decide(
@@ -63,10 +89,11 @@ def decide(
     encoder: str | None,
     cursor: int,
     holdout_window: int,
-    actives: ActiveVersions,
+    active: ActiveScore,
 ) -> Promotion | None:
     """Promotion(over=active id) when the new version should become active,
-    None when it stays a candidate."""
+    None when it stays a candidate. ``active`` is used when it tracks the
+    active version on this window, and set up to do so otherwise."""
     if spec.get("promotion", "auto") != "auto":
         return None
     with sessions() as session:
@@ -74,17 +101,37 @@ def decide(
             select(ModelRow.active_version_id).where(ModelRow.id == model_id)
         ).scalar_one()
         if active_id is None:
+            active.forget()
             return Promotion(over=None) if should_promote(spec, new_metrics, None) else None
-        active = actives.get(session, active_id)
-        if encoder is not None and encoder_of(active) == encoder:
-            active_holdout = evaluate(active, window)
-        else:
-            # Another encoding (a retrain from scratch): encode the same rows its way.
-            rows = read_latest_holdout(session, model_id, cursor, holdout_window)
-            own = HoldoutWindow(holdout_window)
-            if len(rows):
-                own.extend(active.encode(rows.features), active.encode_labels(rows.labels))
-            active_holdout = evaluate(active, own)
-    if should_promote(spec, new_metrics, {"holdout": active_holdout}):
+        if active.version_id != active_id:
+            _score_from_scratch(session, active, active_id, model_id, window, encoder,
+                                cursor, holdout_window)
+    holdout = {active.metric: active.value()}
+    if should_promote(spec, new_metrics, {"holdout": holdout}):
         return Promotion(over=active_id)
     return None
+
+
+def _score_from_scratch(session: Session, active: ActiveScore, active_id: int, model_id: int,
+                        window: HoldoutWindow, encoder: str | None, cursor: int,
+                        holdout_window: int) -> None:
+    snapshot = session.execute(
+        select(VersionRow.snapshot).where(VersionRow.id == active_id)
+    ).scalar_one()
+    learner = Learner.from_bytes(snapshot)
+    if encoder is not None and encoder_of(learner) == encoder:
+        active.start(active_id, learner, evaluate(learner, window))
+        return
+    # Another encoding (a retrain from scratch): encode the same rows its way.
+    # Not tracked: the window's rows are in the lineage's encoding.
+    rows = read_latest_holdout(session, model_id, cursor, holdout_window)
+    own = HoldoutWindow(holdout_window)
+    if len(rows):
+        own.extend(learner.encode(rows.features), learner.encode_labels(rows.labels))
+    active.start(active_id, learner, evaluate(learner, own))
+    active.learner = None  # a value for this decision only
+    active.version_id = None
+
+
+def new_active_score(spec: dict[str, Any]) -> ActiveScore:
+    return ActiveScore(primary_metric(spec))

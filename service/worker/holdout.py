@@ -28,16 +28,26 @@ class HoldoutWindow:
         self._start = 0  # index of the oldest row once the buffer is full
         self.size = 0
 
-    def extend(self, X: NDArray[np.float64], Y: NDArray[Any]) -> None:
-        """Append rows (in sequence order), dropping the oldest past capacity."""
+    def extend(
+        self, X: NDArray[np.float64], Y: NDArray[Any]
+    ) -> tuple[NDArray[np.float64], NDArray[Any]]:
+        """Append rows (in sequence order), dropping the oldest past capacity;
+        returns the rows dropped (copies), so running sums can let them go."""
         if len(X) == 0 or self.capacity == 0:
-            return
+            return X[:0], Y[:0]
         if self._X is None or self._Y is None:
             # Preallocated once at the full size: appending never reallocates.
             self._X = np.empty((self.capacity, X.shape[1]), dtype=X.dtype)
             self._Y = np.empty((self.capacity, *Y.shape[1:]), dtype=Y.dtype)
+        overflow = self.size + len(X) - self.capacity
+        old = min(max(overflow, 0), self.size)
+        at = (self._start + np.arange(old)) % self.capacity
+        dropped_X, dropped_Y = self._X[at], self._Y[at]
         if len(X) > self.capacity:
-            X, Y = X[-self.capacity :], Y[-self.capacity :]
+            skipped = len(X) - self.capacity
+            dropped_X = np.concatenate([dropped_X, X[:skipped]])
+            dropped_Y = np.concatenate([dropped_Y, Y[:skipped]])
+            X, Y = X[skipped:], Y[skipped:]
         end = (self._start + self.size) % self.capacity
         first = min(len(X), self.capacity - end)  # up to the end of the buffer,
         self._X[end : end + first] = X[:first]
@@ -49,6 +59,7 @@ class HoldoutWindow:
         if grown > self.capacity:
             self._start = (self._start + grown - self.capacity) % self.capacity
         self.size = min(grown, self.capacity)
+        return dropped_X, dropped_Y
 
     def arrays(self) -> tuple[NDArray[np.float64], NDArray[Any]]:
         """The rows in sequence order (a copy once the ring has wrapped)."""

@@ -27,7 +27,7 @@ from sqlalchemy.orm import Session, sessionmaker
 
 from engine import EngineError, Learner, NonFiniteError
 from service.store import ModelRow, TrainerRow, VersionRow
-from service.worker.decide import ENCODER_KEY, ActiveVersions, decide, encoder_of
+from service.worker.decide import ENCODER_KEY, decide, encoder_of, new_active_score
 from service.worker.holdout import HoldoutWindow, evaluate, json_metrics
 from service.worker.records import RecordChunk, read_after, read_latest_holdout
 from service.worker.settings import WorkerSettings
@@ -62,7 +62,6 @@ class OnlineLineage:
         self.pending_train = 0  # train records applied since the head version
         self.encoder: str | None = None
         self.window = HoldoutWindow(settings.holdout_window)
-        self.actives = ActiveVersions()
         self.last_arrival = time.monotonic()
         self._warmup_seen = -1
         with reads() as session:
@@ -77,6 +76,7 @@ class OnlineLineage:
                 self.encoder = encoder_of(self.learner) or f"version:{head.id}"
                 self.cursor = self.stored_cursor = trainer.cursor
                 self._fill_window(session)
+        self.active = new_active_score(self.spec)
         training = self.spec.get("training", {})
         self.checkpoint_every = int(training.get("checkpoint_every", 1000))
         self.warmup_records = int(training.get("warmup_records", 256))
@@ -124,7 +124,8 @@ class OnlineLineage:
                 self._learn(X_part, Y_part, chunk.seqs[start:stop])
             else:
                 self._learn(X_part[train], Y_part[train], chunk.seqs[start:stop][train])
-                self.window.extend(X_part[~train], Y_part[~train])
+                X_in, Y_in = X_part[~train], Y_part[~train]
+                self.active.update(X_in, Y_in, *self.window.extend(X_in, Y_in))
             self.cursor = int(chunk.seqs[stop - 1])
             start = stop
             if self.pending_train and learner.records_seen % self.checkpoint_every == 0:
@@ -167,14 +168,15 @@ class OnlineLineage:
             "holdout_window": self.settings.holdout_window,
         }
         promotion = decide(self.writes, self.model_id, self.spec, metrics, self.window,
-                           self.encoder, self.cursor, self.settings.holdout_window, self.actives)
+                           self.encoder, self.cursor, self.settings.holdout_window, self.active)
         new = NewVersion(snapshot=snapshot, origin="online", cursor=self.cursor,
                          records_seen=learner.records_seen, metrics=metrics,
                          parent_id=self.head_id)
         version = write_online_version(self.writes, self.model_id, self.worker_id,
                                        self.head_id, new, promotion)
         if version.status == "active":
-            self.actives.remember(version.id, snapshot)
+            # The version's state, frozen: the live learner moves on.
+            self.active.start(version.id, Learner.from_bytes(snapshot), metrics["holdout"])
         self.head_id = version.id
         self.stored_cursor = self.cursor
         self.pending_train = 0

@@ -28,7 +28,7 @@ from sqlalchemy.orm import Session, sessionmaker
 
 from engine import Learner, TrainingCancelled
 from service.store import JobRow, ModelRow, RecordRow, VersionRow
-from service.worker.decide import ENCODER_KEY, ActiveVersions, decide, encoder_of
+from service.worker.decide import ENCODER_KEY, decide, encoder_of, new_active_score
 from service.worker.holdout import HoldoutWindow, evaluate, json_metrics
 from service.worker.jobs import fail_job, report_progress, requeue_job
 from service.worker.leasing import claim_job, renew_job
@@ -174,7 +174,7 @@ def run_retrain(
         "fit": _plain(report),
     }
     promotion = decide(writes, model_id, spec, metrics, window, encoder, cursor,
-                       settings.holdout_window, ActiveVersions())
+                       settings.holdout_window, new_active_score(spec))
     snapshot = learner.to_bytes(extra={"cursor": cursor, ENCODER_KEY: encoder,
                                        "model_id": model_id, "job_id": job_id})
     new = NewVersion(snapshot=snapshot, origin="retrain", cursor=cursor,

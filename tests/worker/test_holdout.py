@@ -23,3 +23,20 @@ def test_the_window_holds_the_latest_rows_in_sequence_order() -> None:
             if window.size:
                 assert np.array_equal(got_X, stream_X[-capacity:])
                 assert np.array_equal(got_Y, stream_Y[-capacity:])
+
+
+def test_the_rows_the_window_drops_are_handed_back_in_order() -> None:
+    rng = np.random.default_rng(8)
+    for capacity in (1, 4, 9):
+        window = HoldoutWindow(capacity)
+        kept, dropped = [], []
+        for _ in range(30):
+            n = int(rng.integers(0, 2 * capacity + 2))
+            X, Y = rng.normal(size=(n, 2)), rng.integers(0, 3, size=n)
+            out_X, out_Y = window.extend(X, Y)
+            dropped.extend(out_X.tolist())
+            kept.extend(X.tolist())
+            assert len(out_X) == len(out_Y)
+        # Everything that went in is either still held or was handed back, in order.
+        held, _ = window.arrays()
+        assert dropped + held.tolist() == kept
