@@ -114,6 +114,7 @@ def fit(network: Network, optimizer: Optimizer, loss: str, X: Array, y: NDArray[
             if stale >= patience:
                 break
     network.params[...] = best_params
+    optimizer.params_changed()
     return FitReport(
         epochs=epoch, best_epoch=best_epoch, train_loss=train_loss,
         validation_loss=None if val_loss is None else best,

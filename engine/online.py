@@ -60,6 +60,7 @@ class OnlineTrainer:
     def __init__(self, network: Network, optimizer: Optimizer, loss: str) -> None:
         heads.check_head(network.output, loss)
         network.bind_(optimizer.params)
+        optimizer.params_changed()
         self.network, self.optimizer, self.loss = network, optimizer, loss
         hidden = network.sizes[1:-1]
         k = network.sizes[-1]

@@ -71,6 +71,10 @@ class Optimizer:
             return grad_scale * (clip / math.sqrt(squared))
         return grad_scale
 
+    def params_changed(self) -> None:
+        """Tell the optimizer `params` were written from outside (no-op unless it keeps
+        bounds on them)."""
+
     def step_(self, grad_scale: float = 1.0) -> None:
         """Apply one step to `params` (mutates; all or nothing) for the loss gradient
         grad_scale * grad; `grad` may be overwritten.
@@ -109,7 +113,16 @@ class SGD(Optimizer):
     one matrix-vector product of a coefficient triple with rows (v_a, g, w) or, the
     other way round, (g, w, v_b), written into the spare slot: one BLAS call
     instead of five elementwise passes.
+
+    Finiteness without a pass over the step: SGD keeps upper bounds on max |v_i| and
+    max |w_i|. |v_new_i| <= mu |v_i| + lr s |g_i| + lr l2 |w_i| with |g_i| <= ||g||
+    (already computed for clipping), so while the bounds stay below SAFE_BOUND no
+    element can overflow and the step is finite by construction; past it the step
+    is checked with a dot product and the bounds are measured afresh. Write `params`
+    freely before the first step; after that, call `params_changed()`.
     """
+
+    SAFE_BOUND = 1e150  # far below the float64 maximum (~1.8e308)
 
     kind = "sgd"
     rows = 5
@@ -129,6 +142,12 @@ class SGD(Optimizer):
         decay = -self.learning_rate * self.l2
         self._fixed = (np.array([self.momentum, 0.0, decay]),
                        np.array([0.0, decay, self.momentum]))
+        self._velocity_bound = 0.0  # the velocity starts at zero
+        self._weight_bound = math.inf  # measured at the first step
+
+    def params_changed(self) -> None:
+        """Forget the weight bound after `params` were written from outside."""
+        self._weight_bound = math.inf
 
     @property
     def velocity(self) -> Array:
@@ -138,13 +157,15 @@ class SGD(Optimizer):
     def step_(self, grad_scale: float = 1.0) -> None:
         # clip_scale inlined: this runs once per record.
         g = self.grad
-        squared = float(np.dot(g, g)) * (grad_scale * grad_scale)
+        raw = float(np.dot(g, g))
+        squared = raw * (grad_scale * grad_scale)
         scale = grad_scale if squared < self._clip_squared else self.clip_scale(grad_scale)
         live = self._live
         # Coefficients follow the rows of the triple in use: (v_a, g, w) or (g, w, v_b).
         if self.schedule == "constant":
+            lr = self.learning_rate
             c = self._fixed[live]
-            c[1 - live] = -self.learning_rate * scale
+            c[1 - live] = -lr * scale
         else:
             lr = self.rate()
             c = self._coefficients
@@ -159,10 +180,24 @@ class SGD(Optimizer):
             np.subtract(new_velocity, self._slots[live], update)
             np.multiply(update, self.momentum, update)
             np.add(update, new_velocity, update)
-        # |update_i| < 1.3e154 when this is finite, so w + update cannot overflow.
-        if not math.isfinite(float(np.dot(update, update))):
-            raise NonFiniteError("the step would make a weight non-finite")
+        # Bounds of the new velocity and of the update, from the bounds of the operands.
+        weight_bound = self._weight_bound
+        if weight_bound == math.inf:
+            weight_bound = float(np.max(np.abs(self.params)))
+        # max |g_i| <= ||g|| = sqrt(raw); the gradient's coefficient is -lr * scale.
+        velocity_bound = (self.momentum * self._velocity_bound
+                          + lr * abs(scale) * math.sqrt(raw) + lr * self.l2 * weight_bound)
+        update_bound = velocity_bound if not self.nesterov else \
+            (1.0 + self.momentum) * velocity_bound + self.momentum * self._velocity_bound
+        weight_bound += update_bound
+        if not (update_bound < self.SAFE_BOUND and weight_bound < self.SAFE_BOUND):
+            # |update_i| < 1.3e154 when this is finite, so w + update cannot overflow.
+            if not math.isfinite(float(np.dot(update, update))):
+                raise NonFiniteError("the step would make a weight non-finite")
+            velocity_bound = float(np.max(np.abs(new_velocity)))
+            weight_bound = math.inf  # measured again at the next step
         np.add(self.params, update, self.params)
+        self._velocity_bound, self._weight_bound = velocity_bound, weight_bound
         self._live = 1 - live
         self.step_count += 1
 
@@ -174,6 +209,8 @@ class SGD(Optimizer):
         # run would use keeps the summation order, hence the bits, the same.
         self._live = self.step_count % 2
         self._slots[self._live][...] = arrays["velocity"]
+        self._velocity_bound = float(np.max(np.abs(arrays["velocity"]), initial=0.0))
+        self._weight_bound = math.inf
 
 
 class Adam(Optimizer):

@@ -133,3 +133,29 @@ def test_load_state_refuses_wrong_shapes_and_non_finite_values():
         opt.load_state({"velocity": np.array([0.0, np.nan, 0.0])}, 0)
     with pytest.raises(SnapshotError):
         opt.load_state({}, 0)
+
+
+@pytest.mark.parametrize("nesterov", [False, True])
+def test_an_overflowing_update_from_finite_gradients_is_caught(nesterov):
+    """The weight-decay term overflows on its own: -lr * l2 * w with w near the float64
+    maximum. SGD skips its dot-product check only while its bounds prove finiteness."""
+    opt = SGD(3, training(learning_rate=1.0, momentum=0.5, l2=2.0, clip_norm=None,
+                          nesterov=nesterov))
+    opt.params[:] = [1.5e308, -1.0, 2.0]
+    opt.grad[:] = [0.1, 0.2, 0.3]
+    with np.errstate(over="ignore", invalid="ignore"), pytest.raises(NonFiniteError):
+        opt.step_()
+    assert opt.params.tolist() == [1.5e308, -1.0, 2.0] and opt.step_count == 0
+
+
+def test_large_but_finite_weights_still_step_exactly():
+    opt = SGD(2, training(learning_rate=0.5, momentum=0.0, l2=0.0, clip_norm=None))
+    opt.params[:] = [1e200, 3.0]
+    opt.grad[:] = [2.0, 4.0]
+    opt.step_()
+    assert opt.params.tolist() == [1e200 - 1.0, 1.0]
+    opt.params_changed()
+    opt.params[:] = [1.0, 1.0]
+    opt.grad[:] = [2.0, 4.0]
+    opt.step_()
+    assert opt.params.tolist() == [0.0, -1.0]
