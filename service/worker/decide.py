@@ -30,6 +30,7 @@ from service.worker.records import read_latest_holdout
 from service.worker.versions import Promotion
 
 ENCODER_KEY = "encoder"  # snapshot extra: which frozen encoding a version uses
+RECORDS_BEFORE_KEY = "records_before"  # snapshot extra: train records learned in batch
 
 
 def encoder_of(learner: Learner) -> str | None:

@@ -27,7 +27,13 @@ from sqlalchemy.orm import Session, sessionmaker
 
 from engine import EngineError, Learner, NonFiniteError
 from service.store import ModelRow, TrainerRow, VersionRow
-from service.worker.decide import ENCODER_KEY, decide, encoder_of, new_active_score
+from service.worker.decide import (
+    ENCODER_KEY,
+    RECORDS_BEFORE_KEY,
+    decide,
+    encoder_of,
+    new_active_score,
+)
 from service.worker.holdout import HoldoutWindow, evaluate, json_metrics
 from service.worker.records import RecordChunk, read_after, read_latest_holdout
 from service.worker.settings import WorkerSettings
@@ -61,6 +67,10 @@ class OnlineLineage:
         self.stored_cursor = 0  # trainers.cursor as last written
         self.pending_train = 0  # train records applied since the head version
         self.encoder: str | None = None
+        # Train records a lineage's root learned in batch (a retrain) before
+        # the learner's own online count began: a version's records_seen is
+        # this plus learner.records_seen.
+        self.records_before = 0
         self.window = HoldoutWindow(settings.holdout_window)
         self.last_arrival = time.monotonic()
         self._warmup_seen = -1
@@ -74,6 +84,7 @@ class OnlineLineage:
                 assert head is not None
                 self.learner = Learner.from_bytes(head.snapshot)
                 self.encoder = encoder_of(self.learner) or f"version:{head.id}"
+                self.records_before = int(self.learner.extra.get(RECORDS_BEFORE_KEY, 0))
                 self.cursor = self.stored_cursor = trainer.cursor
                 self._fill_window(session)
         self.active = new_active_score(self.spec)
@@ -161,6 +172,7 @@ class OnlineLineage:
         learner = self.learner
         assert learner is not None
         snapshot = learner.to_bytes(extra={"cursor": self.cursor, ENCODER_KEY: self.encoder,
+                                           RECORDS_BEFORE_KEY: self.records_before,
                                            "model_id": self.model_id})
         metrics = {
             "prequential": json_metrics(learner.prequential_metrics()),
@@ -170,7 +182,8 @@ class OnlineLineage:
         promotion = decide(self.writes, self.model_id, self.spec, metrics, self.window,
                            self.encoder, self.cursor, self.settings.holdout_window, self.active)
         new = NewVersion(snapshot=snapshot, origin="online", cursor=self.cursor,
-                         records_seen=learner.records_seen, metrics=metrics,
+                         records_seen=self.records_before + learner.records_seen,
+                         metrics=metrics,
                          parent_id=self.head_id)
         version = write_online_version(self.writes, self.model_id, self.worker_id,
                                        self.head_id, new, promotion)

@@ -28,7 +28,13 @@ from sqlalchemy.orm import Session, sessionmaker
 
 from engine import Learner, TrainingCancelled
 from service.store import JobRow, ModelRow, RecordRow, VersionRow
-from service.worker.decide import ENCODER_KEY, decide, encoder_of, new_active_score
+from service.worker.decide import (
+    ENCODER_KEY,
+    RECORDS_BEFORE_KEY,
+    decide,
+    encoder_of,
+    new_active_score,
+)
 from service.worker.holdout import HoldoutWindow, evaluate, json_metrics
 from service.worker.jobs import fail_job, report_progress, requeue_job
 from service.worker.leasing import claim_job, renew_job
@@ -175,10 +181,13 @@ def run_retrain(
     }
     promotion = decide(writes, model_id, spec, metrics, window, encoder, cursor,
                        settings.holdout_window, new_active_score(spec))
+    # The version has learned from every train record up to its cursor.
+    records_before = n_train - learner.records_seen
     snapshot = learner.to_bytes(extra={"cursor": cursor, ENCODER_KEY: encoder,
+                                       RECORDS_BEFORE_KEY: records_before,
                                        "model_id": model_id, "job_id": job_id})
     new = NewVersion(snapshot=snapshot, origin="retrain", cursor=cursor,
-                     records_seen=learner.records_seen, metrics=metrics,
+                     records_seen=n_train, metrics=metrics,
                      parent_id=parent_id, job_id=job_id)
     version = write_retrain_version(writes, job_id, worker_id, new, promotion)
     log.info("job %s: version %s of model %s (%s)", job_id, version.number, model_id,

@@ -127,6 +127,12 @@ def test_a_promoted_retrain_heads_the_lineage_and_online_learning_continues_afte
             RecordRow.model_id == model_id, RecordRow.split == "train",
             RecordRow.seq > retrained.cursor, RecordRow.seq <= child.cursor))
     assert resumed.records_seen == parent.records_seen + n_new
+    # A version counts every train record its weights learned from, batch or online.
+    with db.read() as session:
+        n_upto = session.scalar(select(func.count()).where(
+            RecordRow.model_id == model_id, RecordRow.split == "train",
+            RecordRow.seq <= retrained.cursor))
+    assert (retrained.records_seen, child.records_seen) == (n_upto, n_upto + n_new)
     db.engine.dispose()
 
 
