@@ -11,8 +11,9 @@ worker process (``python -m service.worker``) is started and measured:
   version included; beside the engine's pure online rate in this process
   (``Learner.learn`` over the same train records, already encoded in memory);
 * ``retrain``: a full retrain job from claim to finish (streaming the records
-  from the database, encoding, the batch fit, evaluation, the version) beside
-  ``Learner.fit`` alone on the same arrays, with the same fixed epoch count;
+  from the database, encoding, the batch fit with early stopping, evaluation,
+  the version) beside ``Learner.fit`` alone on the same train records already
+  encoded in memory, run for exactly as many epochs as the job ran;
 * ``peak_rss_mib``: the worker process's peak resident set (VmHWM) after
   catching up, and again after the retrain.
 
@@ -56,7 +57,7 @@ SPEC: dict[str, Any] = {
     "promotion": "auto",
     "training": {"optimizer": "sgd", "learning_rate": 0.01, "momentum": 0.9,
                  "checkpoint_every": 1000, "holdout_fraction": 0.2, "seed": 0,
-                 "batch_size": 64, "max_epochs": 5, "patience": 1000},
+                 "batch_size": 64, "max_epochs": 200, "patience": 10},
 }
 
 
@@ -65,12 +66,14 @@ def run_worker_bench(
     records: int = 100_000,
     postgres_url: str | None = None,
     progress: Progress = lambda _: None,
+    retrain: bool = True,
 ) -> dict[str, Any]:
     """Measure and return one JSON-ready object (see the module docstring).
 
     ``database_url``: measure on that (empty, scratch) database only;
     otherwise a scratch SQLite file, and PostgreSQL on a scratch database of
     ``postgres_url`` (or ``KEELSON_BENCH_POSTGRES_URL``) when given.
+    ``retrain=False`` measures the online part only (for large record counts).
     """
     result: dict[str, Any] = {
         "benchmark": "worker",
@@ -80,20 +83,20 @@ def run_worker_bench(
                      "spec_training": SPEC["training"], "worker": WORKER_SETTINGS},
     }
     if database_url:
-        result["database"] = _measure(database_url, records, progress)
+        result["database"] = _measure(database_url, records, progress, retrain)
         return result
     postgres_url = postgres_url or os.environ.get("KEELSON_BENCH_POSTGRES_URL")
     with tempfile.TemporaryDirectory(prefix="keelson-bench-") as scratch:
-        result["sqlite"] = _measure(f"sqlite:///{scratch}/bench.db", records, progress)
+        result["sqlite"] = _measure(f"sqlite:///{scratch}/bench.db", records, progress, retrain)
     if postgres_url:
         with _scratch_postgres(postgres_url) as url:
-            result["postgresql"] = _measure(url, records, progress)
+            result["postgresql"] = _measure(url, records, progress, retrain)
     else:
         result["postgresql"] = {"skipped": "no postgres_url (or KEELSON_BENCH_POSTGRES_URL)"}
     return result
 
 
-def _measure(url: str, records: int, progress: Progress) -> dict[str, Any]:
+def _measure(url: str, records: int, progress: Progress, retrain: bool) -> dict[str, Any]:
     from service.db import make_engine, make_sessionmaker, upgrade_database
     from service.worker.records import decode_json
 
@@ -115,22 +118,25 @@ def _measure(url: str, records: int, progress: Progress) -> dict[str, Any]:
         online_seconds = time.perf_counter() - leased
         rss_online = _peak_rss_mib(worker.pid)
 
-        progress(f"[{backend}] worker: full retrain")
-        job_id = _queue_retrain(writes, model_id)
-        _wait(lambda: _job(reads, job_id)[0] in ("succeeded", "failed"), 3600)
-        status, job_seconds, job_error = _job(reads, job_id)
-        rss_retrain = _peak_rss_mib(worker.pid)
+        job_id = status = job_seconds = job_error = rss_retrain = None
+        if retrain:
+            progress(f"[{backend}] worker: full retrain")
+            job_id = _queue_retrain(writes, model_id)
+            _wait(lambda: _job(reads, job_id)[0] in ("succeeded", "failed"), 3600)
+            status, job_seconds, job_error = _job(reads, job_id)
+            rss_retrain = _peak_rss_mib(worker.pid)
     finally:
         worker.send_signal(signal.SIGTERM)
         worker.wait(60)
-        engine.dispose()
 
     progress(f"[{backend}] engine alone: online and batch")
     train = [i for i, split in enumerate(splits) if split == "train"]
+    epochs = _job_epochs(reads, job_id) if job_id is not None else 0
     online_engine, fit_engine = _engine_alone([features[i] for i in train],
-                                              [labels[i] for i in train])
+                                              [labels[i] for i in train], epochs)
     n_train = len(train)
     worker_rate = n_train / online_seconds
+    engine.dispose()
     figures.update({
         "online": {
             "train_records": n_train, "all_records": records,
@@ -141,13 +147,13 @@ def _measure(url: str, records: int, progress: Progress) -> dict[str, Any]:
             "ratio": round(worker_rate / (n_train / online_engine), 3),
             "target_ratio": 0.4,
         },
-        "retrain": {
+        "retrain": None if not retrain else {
             "job_status": status, "job_error": job_error,
             "worker_job_seconds": None if job_seconds is None else round(job_seconds, 2),
             "engine_fit_seconds": round(fit_engine, 2),
             "ratio": None if not job_seconds else round(fit_engine / job_seconds, 3),
             "target_ratio": 0.8,
-            "epochs": SPEC["training"]["max_epochs"],
+            "epochs": epochs,
         },
         "peak_rss_mib": {"after_online": rss_online, "after_retrain": rss_retrain},
     })
@@ -204,17 +210,22 @@ def _store(writes: Any, records: int) -> tuple[int, int, list[dict[str, float]],
     return model_id, seq, features, labels, splits
 
 
-def _engine_alone(features: list[dict[str, float]], labels: list[bool]) -> tuple[float, float]:
-    """Seconds for Learner.learn over every train record, and for Learner.fit."""
+def _engine_alone(features: list[dict[str, float]], labels: list[bool],
+                  epochs: int) -> tuple[float, float]:
+    """Seconds for Learner.learn over every train record, and for Learner.fit
+    over them for ``epochs`` epochs (no early stop: the same work as the job)."""
     from engine import Learner, apply_defaults
 
     spec = apply_defaults(SPEC)
+    spec["training"].update(max_epochs=max(epochs, 1), patience=max(epochs, 1))
     warm = spec["training"]["warmup_records"]
     learner = Learner.create(spec, warmup=features[:warm], warmup_labels=labels[:warm])
     X, Y = learner.encode(features), learner.encode_labels(labels)
     started = time.perf_counter()
     learner.learn(X, Y)
     online = time.perf_counter() - started
+    if not epochs:
+        return online, 0.0
     fresh = Learner.create(spec, warmup=features[:warm], warmup_labels=labels[:warm])
     started = time.perf_counter()
     fresh.fit(X, Y)
@@ -246,6 +257,15 @@ def _queue_retrain(writes: Any, model_id: int) -> int:
         session.add(job)
         session.flush()
         return int(job.id)
+
+
+def _job_epochs(reads: Any, job_id: int) -> int:
+    from service.store import JobRow, VersionRow
+
+    with reads() as session:
+        job = session.get(JobRow, job_id)
+        version = session.get(VersionRow, job.version_id) if job.version_id else None
+        return int(version.metrics["fit"]["epochs"]) if version else 0
 
 
 def _job(reads: Any, job_id: int) -> tuple[str, float | None, str | None]:
