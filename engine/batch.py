@@ -87,16 +87,19 @@ def fit(network: Network, optimizer: Optimizer, loss: str, X: Array, y: NDArray[
         if cancel is not None and cancel():
             raise TrainingCancelled(f"cancelled before epoch {epoch}")
         order = rng.permutation(n)
+        # One shuffled copy per epoch; the batches are then views of it.
+        X_epoch, y_epoch = X_train[order], y_train[order]
         total = 0.0
-        for start in range(0, n, batch_size):
-            rows = order[start : start + batch_size]
-            with np.errstate(over="ignore", invalid="ignore"):  # raised below instead
-                batch_loss, _ = network.loss_gradient(X_train[rows], y_train[rows], loss,
+        with np.errstate(over="ignore", invalid="ignore"):  # non-finite: raised below
+            for start in range(0, n, batch_size):
+                stop = min(start + batch_size, n)
+                batch_loss, _ = network.loss_gradient(X_epoch[start:stop],
+                                                      y_epoch[start:stop], loss,
                                                       out=optimizer.grad)
                 if not math.isfinite(batch_loss):
                     raise NonFiniteError(f"epoch {epoch}: the loss is not finite")
                 optimizer.step_()
-            total += batch_loss * rows.size
+                total += batch_loss * (stop - start)
         train_loss = total / n
         val_loss = mean_loss(network, loss, X_val, y_val) if val.size else None
         monitored = train_loss if val_loss is None else val_loss
