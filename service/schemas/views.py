@@ -21,6 +21,9 @@ class RecordCountsSchema(Schema):
 class TrainerStateSchema(Schema):
     cursor = fields.Integer(required=True, metadata={"description": "Last applied sequence."})
     lag = fields.Integer(required=True, metadata={"description": "Records not yet applied."})
+    error = fields.String(metadata={
+        "description": "Present when the online lineage stopped (e.g. a non-finite loss): "
+        "why. Records then wait; the active version keeps serving."})
 
 
 class ModelSchema(ModelSpecSchema):

@@ -43,9 +43,14 @@ def as_utc(moment: dt.datetime | None) -> dt.datetime | None:
 
 
 def model_view(
-    row: ModelRow, *, active_version: int | None, cursor: int, lag: int
+    row: ModelRow, *, active_version: int | None, cursor: int, lag: int,
+    error: str | None = None,
 ) -> dict[str, Any]:
-    """GET /v1/models/{name}: the stored spec and the model's state."""
+    """GET /v1/models/{name}: the stored spec and the model's state; the
+    trainer's ``error`` only when its lineage was stopped (records then wait)."""
+    trainer: dict[str, Any] = {"cursor": cursor, "lag": lag}
+    if error is not None:
+        trainer["error"] = error
     return {
         **row.spec,
         "name": row.name,
@@ -55,6 +60,6 @@ def model_view(
             "train": row.records_train,
             "holdout": row.records_holdout,
         },
-        "trainer": {"cursor": cursor, "lag": lag},
+        "trainer": trainer,
         "created_at": as_utc(row.created_at),
     }

@@ -68,11 +68,13 @@ def _views(session: Session, rows: list[ModelRow]) -> list[dict[str, Any]]:
             .where(ModelRow.id.in_(ids))
         ).all()
     )
-    cursors = dict(
-        session.execute(
-            select(TrainerRow.model_id, TrainerRow.cursor).where(TrainerRow.model_id.in_(ids))
+    trainers = {
+        model_id: (cursor, error)
+        for model_id, cursor, error in session.execute(
+            select(TrainerRow.model_id, TrainerRow.cursor, TrainerRow.error)
+            .where(TrainerRow.model_id.in_(ids))
         ).all()
-    )
+    }
     # Lag counts records past the cursor: an index range scan on (model_id, seq).
     lags = dict(
         session.execute(
@@ -86,8 +88,9 @@ def _views(session: Session, rows: list[ModelRow]) -> list[dict[str, Any]]:
         model_view(
             row,
             active_version=active.get(row.id),
-            cursor=cursors.get(row.id, 0),
+            cursor=trainers.get(row.id, (0, None))[0],
             lag=lags.get(row.id, 0),
+            error=trainers.get(row.id, (0, None))[1],
         )
         for row in rows
     ]
