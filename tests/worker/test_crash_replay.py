@@ -68,7 +68,7 @@ def test_a_worker_killed_at_random_moments_reaches_bit_identical_weights(
                         training={"optimizer": "adam", "learning_rate": 0.003,
                                   "checkpoint_every": 100, "warmup_records": 128})
     model_id = new_model(db, spec)
-    send(db, "crashes", stream(8000, seed=11))
+    send(db, "crashes", stream(12000, seed=11))
     log = tmp_path / "worker.log"
     chance = random.Random(20261201)
     cursors = []

@@ -27,7 +27,7 @@ from tests.worker.helpers import (
     wait_until,
 )
 
-LEASE = 2.0
+LEASE = 4.0
 FIELDS = ["a", "b"]
 
 
