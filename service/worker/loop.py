@@ -2,7 +2,7 @@
 
 One thread steps every leased lineage a chunk at a time, round robin, and
 renews the leases between chunks (a chunk takes milliseconds, a lease lasts
-seconds). Retrain jobs run one at a time on a second thread (jobs.py /
+seconds). Retrain jobs run one at a time on a second thread (job_runner.py,
 retrain.py) so a long retrain does not stall online learning.
 
 Stopping (the ``stop`` event, set on SIGTERM/SIGINT): the current chunk is
@@ -23,10 +23,12 @@ from collections.abc import Mapping
 from typing import Any
 
 from sqlalchemy import Engine
+from sqlalchemy import exc as sa_exc
 from sqlalchemy.orm import Session, sessionmaker
 
 from engine import EngineError
 from service.db import make_engine, make_sessionmaker
+from service.worker.job_runner import JobRunner
 from service.worker.leasing import (
     claim_trainers,
     ensure_trainer_rows,
@@ -35,11 +37,12 @@ from service.worker.leasing import (
 )
 from service.worker.online import LineageStopped, OnlineLineage
 from service.worker.records import decode_json
-from service.worker.retrain import JobRunner
 from service.worker.settings import WorkerSettings
 from service.worker.versions import Fenced, stop_lineage
 
 log = logging.getLogger("keelson.worker")
+# Failures that mean the database is away for now (restarting, unreachable).
+DATABASE_AWAY = (sa_exc.OperationalError, sa_exc.InterfaceError)
 
 
 def default_worker_id() -> str:
@@ -85,6 +88,7 @@ class Worker:
         self.jobs = JobRunner(settings, self.reads, self.writes, worker_id, stop)
         self._next_heartbeat = 0.0
         self._next_claim = 0.0
+        self._database_away = False
 
     def run(self) -> None:
         log.info("worker %s started", self.worker_id)
@@ -107,9 +111,19 @@ class Worker:
                 self._claim()
                 self._next_claim = now + self.settings.poll_seconds
             self.jobs.poll()
-        except Exception:  # the database may be away: keep trying, keep the state
+        except DATABASE_AWAY as exc:
+            # Said once, not a traceback per poll; keep trying, keep the state.
+            if not self._database_away:
+                log.warning("worker %s: database unavailable (%s); waiting for it",
+                            self.worker_id, type(exc.orig or exc).__name__)
+                self._database_away = True
+            return False
+        except Exception:
             log.exception("worker %s: lease bookkeeping failed", self.worker_id)
             return False
+        if self._database_away:
+            log.info("worker %s: database reachable again", self.worker_id)
+            self._database_away = False
         busy = False
         for model_id, lineage in list(self.lineages.items()):
             if self.stop.is_set():

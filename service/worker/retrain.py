@@ -1,11 +1,9 @@
 """Retrain jobs: the engine's batch trainer over every train record, as a version.
 
-A job is claimed with a lease (leasing.py) and run on its own thread, beside
-the online loop; another small thread renews the lease while it runs, so a job
-whose worker died is picked up again once the lease expires. The train records
-at or before the job's cursor (the last record stored when it started) are
-streamed from the database a chunk per query into one preallocated matrix:
-the rows never exist as Python objects all at once.
+A job is claimed with a lease and run on its own thread (job_runner.py). The
+train records at or before the job's cursor (the last record stored when it
+started) are streamed from the database a chunk per query into one
+preallocated matrix: the rows never exist as Python objects all at once.
 
 From scratch, the encoder's statistics come from an evenly spread sample of
 the train records (at most ``STATS_SAMPLE`` rows: enough for a mean and a
@@ -18,7 +16,6 @@ from __future__ import annotations
 import dataclasses
 import logging
 import math
-import threading
 import time
 from typing import Any
 
@@ -36,8 +33,7 @@ from service.worker.decide import (
     new_active_score,
 )
 from service.worker.holdout import HoldoutWindow, evaluate, json_metrics
-from service.worker.jobs import fail_job, report_progress, requeue_job
-from service.worker.leasing import claim_job, renew_job
+from service.worker.jobs import report_progress
 from service.worker.records import (
     RecordChunk,
     count_records,
@@ -46,84 +42,11 @@ from service.worker.records import (
     read_latest_holdout,
 )
 from service.worker.settings import WorkerSettings
-from service.worker.versions import Fenced, NewVersion, write_retrain_version
+from service.worker.versions import NewVersion, write_retrain_version
 
 log = logging.getLogger("keelson.worker")
 
 STATS_SAMPLE = 10_000
-
-
-class JobRunner:
-    """Runs at most one claimed job at a time on a background thread."""
-
-    def __init__(self, settings: WorkerSettings, reads: sessionmaker[Session],
-                 writes: sessionmaker[Session], worker_id: str,
-                 stop: threading.Event) -> None:
-        self.settings, self.reads, self.writes = settings, reads, writes
-        self.worker_id, self.stop = worker_id, stop
-        self._thread: threading.Thread | None = None
-        self._next_poll = 0.0
-
-    def poll(self) -> None:
-        """Claim a job when none is running (at most once per poll interval)."""
-        if self._thread is not None and self._thread.is_alive():
-            return
-        now = time.monotonic()
-        if now < self._next_poll:
-            return
-        self._next_poll = now + max(self.settings.poll_seconds, 1.0)
-        with self.writes() as session, session.begin():
-            job = claim_job(session, self.worker_id, self.settings.lease_seconds)
-            job_id = None if job is None else job.id
-        if job_id is None:
-            return
-        log.info("job %s: claimed by %s", job_id, self.worker_id)
-        self._thread = threading.Thread(target=self._run, args=(job_id,),
-                                        name=f"job-{job_id}", daemon=True)
-        self._thread.start()
-
-    def close(self) -> None:
-        """Wait for the running job (the stop event cancels it)."""
-        if self._thread is not None:
-            self._thread.join()
-
-    def _run(self, job_id: int) -> None:
-        lost = threading.Event()
-        done = threading.Event()
-        keeper = threading.Thread(target=self._keep_lease, args=(job_id, lost, done),
-                                  daemon=True)
-        keeper.start()
-        try:
-            run_retrain(self.settings, self.reads, self.writes, job_id, self.worker_id,
-                        cancel=lambda: self.stop.is_set() or lost.is_set())
-        except TrainingCancelled:
-            if not lost.is_set():
-                requeue_job(self.writes, job_id, self.worker_id)
-            log.info("job %s: handed back", job_id)
-        except Fenced as exc:
-            log.warning("job %s: %s", job_id, exc)
-        except Exception as exc:
-            log.exception("job %s: failed", job_id)
-            try:
-                fail_job(self.writes, job_id, self.worker_id, f"{type(exc).__name__}: {exc}")
-            except Exception:
-                log.exception("job %s: recording the failure failed", job_id)
-        finally:
-            done.set()
-            keeper.join()
-
-    def _keep_lease(self, job_id: int, lost: threading.Event, done: threading.Event) -> None:
-        while not done.wait(self.settings.heartbeat_seconds):
-            try:
-                with self.writes() as session, session.begin():
-                    held = renew_job(session, self.worker_id, job_id,
-                                     self.settings.lease_seconds)
-            except Exception:
-                log.exception("job %s: lease renewal failed", job_id)
-                continue
-            if not held:
-                lost.set()
-                return
 
 
 def run_retrain(

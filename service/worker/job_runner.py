@@ -1,0 +1,98 @@
+"""Running claimed jobs on a background thread, one at a time per worker.
+
+A job runs beside the online loop so a long retrain does not stall online
+learning. A second small thread renews the job's lease while it runs, so a job
+whose worker died is picked up again once the lease expires (leasing.py); if
+the lease is lost anyway (a stalled worker), the job is cancelled and nothing
+it would write is accepted (versions.py fences on the job's holder).
+"""
+
+from __future__ import annotations
+
+import logging
+import threading
+import time
+
+from sqlalchemy.orm import Session, sessionmaker
+
+from engine import TrainingCancelled
+from service.worker.jobs import fail_job, requeue_job
+from service.worker.leasing import claim_job, renew_job
+from service.worker.retrain import run_retrain
+from service.worker.settings import WorkerSettings
+from service.worker.versions import Fenced
+
+log = logging.getLogger("keelson.worker")
+
+
+class JobRunner:
+    """Runs at most one claimed job at a time on a background thread."""
+
+    def __init__(self, settings: WorkerSettings, reads: sessionmaker[Session],
+                 writes: sessionmaker[Session], worker_id: str,
+                 stop: threading.Event) -> None:
+        self.settings, self.reads, self.writes = settings, reads, writes
+        self.worker_id, self.stop = worker_id, stop
+        self._thread: threading.Thread | None = None
+        self._next_poll = 0.0
+
+    def poll(self) -> None:
+        """Claim a job when none is running (at most once per poll interval)."""
+        if self._thread is not None and self._thread.is_alive():
+            return
+        now = time.monotonic()
+        if now < self._next_poll:
+            return
+        self._next_poll = now + max(self.settings.poll_seconds, 1.0)
+        with self.writes() as session, session.begin():
+            job = claim_job(session, self.worker_id, self.settings.lease_seconds)
+            job_id = None if job is None else job.id
+        if job_id is None:
+            return
+        log.info("job %s: claimed by %s", job_id, self.worker_id)
+        self._thread = threading.Thread(target=self._run, args=(job_id,),
+                                        name=f"job-{job_id}", daemon=True)
+        self._thread.start()
+
+    def close(self) -> None:
+        """Wait for the running job (the stop event cancels it)."""
+        if self._thread is not None:
+            self._thread.join()
+
+    def _run(self, job_id: int) -> None:
+        lost = threading.Event()
+        done = threading.Event()
+        keeper = threading.Thread(target=self._keep_lease, args=(job_id, lost, done),
+                                  daemon=True)
+        keeper.start()
+        try:
+            run_retrain(self.settings, self.reads, self.writes, job_id, self.worker_id,
+                        cancel=lambda: self.stop.is_set() or lost.is_set())
+        except TrainingCancelled:
+            if not lost.is_set():
+                requeue_job(self.writes, job_id, self.worker_id)
+            log.info("job %s: handed back", job_id)
+        except Fenced as exc:
+            log.warning("job %s: %s", job_id, exc)
+        except Exception as exc:
+            log.exception("job %s: failed", job_id)
+            try:
+                fail_job(self.writes, job_id, self.worker_id, f"{type(exc).__name__}: {exc}")
+            except Exception:
+                log.exception("job %s: recording the failure failed", job_id)
+        finally:
+            done.set()
+            keeper.join()
+
+    def _keep_lease(self, job_id: int, lost: threading.Event, done: threading.Event) -> None:
+        while not done.wait(self.settings.heartbeat_seconds):
+            try:
+                with self.writes() as session, session.begin():
+                    held = renew_job(session, self.worker_id, job_id,
+                                     self.settings.lease_seconds)
+            except Exception:
+                log.exception("job %s: lease renewal failed", job_id)
+                continue
+            if not held:
+                lost.set()
+                return
