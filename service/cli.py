@@ -204,7 +204,7 @@ def token_list(as_json: bool) -> None:
 
     with _write_session() as session:
         rows = list_tokens(session)
-    items = [
+    items: list[dict[str, Any]] = [
         {"id": r.id, "name": r.name, "scopes": list(r.scopes),
          "created_at": r.created_at.isoformat() if r.created_at else None,
          "revoked_at": r.revoked_at.isoformat() if r.revoked_at else None}

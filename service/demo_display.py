@@ -70,7 +70,8 @@ _SHOWN_METRICS = {"accuracy": "accuracy", "roc_auc": "ROC AUC", "log_loss": "log
 
 def _metric_summary(metrics: Mapping[str, Any]) -> str:
     """The holdout metrics when the version has them, else whatever is at the top."""
-    chosen = metrics.get("holdout") if isinstance(metrics.get("holdout"), Mapping) else metrics
+    holdout = metrics.get("holdout")
+    chosen: Mapping[str, Any] = holdout if isinstance(holdout, Mapping) else metrics
     shown = [f"{label} {chosen[key]:.3f}" for key, label in _SHOWN_METRICS.items()
              if isinstance(chosen.get(key), int | float)]
     return ", ".join(shown) or "-"

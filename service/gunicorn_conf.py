@@ -52,7 +52,7 @@ _METRICS_DIR = Path(os.environ["PROMETHEUS_MULTIPROC_DIR"])
 # only when the app is built, in each worker, after this).
 from prometheus_client import values as _prometheus_values  # noqa: E402
 
-_prometheus_values.ValueClass = _prometheus_values.get_value_class()
+_prometheus_values.ValueClass = _prometheus_values.get_value_class()  # type: ignore[no-untyped-call]
 
 from service.observability import logging_config  # noqa: E402
 
@@ -105,4 +105,4 @@ def child_exit(server: Any, worker: Any) -> None:
     multiprocess documentation)."""
     from prometheus_client import multiprocess
 
-    multiprocess.mark_process_dead(worker.pid)
+    multiprocess.mark_process_dead(worker.pid)  # type: ignore[no-untyped-call]

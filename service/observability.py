@@ -133,7 +133,7 @@ def render_metrics() -> bytes:
     # A fresh registry per scrape: MultiProcessCollector reads every worker's
     # files at collection time (prometheus_client's documented multiprocess use).
     registry = CollectorRegistry()
-    multiprocess.MultiProcessCollector(registry)
+    multiprocess.MultiProcessCollector(registry)  # type: ignore[no-untyped-call]
     return generate_latest(registry)
 
 

@@ -218,7 +218,7 @@ def _raw_insert(url: str, batch: list[dict[str, Any]]) -> dict[str, Any]:
         started = time.perf_counter()
         for _ in range(RAW_INSERT_BATCHES):
             with engine.begin() as connection:
-                connection.execute(insert(RecordRow.__table__), rows)
+                connection.execute(insert(RecordRow), rows)
         seconds = time.perf_counter() - started
     finally:
         engine.dispose()
