@@ -86,11 +86,13 @@ def test_integrated_gradients_are_complete_at_64_steps(task: str, index: int,
 
 
 @pytest.mark.parametrize("steps", [1, 4, 64])
-def test_integrated_gradients_of_a_piecewise_linear_relu_network_are_exact(steps: int) -> None:
+@pytest.mark.parametrize("hidden", [(9,), (12, 8, 6)])
+def test_integrated_gradients_of_a_piecewise_linear_relu_network_are_exact(
+        steps: int, hidden: tuple[int, ...]) -> None:
     # A relu network with an identity head is linear on each piece of the path
     # between the points where a unit switches; split there, the path integral is
     # exact and so is completeness (Sundararajan et al. 2017), at any step count.
-    encoder, network, rows = setup("regression", hidden=(12, 8, 6), activation="relu")
+    encoder, network, rows = setup("regression", hidden=hidden, activation="relu")
     X = encoder.encode(rows)
     for x in X[:10]:
         result = explain(network, encoder, x, method="integrated_gradients", output_index=0,
