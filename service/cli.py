@@ -85,6 +85,34 @@ def cli() -> None:
 
 # ------------------------------------------------------------------ serving
 
+# Any fixed number: the PostgreSQL advisory lock every upgrading process takes.
+_UPGRADE_LOCK = 0x6B65656C  # "keel"
+
+
+def upgrade_schema(url: str, revision: str = "head") -> None:
+    """Apply migrations; on PostgreSQL one process at a time (several API hosts
+    started together all run `keelson serve`, which upgrades first), so the
+    others wait and then find nothing left to do."""
+    from sqlalchemy import text
+
+    from service.db import is_sqlite, make_engine, upgrade_database
+
+    if is_sqlite(url):  # the upgrade's own write lock already serialises it
+        upgrade_database(url, revision)
+        return
+    engine = make_engine(url)
+    try:
+        with engine.connect() as connection:
+            connection.execute(text("SELECT pg_advisory_lock(:key)"), {"key": _UPGRADE_LOCK})
+            try:
+                upgrade_database(url, revision)
+            finally:
+                connection.execute(text("SELECT pg_advisory_unlock(:key)"),
+                                   {"key": _UPGRADE_LOCK})
+    finally:
+        engine.dispose()
+
+
 
 @cli.command()
 @click.option("--host", default=None, help="Address to listen on [env KEELSON_HOST; 127.0.0.1].")
@@ -101,11 +129,10 @@ def serve(host: str | None, port: int | None, workers: int | None, no_worker: bo
     SIGINT or SIGTERM stops both cleanly: the API finishes its requests and the
     worker writes a version of what it applied since the last one.
     """
-    from service.db import upgrade_database
     from service.serving import run_server
 
     config = _config()
-    upgrade_database(config["KEELSON_DATABASE_URL"])
+    upgrade_schema(config["KEELSON_DATABASE_URL"])
     if not config["KEELSON_ADMIN_TOKEN"]:
         click.echo("keelson: KEELSON_ADMIN_TOKEN is not set; clients need a token from "
                    "`keelson token create --name NAME --scope admin|ingest|predict`.",
@@ -160,9 +187,7 @@ def db() -> None:
 @click.option("--revision", default="head", show_default=True, help="Migration to stop at.")
 def db_upgrade(revision: str) -> None:
     """Apply migrations to KEELSON_DATABASE_URL (creates a SQLite file if needed)."""
-    from service.db import upgrade_database
-
-    upgrade_database(_config()["KEELSON_DATABASE_URL"], revision)
+    upgrade_schema(_config()["KEELSON_DATABASE_URL"], revision)
     click.echo(f"database {_database_url_for_humans()} is at migration {revision}")
 
 

@@ -89,3 +89,37 @@ def test_tokens_are_listed_without_secrets_and_revoked_by_name(database_url: str
     assert status == 1 and "No live token matches 'a'" in err
     status, out, _ = _run(database_url, "token", "list")
     assert "revoked" in out and "active" in out
+
+
+def test_upgrades_started_together_on_postgresql_take_turns(postgres_url: str) -> None:
+    """Several API hosts starting at once all upgrade first; none may fail."""
+    import subprocess
+    import sys
+    import uuid
+
+    from sqlalchemy.engine import make_url
+
+    name = f"keelson_up_{uuid.uuid4().hex[:10]}"
+    admin = create_engine(make_url(postgres_url).set(database="postgres"),
+                          isolation_level="AUTOCOMMIT")
+    with admin.connect() as connection:
+        connection.execute(text(f'CREATE DATABASE "{name}"'))
+    empty = make_url(postgres_url).set(database=name).render_as_string(hide_password=False)
+    try:
+        env = {"PATH": "/usr/bin:/bin", "KEELSON_DATABASE_URL": empty}
+        runs = [subprocess.Popen([sys.executable, "-m", "service.cli", "db", "upgrade"],
+                                 env=env, stdout=subprocess.PIPE, stderr=subprocess.STDOUT,
+                                 text=True) for _ in range(4)]
+        outputs = [run.communicate(timeout=120)[0] for run in runs]
+        assert [run.returncode for run in runs] == [0] * 4, outputs
+        engine = create_engine(empty)
+        try:
+            with engine.connect() as connection:
+                versions = connection.execute(text("SELECT version_num FROM alembic_version"))
+                assert len(versions.all()) == 1
+        finally:
+            engine.dispose()
+    finally:
+        with admin.connect() as connection:
+            connection.execute(text(f'DROP DATABASE IF EXISTS "{name}" WITH (FORCE)'))
+        admin.dispose()
