@@ -59,7 +59,7 @@ class Api(flask_smorest.Api):
         # document them so, or clients validating against the document reject them.
         self.DEFAULT_RESPONSE_CONTENT_TYPE = problems.PROBLEM_MIMETYPE
         try:
-            super()._register_responses()  # type: ignore[no-untyped-call]
+            super()._register_responses()
         finally:
             del self.DEFAULT_RESPONSE_CONTENT_TYPE
 
