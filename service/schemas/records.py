@@ -89,7 +89,12 @@ def _feature_schema(key: str, text: bool) -> Schema:
 def _record_schema(key: str, text: bool) -> Schema:
     spec = json.loads(key)
     declared: dict[str, fields.Field] = {
-        "key": fields.String(validate=validate.Length(min=1, max=MAX_KEY_LENGTH)),
+        "key": fields.String(validate=[
+            validate.Length(min=1, max=MAX_KEY_LENGTH),
+            # PostgreSQL text cannot hold U+0000 (it was a 500 there); refused
+            # on every backend so both store the same keys.
+            validate.Regexp(r"^[^\x00]*$", error="A key cannot contain U+0000 (NUL)."),
+        ]),
         "features": fields.Nested(_feature_schema(key, text), required=True),
         "label": label_field(spec, text=text),
     }
@@ -181,7 +186,8 @@ def _fast_record_loader(key: str) -> Loader:
             out: dict[str, Any] = {"features": features, "label": label}
             if "key" in record:
                 record_key = record["key"]
-                if type(record_key) is not str or not 1 <= len(record_key) <= MAX_KEY_LENGTH:
+                if (type(record_key) is not str or not 1 <= len(record_key) <= MAX_KEY_LENGTH
+                        or "\x00" in record_key):
                     return None
                 out["key"] = record_key
             loaded.append(out)
