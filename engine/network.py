@@ -144,7 +144,16 @@ class Network:
 
     def logits(self, X: Array) -> Array:
         """Output pre-activations (n, n_outputs)."""
-        return self.hidden_and_logits(self.check_inputs(X))[-1]
+        a = self.check_inputs(X)
+        activate = ACTIVATE[self.activation]
+        last = len(self.weights) - 1
+        for i, (w, b) in enumerate(zip(self.weights, self.biases, strict=True)):
+            z = np.dot(a, w)
+            z += b
+            if i < last:
+                activate(z)
+            a = z
+        return a
 
     def forward(self, X: Array) -> Array:
         """Head outputs (n, n_outputs): probabilities (logistic/softmax) or values."""
