@@ -215,6 +215,8 @@ class OnlineLineage:
         except EngineError as exc:
             self._stop(f"cannot create the network from the spec and warm-up records: {exc}")
         self.encoder = f"warmup:{self.model_id}:{int(rows.seqs[-1])}"
+        log.info("model %s: network created, encoding from %s warm-up records",
+                 self.model_id, len(rows))
         self.cursor = self.stored_cursor = 0
         self.last_arrival = time.monotonic()
         return True

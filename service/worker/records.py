@@ -18,7 +18,7 @@ from typing import Any
 import numpy as np
 import orjson
 from numpy.typing import NDArray
-from sqlalchemy import func, select
+from sqlalchemy import Text, cast, func, select
 from sqlalchemy.orm import Session, sessionmaker
 
 from service.store import RecordRow
@@ -35,6 +35,20 @@ def decode_json(value: str | bytes | float) -> Any:
 
 
 _COLUMNS = (RecordRow.seq, RecordRow.features, RecordRow.label, RecordRow.split)
+# PostgreSQL: the json columns as their stored text (exactly what was sent),
+# decoded here with orjson; psycopg's per-value JSON loader costs several times
+# more. (Not on SQLite: there a JSON number may come back as a REAL, whose
+# conversion to text keeps only 15 digits.)
+_TEXT_COLUMNS = (RecordRow.seq, cast(RecordRow.features, Text), cast(RecordRow.label, Text),
+                 RecordRow.split)
+
+
+def record_columns(session: Session) -> tuple[Any, ...]:
+    return _TEXT_COLUMNS if session.get_bind().dialect.name == "postgresql" else _COLUMNS
+
+
+def to_chunk(session: Session, rows: list[Any]) -> RecordChunk:
+    return RecordChunk.from_rows(rows, as_text=session.get_bind().dialect.name == "postgresql")
 
 
 @dataclass
@@ -50,20 +64,19 @@ class RecordChunk:
         return len(self.seqs)
 
     @classmethod
-    def from_rows(cls, rows: list[Any]) -> RecordChunk:
+    def from_rows(cls, rows: list[Any], as_text: bool = False) -> RecordChunk:
+        """From (seq, features, label, split) rows; ``as_text``: the JSON
+        columns are still text to decode."""
+        features = [row[1] for row in rows]
+        labels = [row[2] for row in rows]
+        if as_text:
+            features = [orjson.loads(value) for value in features]
+            labels = [None if value is None else orjson.loads(value) for value in labels]
         return cls(
             seqs=np.fromiter((row[0] for row in rows), dtype=np.int64, count=len(rows)),
-            features=[row[1] for row in rows],
-            labels=[row[2] for row in rows],
+            features=features,
+            labels=labels,
             is_train=np.fromiter((row[3] == "train" for row in rows), dtype=bool, count=len(rows)),
-        )
-
-    def slice(self, start: int, stop: int) -> RecordChunk:
-        return RecordChunk(
-            self.seqs[start:stop],
-            self.features[start:stop],
-            self.labels[start:stop],
-            self.is_train[start:stop],
         )
 
 
@@ -71,17 +84,19 @@ def read_after(
     session: Session, model_id: int, after: int, limit: int, split: str | None = None
 ) -> RecordChunk:
     """Up to ``limit`` records with ``seq > after``, in sequence order."""
-    query = select(*_COLUMNS).where(RecordRow.model_id == model_id, RecordRow.seq > after)
+    query = select(*record_columns(session)).where(
+        RecordRow.model_id == model_id, RecordRow.seq > after
+    )
     if split is not None:
         query = query.where(RecordRow.split == split)
     rows = session.execute(query.order_by(RecordRow.seq).limit(limit)).all()
-    return RecordChunk.from_rows(rows)
+    return to_chunk(session, rows)
 
 
 def read_latest_holdout(session: Session, model_id: int, upto: int, limit: int) -> RecordChunk:
     """The latest ``limit`` holdout records with ``seq <= upto``, in sequence order."""
     rows = session.execute(
-        select(*_COLUMNS)
+        select(*record_columns(session))
         .where(
             RecordRow.model_id == model_id,
             RecordRow.seq <= upto,
@@ -91,7 +106,7 @@ def read_latest_holdout(session: Session, model_id: int, upto: int, limit: int) 
         .limit(limit)
     ).all()
     rows.reverse()
-    return RecordChunk.from_rows(rows)
+    return to_chunk(session, rows)
 
 
 def count_records(
@@ -130,14 +145,14 @@ def iter_chunks(
     caller works on a chunk, and no chunk re-reads earlier rows)."""
     while True:
         with sessions() as session:
-            query = select(*_COLUMNS).where(
+            query = select(*record_columns(session)).where(
                 RecordRow.model_id == model_id, RecordRow.seq > after, RecordRow.seq <= upto
             )
             if split is not None:
                 query = query.where(RecordRow.split == split)
             rows = session.execute(query.order_by(RecordRow.seq).limit(chunk_records)).all()
+            chunk = to_chunk(session, rows)
         if not rows:
             return
-        chunk = RecordChunk.from_rows(rows)
         yield chunk
         after = int(chunk.seqs[-1])

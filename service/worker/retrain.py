@@ -40,6 +40,8 @@ from service.worker.records import (
     iter_chunks,
     last_seq,
     read_latest_holdout,
+    record_columns,
+    to_chunk,
 )
 from service.worker.settings import WorkerSettings
 from service.worker.versions import NewVersion, write_retrain_version
@@ -152,12 +154,12 @@ def _stats_sample(session: Session, model_id: int, cursor: int, n_train: int) ->
         .subquery()
     )
     rows = session.execute(
-        select(RecordRow.seq, RecordRow.features, RecordRow.label, RecordRow.split)
+        select(*record_columns(session))
         .join(numbered, numbered.c.seq == RecordRow.seq)
         .where((numbered.c.n - 1) % every == 0)
         .order_by(RecordRow.seq)
     ).all()
-    return RecordChunk.from_rows(rows)
+    return to_chunk(session, rows)
 
 
 class _ProgressReporter:

@@ -38,8 +38,8 @@ def test_sigterm_finishes_the_step_writes_what_was_applied_and_frees_the_lease(
     # No count boundary and no idle pause can write a version here: only the stop can.
     settings = {"KEELSON_WORKER_CHUNK_RECORDS": "25", "KEELSON_WORKER_IDLE_SECONDS": "60"}
     process = start_worker_process(database_url, "polite", log, **settings)
-    wait_until(lambda: "leased by" in log.read_text(), timeout=30)
-    time.sleep(0.5)  # warm-up done, the stream under way
+    wait_until(lambda: "network created" in log.read_text(), timeout=30)
+    time.sleep(0.3)  # the stream under way: chunks take milliseconds
     assert stop_process(process, signal.SIGTERM) == 0
     stopped = versions(db, model_id)
     state = trainer(db, model_id)
