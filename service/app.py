@@ -35,14 +35,15 @@ SECURITY_HEADERS = {
     "Content-Security-Policy": "default-src 'none'; frame-ancestors 'none'",
     "Cache-Control": "no-store",
 }
-# The largest id or number the database holds (a signed 64-bit integer).
-MAX_PATH_INTEGER = 2**63 - 1
+# The largest id or number a path can name: job ids and version numbers are
+# 32-bit INTEGER columns (PostgreSQL refuses a larger parameter: it was a 500).
+MAX_PATH_INTEGER = 2**31 - 1
 _CONVERTER = re.compile(r"<(?:[^:<>]+:)?([^<>]+)>")
 
 
 class BoundedIntegerConverter(IntegerConverter):
     """``<int:...>`` path segments beyond what the database can hold match no
-    route (404), instead of overflowing the driver (SQLite raises on them)."""
+    route (404), instead of overflowing the database or its driver (500)."""
 
     def __init__(self, map: Any, fixed_digits: int = 0, min: int | None = None,
                  max: int | None = MAX_PATH_INTEGER, signed: bool = False) -> None:
