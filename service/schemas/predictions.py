@@ -65,7 +65,9 @@ def _options_fields(text: bool) -> dict[str, fields.Field[Any]]:
             metadata={"description": f"Attribution method; default {DEFAULT_EXPLAIN}. "
                       "`none`: no explanation (`explanation` is null)."},
         ),
-        "version": integer(minimum=1, metadata={
+        # versions.number is a 32-bit INTEGER column: beyond it PostgreSQL
+        # refuses the parameter (it was a 500).
+        "version": integer(minimum=1, maximum=2**31 - 1, metadata={
             "description": "A version number; default the active version."}),
         "output": fields.Raw(metadata={
             "description": "The class whose probability is explained; default the "
