@@ -213,6 +213,29 @@ def test_a_nul_in_a_key_is_refused_on_both_backends(database_url: str) -> None:
         get_database(app).engine.dispose()
 
 
+def test_numbers_beyond_the_columns_are_4xx_on_both_backends(database_url: str) -> None:
+    """Job ids and version numbers are 32-bit columns; a larger one in a path or
+    the version option was a 500 on PostgreSQL (and beyond 64 bits on SQLite)."""
+    app = build_app(database_url)
+    try:
+        api = ApiClient(app)
+        create_model(api)
+        for big in (2**31, 2**63, 10**30):
+            api.request("GET", f"/v1/jobs/{big}", 404)
+            api.request("GET", f"/v1/models/pump-risk/versions/{big}", 404)
+            api.request("POST", f"/v1/models/pump-risk/versions/{big}/promote", 404)
+            body = api.request("GET", f"/v1/models/pump-risk/predictions?{PUMP_QUERY}"
+                               f"&version={big}", 422)
+            assert "version" in body["errors"]
+            body = api.request("POST", "/v1/models/pump-risk/predictions", 422, json_body={
+                "records": [{"features": {"vibration_rms": 1.0, "pump_family": "screw",
+                                          "has_vfd": True}}], "version": big})
+            assert "version" in body["errors"]
+        api.request("GET", f"/v1/jobs/{2**31 - 1}", 404)  # the largest is a plain miss
+    finally:
+        get_database(app).engine.dispose()
+
+
 # --- planted snapshots ------------------------------------------------------
 
 def planted_snapshot(valid: bytes, marker: Path) -> bytes:
