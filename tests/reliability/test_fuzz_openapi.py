@@ -5,7 +5,7 @@ token: no answer is a server error, and every answer conforms to the document
 Each operation runs on SQLite and on PostgreSQL (each refuses different
 things: SQLite integers beyond 64 bits, PostgreSQL NUL characters and integers
 beyond a column's width). Each gets a fresh database holding one model ("pump-risk") with an
-active version and a version 1, and a share of the generated cases is pointed
+active version 1 and a queued retrain job 1, and a share of the generated cases is pointed
 at that model and given valid feature values, so the fuzzing reaches the
 views' real work and not only their 404s. The number of examples per
 operation is bounded: ``KEELSON_FUZZ_EXAMPLES`` (default 25, the CI run);
@@ -55,6 +55,7 @@ def fuzz_app(database_url: str) -> Iterator[Flask]:
     spec = api.request("GET", f"/v1/models/{MODEL}", 200)
     learner = train_learner({**spec, **spec.get("spec", {})}, pump_rows(64), pump_rule, passes=1)
     add_version(app, MODEL, learner.to_bytes(), activate=True)
+    api.request("POST", f"/v1/models/{MODEL}/retrain", 202, json_body={"warm_start": False})
     yield app
     get_database(app).engine.dispose()
 
@@ -80,6 +81,8 @@ def _aim(case: Any) -> None:
         case.path_parameters["name"] = MODEL
         if "number" in case.path_parameters:
             case.path_parameters["number"] = 1
+    if case.path_parameters and "job_id" in case.path_parameters:
+        case.path_parameters["job_id"] = 1
     post = case.method.upper() == "POST"
     if case.operation.path.endswith("/predictions") and not post:
         case.query = {**(case.query or {}), **VALID_QUERY}
