@@ -285,7 +285,7 @@ def _wait(check: Callable[[], Any], timeout: float) -> float:
     while not check():
         if time.perf_counter() > deadline:
             raise TimeoutError(f"benchmark step did not finish within {timeout} s")
-        time.sleep(0.02)
+        time.sleep(0.05)
     return time.perf_counter()
 
 

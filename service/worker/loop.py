@@ -41,6 +41,7 @@ from service.worker.settings import WorkerSettings
 from service.worker.versions import Fenced, stop_lineage
 
 log = logging.getLogger("keelson.worker")
+CLAIM_BATCH = 4
 # Failures that mean the database is away for now (restarting, unreachable).
 DATABASE_AWAY = (sa_exc.OperationalError, sa_exc.InterfaceError)
 
@@ -109,7 +110,7 @@ class Worker:
                 self._next_heartbeat = now + self.settings.heartbeat_seconds
             if now >= self._next_claim:
                 self._claim()
-                self._next_claim = now + self.settings.poll_seconds
+                self._next_claim = now + self.settings.claim_seconds
             self.jobs.poll()
         except DATABASE_AWAY as exc:
             # Said once, not a traceback per poll; keep trying, keep the state.
@@ -156,7 +157,8 @@ class Worker:
 
     def _claim(self) -> None:
         limit = self.settings.max_models
-        room = 1 if limit is None else min(1, limit - len(self.lineages))
+        # A few at a time, so workers starting together share the models.
+        room = CLAIM_BATCH if limit is None else min(CLAIM_BATCH, limit - len(self.lineages))
         with self.writes() as session, session.begin():
             ensure_trainer_rows(session)
             claimed = claim_trainers(session, self.worker_id, self.settings.lease_seconds,

@@ -24,6 +24,8 @@ class WorkerSettings:
     idle_seconds: float = 3.0
     # Sleep between polls when there is nothing to do.
     poll_seconds: float = 0.25
+    # How often to look for models free to lease (a write transaction each).
+    claim_seconds: float = 1.0
     # Records read (and encoded) per query: one query per chunk, not per record.
     chunk_records: int = 1000
     # Promotion compares versions on at most this many of the latest holdout
@@ -60,6 +62,7 @@ _KEYS = {
     "KEELSON_WORKER_LEASE_SECONDS": "lease_seconds",
     "KEELSON_WORKER_IDLE_SECONDS": "idle_seconds",
     "KEELSON_WORKER_POLL_SECONDS": "poll_seconds",
+    "KEELSON_WORKER_CLAIM_SECONDS": "claim_seconds",
     "KEELSON_WORKER_CHUNK_RECORDS": "chunk_records",
     "KEELSON_WORKER_HOLDOUT_WINDOW": "holdout_window",
     "KEELSON_WORKER_MAX_MODELS": "max_models",
@@ -69,6 +72,7 @@ _PARSE: dict[str, Any] = {
     "lease_seconds": float,
     "idle_seconds": float,
     "poll_seconds": float,
+    "claim_seconds": float,
     "chunk_records": int,
     "holdout_window": int,
     "max_models": int,
