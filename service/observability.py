@@ -24,7 +24,7 @@ import time
 from collections.abc import Mapping
 from typing import Any
 
-from flask import Flask, Response, g, has_request_context, request
+from flask import Flask, Response, has_request_context, request
 from prometheus_client import (
     CONTENT_TYPE_LATEST,
     REGISTRY,
@@ -44,6 +44,8 @@ REQUEST_ID_HEADER = "X-Request-Id"
 # newlines or markup into logs and headers.
 _SANE_REQUEST_ID = re.compile(r"^[A-Za-z0-9._:-]{1,128}$")
 _UNMATCHED_ROUTE = "<unmatched>"
+_STARTED = "keelson.request_started"
+_REQUEST_ID = "keelson.request_id"
 _log = logging.getLogger("keelson.observability")
 
 
@@ -81,15 +83,17 @@ def init_app(app: Flask) -> None:
     histograms: dict[tuple[str, str], Any] = {}
 
     def finish_request(response: Response) -> Response:
-        started = g.get("request_started")
+        current = request._get_current_object()  # type: ignore[attr-defined]
+        environ = current.environ
+        started = environ.get(_STARTED)
         if started is None:  # a hook before ours answered; count it all the same
             started = time.perf_counter()
-        request_id = g.get("request_id")
+        request_id = environ.get(_REQUEST_ID)
         if request_id is None:
-            request_id = g.request_id = _new_request_id()
-        rule = request.url_rule
+            request_id = environ[_REQUEST_ID] = _new_request_id()
+        rule = current.url_rule
         route = rule.rule if rule is not None else _UNMATCHED_ROUTE
-        method, status = request.method, response.status_code
+        method, status = current.method, response.status_code
         try:
             counter = counters.get((method, route, status))
             if counter is None:
@@ -113,9 +117,18 @@ def init_app(app: Flask) -> None:
 
 
 def _start_request() -> None:
-    g.request_started = time.perf_counter()
-    given = request.headers.get(REQUEST_ID_HEADER, "")
-    g.request_id = given if given and _SANE_REQUEST_ID.match(given) else _new_request_id()
+    # Kept in the WSGI environ: one lookup through Flask's request proxy, and
+    # plain dict access after that (this runs on every request).
+    environ = request.environ
+    environ[_STARTED] = time.perf_counter()
+    given = environ.get("HTTP_X_REQUEST_ID", "")
+    environ[_REQUEST_ID] = (given if given and _SANE_REQUEST_ID.match(given)
+                            else _new_request_id())
+
+
+def current_request_id() -> str | None:
+    """The id of the request being answered, or None outside a request."""
+    return request.environ.get(_REQUEST_ID) if has_request_context() else None
 
 
 def _new_request_id() -> str:
@@ -155,7 +168,7 @@ class RequestIdFilter(logging.Filter):
 
     def filter(self, record: logging.LogRecord) -> bool:
         if getattr(record, "request_id", None) is None:
-            record.request_id = g.get("request_id") if has_request_context() else None
+            record.request_id = current_request_id()
         return True
 
 
