@@ -114,8 +114,12 @@ def _measure(url: str, records: int, progress: Progress, retrain: bool) -> dict[
     worker = _start_worker(url, log)
     try:
         leased = _wait(lambda: _trainer(reads, model_id)[1] is not None, 120)
+        cpu_start = _cpu_seconds(worker.pid)
+        load_start = os.getloadavg()[0]
         _wait(lambda: _trainer(reads, model_id)[0] == last, 3600)
         online_seconds = time.perf_counter() - leased
+        online_cpu = _cpu_seconds(worker.pid) - cpu_start
+        load_end = os.getloadavg()[0]
         rss_online = _peak_rss_mib(worker.pid)
 
         job_id = status = job_seconds = job_error = rss_retrain = None
@@ -132,8 +136,8 @@ def _measure(url: str, records: int, progress: Progress, retrain: bool) -> dict[
     progress(f"[{backend}] engine alone: online and batch")
     train = [i for i, split in enumerate(splits) if split == "train"]
     epochs = _job_epochs(reads, job_id) if job_id is not None else 0
-    online_engine, fit_engine = _engine_alone([features[i] for i in train],
-                                              [labels[i] for i in train], epochs)
+    online_engine, online_engine_cpu, fit_engine = _engine_alone(
+        [features[i] for i in train], [labels[i] for i in train], epochs)
     n_train = len(train)
     worker_rate = n_train / online_seconds
     engine.dispose()
@@ -146,6 +150,12 @@ def _measure(url: str, records: int, progress: Progress, retrain: bool) -> dict[
             "engine_learn_records_per_s": round(n_train / online_engine),
             "ratio": round(worker_rate / (n_train / online_engine), 3),
             "target_ratio": 0.4,
+            # CPU seconds of the worker process (the database server's not
+            # counted) against the engine's: less swayed by other load.
+            "worker_cpu_seconds": round(online_cpu, 2),
+            "engine_cpu_seconds": round(online_engine_cpu, 2),
+            "cpu_ratio": round(online_engine_cpu / online_cpu, 3) if online_cpu else None,
+            "load_average_1min": [round(load_start, 2), round(load_end, 2)],
         },
         "retrain": None if not retrain else {
             "job_status": status, "job_error": job_error,
@@ -211,7 +221,7 @@ def _store(writes: Any, records: int) -> tuple[int, int, list[dict[str, float]],
 
 
 def _engine_alone(features: list[dict[str, float]], labels: list[bool],
-                  epochs: int) -> tuple[float, float]:
+                  epochs: int) -> tuple[float, float, float]:
     """Seconds for Learner.learn over every train record, and for Learner.fit
     over them for ``epochs`` epochs (no early stop: the same work as the job)."""
     from engine import Learner, apply_defaults
@@ -221,15 +231,15 @@ def _engine_alone(features: list[dict[str, float]], labels: list[bool],
     warm = spec["training"]["warmup_records"]
     learner = Learner.create(spec, warmup=features[:warm], warmup_labels=labels[:warm])
     X, Y = learner.encode(features), learner.encode_labels(labels)
-    started = time.perf_counter()
+    started, cpu = time.perf_counter(), time.process_time()
     learner.learn(X, Y)
-    online = time.perf_counter() - started
+    online, online_cpu = time.perf_counter() - started, time.process_time() - cpu
     if not epochs:
-        return online, 0.0
+        return online, online_cpu, 0.0
     fresh = Learner.create(spec, warmup=features[:warm], warmup_labels=labels[:warm])
     started = time.perf_counter()
     fresh.fit(X, Y)
-    return online, time.perf_counter() - started
+    return online, online_cpu, time.perf_counter() - started
 
 
 def _start_worker(url: str, log: Path) -> subprocess.Popen[bytes]:
@@ -287,6 +297,12 @@ def _wait(check: Callable[[], Any], timeout: float) -> float:
             raise TimeoutError(f"benchmark step did not finish within {timeout} s")
         time.sleep(0.05)
     return time.perf_counter()
+
+
+def _cpu_seconds(pid: int) -> float:
+    """User + system CPU seconds of a process so far (Linux /proc)."""
+    fields = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()
+    return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
 
 
 def _peak_rss_mib(pid: int) -> float | None:
