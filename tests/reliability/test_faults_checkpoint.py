@@ -19,8 +19,10 @@ from __future__ import annotations
 import random
 import signal
 import sqlite3
+import subprocess
 import time
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pytest
@@ -28,6 +30,7 @@ from sqlalchemy import text
 from sqlalchemy.engine import make_url
 
 from engine import Learner
+from service.extensions import Database
 from tests.worker.helpers import (
     assert_one_chain,
     assert_same_state,
@@ -72,7 +75,7 @@ SQLITE_STALL = [
 ]
 
 
-def stream(n: int, seed: int) -> list[dict]:
+def stream(n: int, seed: int) -> list[dict[str, Any]]:
     rng = np.random.default_rng(seed)
     X = rng.normal(size=(n, len(FIELDS)))
     labels = (X @ rng.normal(size=len(FIELDS)) + 0.3 * rng.normal(size=n)) > 0
@@ -80,7 +83,7 @@ def stream(n: int, seed: int) -> list[dict]:
             for row, y in zip(X, labels, strict=True)]
 
 
-def in_stall(url: str, db) -> bool:  # type: ignore[no-untyped-def]
+def in_stall(url: str, db: Database) -> bool:
     """True while a version insert is held inside the stalling trigger."""
     if make_url(url).get_backend_name() == "postgresql":
         with db.engine.connect() as connection:
@@ -103,14 +106,14 @@ def in_stall(url: str, db) -> bool:  # type: ignore[no-untyped-def]
     return True
 
 
-def set_stall(db, on: bool) -> None:  # type: ignore[no-untyped-def]
+def set_stall(db: Database, on: bool) -> None:
     with db.engine.begin() as connection:
         connection.execute(text("DELETE FROM reliability_stall"))
         if on:
             connection.execute(text("INSERT INTO reliability_stall VALUES (1)"))
 
 
-def end_orphans(url: str, db) -> None:  # type: ignore[no-untyped-def]
+def end_orphans(url: str, db: Database) -> None:
     """A killed client's PostgreSQL backend sleeps on with its locks until the
     server notices; end it, as the server would."""
     if make_url(url).get_backend_name() == "postgresql":
@@ -120,7 +123,7 @@ def end_orphans(url: str, db) -> None:  # type: ignore[no-untyped-def]
                 "WHERE datname = current_database() AND pid <> pg_backend_pid()"))
 
 
-def committed_state(db, model_id: int) -> tuple[int, int | None, int]:  # type: ignore[no-untyped-def]
+def committed_state(db: Database, model_id: int) -> tuple[int, int | None, int]:
     row = trainer(db, model_id)
     return len(versions(db, model_id)), row.head_version_id, row.cursor
 
@@ -141,7 +144,7 @@ def test_a_worker_killed_inside_a_version_write_leaves_no_torn_version(
     log = tmp_path / "worker.log"
     chance = random.Random(20261202)
 
-    def start():  # type: ignore[no-untyped-def]
+    def start() -> subprocess.Popen[bytes]:
         return start_worker_process(database_url, "stall-worker", log,
                                     KEELSON_WORKER_CHUNK_RECORDS="50",
                                     KEELSON_WORKER_LEASE_SECONDS="30")

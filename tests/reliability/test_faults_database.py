@@ -147,7 +147,9 @@ def test_postgres_cut_off_and_restored_under_api_and_worker(
     worker_log = (tmp_path / "worker.log").read_text()
     assert worker_log.count("database unavailable") == 1, worker_log[-3000:]
     assert "database reachable again" in worker_log
-    assert len(worker_log.splitlines()) < 100, worker_log[-3000:]
+    # At most the one step the cut interrupted is reported with its traceback.
+    assert "lease bookkeeping failed" not in worker_log, worker_log[-3000:]
+    assert worker_log.count("step failed") <= 1, worker_log[-3000:]
 
 
 def test_sqlite_concurrent_writers_never_surface_a_lock_as_500(

@@ -3,13 +3,13 @@ token: no answer is a server error, and every answer conforms to the document
 (status documented, content type, body schema, headers).
 
 Each operation runs on SQLite and on PostgreSQL (each refuses different
-things: SQLite integers beyond 64 bits, PostgreSQL NUL characters and integers
-beyond a column's width). Each gets a fresh database holding one model ("pump-risk") with an
-active version 1 and a queued retrain job 1, and a share of the generated cases is pointed
-at that model and given valid feature values, so the fuzzing reaches the
-views' real work and not only their 404s. The number of examples per
-operation is bounded: ``KEELSON_FUZZ_EXAMPLES`` (default 25, the CI run);
-the longer run is ``KEELSON_FUZZ_EXAMPLES=500``.
+things: SQLite integers beyond 64 bits, PostgreSQL NUL characters and
+integers beyond a column's width). Each gets a fresh database holding one
+model ("pump-risk") with an active version 1 and a queued retrain job 1, and
+a share of the generated cases is pointed at them with valid features and
+records, so the fuzzing reaches the views' real work and not only their 404s.
+The number of examples per operation is bounded: ``KEELSON_FUZZ_EXAMPLES``
+(default 25, the CI run); the longer run is ``KEELSON_FUZZ_EXAMPLES=500``.
 """
 
 from __future__ import annotations
