@@ -152,6 +152,32 @@ def test_postgres_cut_off_and_restored_under_api_and_worker(
     assert worker_log.count("step failed") <= 1, worker_log[-3000:]
 
 
+def test_an_unreachable_database_is_a_503_problem_not_a_500() -> None:
+    """Without any server: an API whose database refuses connections (a closed
+    loopback port) answers every database-backed route with 503 problem
+    details and Retry-After (RFC 9110 section 15.6.4), and stays alive."""
+    from tests.product.servers import free_port
+    from tests.service.conftest import build_app
+    from tests.service.helpers import ADMIN_TOKEN
+
+    app = build_app(f"postgresql+psycopg://postgres@127.0.0.1:{free_port()}/nowhere",
+                    TESTING=False)
+    client = app.test_client()
+    admin = {"Authorization": f"Bearer {ADMIN_TOKEN}"}
+    for method, path, headers in [
+        ("GET", "/v1/models", admin), ("GET", "/v1/models/outage", admin),
+        ("POST", "/v1/models", admin), ("GET", "/v1/jobs/1", admin),
+        ("GET", "/v1/models", {"Authorization": "Bearer a-token-to-look-up"}),
+    ]:
+        answer = client.open(path, method=method, headers=headers,
+                             json=SPEC if method == "POST" else None)
+        assert answer.status_code == 503, (method, path, answer.data)
+        assert answer.mimetype == "application/problem+json"
+        assert answer.headers["Retry-After"] == "1"
+    assert client.get("/readyz").status_code == 503
+    assert client.get("/healthz").status_code == 200
+
+
 def test_sqlite_concurrent_writers_never_surface_a_lock_as_500(
     sqlite_url: str, tmp_path: Path
 ) -> None:
