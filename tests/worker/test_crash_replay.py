@@ -73,11 +73,15 @@ def test_a_worker_killed_at_random_moments_reaches_bit_identical_weights(
     chance = random.Random(20261201)
     cursors = []
     for _kill in range(7):
-        mark = log.stat().st_size if log.exists() else 0
+        before = trainer(db, model_id).cursor
         process = start_worker(database_url, log)
         try:
-            wait_until(lambda m=mark: "leased by" in log.read_text()[m:], timeout=30)
-            time.sleep(chance.uniform(0.0, 0.5))
+            # Kill only once this run has written a version of its own, then at a
+            # random moment after it: the kills land mid-stream however slow the
+            # machine is, and anywhere in a step or a checkpoint.
+            wait_until(lambda b=before: trainer(db, model_id).cursor > b
+                       or caught_up(db, model_id), timeout=60)
+            time.sleep(chance.uniform(0.0, 0.3))
         finally:
             process.send_signal(signal.SIGKILL)
             process.wait(10)
