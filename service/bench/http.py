@@ -34,7 +34,6 @@ import tempfile
 import time
 import urllib.error
 import urllib.request
-import uuid
 from collections.abc import Callable, Iterator
 from pathlib import Path
 from typing import Any
@@ -43,6 +42,7 @@ from urllib.parse import urlencode
 import click
 
 from service import demo_data
+from service.bench.scratch import scratch_postgres
 
 Progress = Callable[[str], None]
 WEB_WORKERS = 2
@@ -73,7 +73,7 @@ def run_http_bench(duration: int = 10, connections: int = 16, postgres_url: str 
         result["sqlite"] = _measure(f"sqlite:///{scratch}/bench.db", Path(scratch), wrk,
                                     duration, connections, progress)
         if postgres_url:
-            with _scratch_postgres(postgres_url) as url:
+            with scratch_postgres(postgres_url) as url:
                 result["postgresql"] = _measure(url, Path(scratch), wrk, duration,
                                                 connections, progress)
         else:
@@ -271,22 +271,3 @@ def _wait_ready(url: str, server: subprocess.Popen[bytes], log: Path) -> None:
                 return
         time.sleep(0.1)
     raise click.ClickException(f"gunicorn did not become ready; its log:\n{log.read_text()}")
-
-
-@contextlib.contextmanager
-def _scratch_postgres(base_url: str) -> Iterator[str]:
-    """A new empty database on the server of ``base_url``, dropped afterwards."""
-    from sqlalchemy import create_engine, text
-    from sqlalchemy.engine import make_url
-
-    name = f"keelson_bench_{uuid.uuid4().hex[:10]}"
-    admin = create_engine(make_url(base_url).set(database="postgres"),
-                          isolation_level="AUTOCOMMIT")
-    try:
-        with admin.connect() as connection:
-            connection.execute(text(f'CREATE DATABASE "{name}"'))
-        yield make_url(base_url).set(database=name).render_as_string(hide_password=False)
-    finally:
-        with admin.connect() as connection:
-            connection.execute(text(f'DROP DATABASE IF EXISTS "{name}" WITH (FORCE)'))
-        admin.dispose()

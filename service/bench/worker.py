@@ -23,7 +23,6 @@ noisy linear rule, there only so the network has something to learn.
 
 from __future__ import annotations
 
-import contextlib
 import os
 import platform
 import signal
@@ -32,11 +31,13 @@ import sys
 import tempfile
 import time
 import uuid
-from collections.abc import Callable, Iterator
+from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
 import numpy as np
+
+from service.bench.scratch import scratch_postgres
 
 Progress = Callable[[str], None]
 FIELDS = [f"f{i:02d}" for i in range(20)]
@@ -89,7 +90,7 @@ def run_worker_bench(
     with tempfile.TemporaryDirectory(prefix="keelson-bench-") as scratch:
         result["sqlite"] = _measure(f"sqlite:///{scratch}/bench.db", records, progress, retrain)
     if postgres_url:
-        with _scratch_postgres(postgres_url) as url:
+        with scratch_postgres(postgres_url) as url:
             result["postgresql"] = _measure(url, records, progress, retrain)
     else:
         result["postgresql"] = {"skipped": "no postgres_url (or KEELSON_BENCH_POSTGRES_URL)"}
@@ -314,22 +315,3 @@ def _peak_rss_mib(pid: int) -> float | None:
     except OSError:
         return None
     return None
-
-
-@contextlib.contextmanager
-def _scratch_postgres(base_url: str) -> Iterator[str]:
-    """A new empty database on the server of ``base_url``, dropped afterwards."""
-    from sqlalchemy import create_engine, text
-    from sqlalchemy.engine import make_url
-
-    name = f"keelson_bench_{uuid.uuid4().hex[:10]}"
-    admin = create_engine(make_url(base_url).set(database="postgres"),
-                          isolation_level="AUTOCOMMIT")
-    try:
-        with admin.connect() as connection:
-            connection.execute(text(f'CREATE DATABASE "{name}"'))
-        yield make_url(base_url).set(database=name).render_as_string(hide_password=False)
-    finally:
-        with admin.connect() as connection:
-            connection.execute(text(f'DROP DATABASE IF EXISTS "{name}" WITH (FORCE)'))
-        admin.dispose()
