@@ -150,10 +150,12 @@ def worker(worker_id: str | None) -> None:
     SIGINT or SIGTERM: finish the current step, write a version if records were
     applied since the last one, exit.
     """
+    from service.blas import pin_blas_to_one_thread
     from service.observability import configure_logging
     from service.worker import run_worker
 
     configure_logging()
+    pin_blas_to_one_thread()
     stop = threading.Event()
     with _stop_on_signals(stop.set):
         run_worker(_config(), stop=stop, worker_id=worker_id)

@@ -100,6 +100,13 @@ def on_starting(server: Any) -> None:
             entry.unlink()
 
 
+def post_fork(server: Any, worker: Any) -> None:
+    """Each API process computes on small arrays: one BLAS thread (service/blas.py)."""
+    from service.blas import pin_blas_to_one_thread
+
+    pin_blas_to_one_thread()
+
+
 def child_exit(server: Any, worker: Any) -> None:
     """A worker died or was replaced: drop its live gauges (prometheus_client's
     multiprocess documentation)."""
