@@ -68,6 +68,16 @@ def make_sessionmaker(engine: Engine, *, write: bool = False) -> sessionmaker[Se
     return sessionmaker(engine, expire_on_commit=False)
 
 
+def refresh_planner_statistics(engine: Engine, table: str) -> None:
+    """``ANALYZE table`` on PostgreSQL (after a bulk load); nothing elsewhere.
+
+    SQLite's planner uses the (model_id, seq) index without statistics."""
+    if engine.dialect.name != "postgresql":
+        return
+    with engine.begin() as connection:
+        connection.exec_driver_sql(f'ANALYZE "{table}"')
+
+
 def alembic_config(url: str) -> Any:
     from alembic.config import Config
 

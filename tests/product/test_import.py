@@ -127,3 +127,25 @@ def test_broken_csv_stops_with_the_line_and_keeps_earlier_batches(
     assert status == 1
     assert "broken CSV at line 22" in output
     assert len(_stored_keys(sqlite_url)) == 20
+
+
+def test_a_bulk_import_leaves_postgresql_with_fresh_planner_statistics(
+    postgres_url: str, tmp_path: Path
+) -> None:
+    """After 10,000+ records the records table is analysed at once, so the
+    worker's reads after the cursor are not planned for an empty table."""
+    _create_iris_model(postgres_url)
+    rows = [[f"flower-{k}-{row[0]}", *row[1:]] for k in range(70) for row in _iris_rows()]
+    status, output = _import(postgres_url, "iris", str(_write(tmp_path / "many.csv", rows)))
+    assert status == 0, output
+    engine = create_engine(postgres_url)
+    try:
+        with engine.connect() as connection:
+            analysed = connection.execute(text(
+                "SELECT last_analyze FROM pg_stat_user_tables WHERE relname = 'records'"
+            )).scalar_one()
+            stored = connection.execute(text("SELECT count(*) FROM records")).scalar_one()
+    finally:
+        engine.dispose()
+    assert stored == 70 * 150
+    assert analysed is not None
