@@ -7,6 +7,7 @@ reconnected to instead of surfacing as an error.
 
 from __future__ import annotations
 
+import functools
 from pathlib import Path
 from typing import Any
 
@@ -94,12 +95,19 @@ def upgrade_database(url: str, revision: str = "head") -> None:
     command.upgrade(alembic_config(url), revision)
 
 
-def schema_is_current(engine: Engine) -> bool:
-    """True when the database stands at the newest migration."""
-    from alembic.runtime.migration import MigrationContext
+@functools.cache
+def migration_heads() -> frozenset[str]:
+    """The newest revisions shipped with this code (read from disk once per process)."""
     from alembic.script import ScriptDirectory
 
-    script = ScriptDirectory.from_config(alembic_config(str(engine.url)))
+    return frozenset(ScriptDirectory.from_config(alembic_config("")).get_heads())
+
+
+def schema_is_current(engine: Engine) -> bool:
+    """True when the database stands at the newest migration (one query;
+    raises when the database cannot be reached)."""
+    from alembic.runtime.migration import MigrationContext
+
     with engine.connect() as connection:
         current = set(MigrationContext.configure(connection).get_current_heads())
-    return current == set(script.get_heads())
+    return current == migration_heads()

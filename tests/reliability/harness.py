@@ -16,15 +16,15 @@ import socket
 import subprocess
 import sys
 import threading
-import time
 import urllib.parse
-from collections.abc import Callable, Iterator, Mapping
+from collections.abc import Iterator, Mapping
 from pathlib import Path
 from typing import Any
 
 from sqlalchemy.engine import make_url
 
 from tests.product.servers import ROOT, free_port, wait_until_answering
+from tests.worker.helpers import wait_until as wait_for  # noqa: F401 - the harness's name for it
 
 ADMIN = "reliability-admin-token"
 # Worker settings that make versions appear quickly (idle version after 0.5 s).
@@ -159,17 +159,6 @@ def worker_process(database_url: str, tmp_path: Path, worker_id: str = "reliabil
         yield process
     finally:
         stop_group(process)
-
-
-def wait_for(check: Callable[[], Any], timeout: float = 30.0, every: float = 0.1) -> Any:
-    deadline = time.monotonic() + timeout
-    while True:
-        value = check()
-        if value:
-            return value
-        if time.monotonic() > deadline:
-            raise AssertionError(f"timed out after {timeout} s waiting for {check}")
-        time.sleep(every)
 
 
 class TcpProxy:
