@@ -61,8 +61,10 @@ POSTGRES_STALL = [
     """CREATE TRIGGER reliability_stall AFTER INSERT ON versions
        FOR EACH ROW EXECUTE FUNCTION reliability_stall_insert()""",
 ]
-# SQLite has no sleep; a cross join of 320^3 rows takes seconds. Trigger
-# bodies may hold SELECT statements (SQLite docs, CREATE TRIGGER).
+# SQLite has no sleep; a cross join of 320^4 rows takes minutes (320^3 took
+# under a second on an idle machine: the version committed before the kill).
+# The worker is killed inside it. Trigger bodies may hold SELECT statements
+# (SQLite docs, CREATE TRIGGER).
 SQLITE_STALL = [
     "CREATE TABLE reliability_stall (on_ integer)",
     "CREATE TABLE reliability_rows (n integer)",
@@ -70,7 +72,8 @@ SQLITE_STALL = [
     "INSERT INTO reliability_rows SELECT n FROM c",
     """CREATE TRIGGER reliability_stall AFTER INSERT ON versions
        WHEN EXISTS (SELECT 1 FROM reliability_stall)
-       BEGIN SELECT count(*) FROM reliability_rows a, reliability_rows b, reliability_rows c;
+       BEGIN SELECT count(*) FROM reliability_rows a, reliability_rows b, reliability_rows c,
+                                reliability_rows d;
        END""",
 ]
 
