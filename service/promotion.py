@@ -74,11 +74,19 @@ def _holdout_value(metrics: Mapping[str, Any] | None, name: str) -> float | None
 
 def lock_model(session: Session, model_id: int) -> ModelRow:
     """Load the model row with a row lock (a no-op on SQLite, where a write
-    session already holds the database's write lock)."""
+    session already holds the database's write lock).
+
+    PostgreSQL's ``FOR NO KEY UPDATE``, not ``FOR UPDATE``: inserting a row
+    that references the model (a version, a record, a job) takes ``FOR KEY
+    SHARE`` on it, which ``FOR UPDATE`` blocks. A version writer holding the
+    trainer row and inserting its version would then wait on whoever holds
+    the model, while that one (an online checkpoint promoting its version)
+    waits for the trainer row: a deadlock. Model keys never change, so the
+    weaker lock still serialises every writer of the row."""
     return session.execute(
         select(ModelRow)
         .where(ModelRow.id == model_id)
-        .with_for_update()
+        .with_for_update(key_share=True)
         .execution_options(populate_existing=True)
     ).scalar_one()
 

@@ -21,14 +21,16 @@ def find_model(session: Session, name: str, *, lock: bool = False) -> ModelRow:
 
     A name that could never be valid (``..``, uppercase, too long) is simply
     not found: it never reaches the database. ``lock`` takes the row lock
-    (``SELECT ... FOR UPDATE``; on SQLite the write session's BEGIN IMMEDIATE
-    already holds the database lock).
+    (``SELECT ... FOR NO KEY UPDATE``, see ``service.promotion.lock_model``;
+    on SQLite the write session's BEGIN IMMEDIATE already holds the database
+    lock).
     """
     if not _MODEL_NAME.fullmatch(name):
         raise NotFoundError(f"There is no model named {name!r}.")
     query = select(ModelRow).where(ModelRow.name == name)
     if lock:  # and refresh a row this session may hold from an earlier transaction
-        query = query.with_for_update().execution_options(populate_existing=True)
+        query = query.with_for_update(key_share=True).execution_options(
+            populate_existing=True)
     row = session.scalars(query).first()
     if row is None:
         raise NotFoundError(f"There is no model named {name!r}.")

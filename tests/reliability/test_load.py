@@ -214,7 +214,7 @@ def test_a_mixed_load_loses_nothing_and_answers_no_5xx(database_url: str, tmp_pa
     unexpected = {key: n for key, n in tally.statuses.items()
                   if key[1] not in (200, 201, 202)}
     assert not unexpected, unexpected
-    assert jobs["status"] == "succeeded", jobs
+    assert jobs["status"] == "succeeded", f"retrain failed: {jobs.get('error')}"
     engine = create_engine(database_url)
     with engine.connect() as connection:
         keys = [row[0] for row in connection.execute(select(RecordRow.key))]

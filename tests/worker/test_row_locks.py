@@ -1,0 +1,80 @@
+"""Row locks on PostgreSQL: a version write never waits on the model row lock.
+
+Inserting a row that references the model (a version) takes PostgreSQL's
+``FOR KEY SHARE`` on the model row. Were the model locked ``FOR UPDATE``, a
+retrain writing its version (holding its job and the trainer row) would wait
+for an online checkpoint that holds the model row to promote its version,
+while that checkpoint waits for the trainer row: PostgreSQL breaks the cycle
+by failing one of them ("deadlock detected"), which failed retrain jobs under
+load. The model row is locked ``FOR NO KEY UPDATE`` instead (PostgreSQL
+manual, "Explicit Locking", row-level lock conflict table).
+"""
+
+from __future__ import annotations
+
+import threading
+from typing import Any
+
+import pytest
+
+from service.db import make_engine, make_sessionmaker
+from service.promotion import lock_model
+from service.store import JobRow
+from service.usecases.common import find_model
+from service.worker.leasing import claim_job
+from service.worker.versions import NewVersion, lock_trainer, write_retrain_version
+from tests.worker.factories import create_model
+
+
+@pytest.fixture
+def writes(postgres_url: str):  # type: ignore[no-untyped-def]
+    engine = make_engine(postgres_url)
+    yield make_sessionmaker(engine, write=True)
+    engine.dispose()
+
+
+def queued_retrain(writes: Any) -> tuple[int, int]:
+    with writes() as session, session.begin():
+        model_id = create_model(session).id
+        session.add(JobRow(model_id=model_id, kind="retrain", status="queued", params={}))
+    with writes() as session, session.begin():
+        job = claim_job(session, "a", 30)
+        assert job is not None
+        return model_id, job.id
+
+
+@pytest.mark.parametrize("how", ["lock_model", "find_model"])
+def test_a_retrain_version_is_written_while_another_transaction_holds_the_model(
+        writes: Any, how: str) -> None:
+    model_id, job_id = queued_retrain(writes)
+    new = NewVersion(snapshot=b"w", origin="retrain", cursor=0, records_seen=0,
+                     metrics={}, parent_id=None, job_id=job_id)
+    outcome: dict[str, Any] = {}
+
+    def retrain_writes_its_version() -> None:
+        try:
+            outcome["version"] = write_retrain_version(writes, job_id, "a", new, None).number
+        except Exception as exc:  # reported by the assertion below
+            outcome["error"] = exc
+
+    writer = threading.Thread(target=retrain_writes_its_version)
+    holder = writes()
+    holder.begin()
+    try:
+        # What an online checkpoint that will promote its version does first.
+        if how == "lock_model":
+            lock_model(holder, model_id)
+        else:
+            find_model(holder, "pump-risk", lock=True)
+        writer.start()
+        writer.join(10)
+        assert not writer.is_alive(), "the version insert waited on the model row lock"
+        assert outcome == {"version": 1}
+        lock_trainer(holder, model_id)  # the checkpoint goes on: no deadlock
+        holder.commit()
+    finally:
+        if holder.in_transaction():
+            holder.rollback()
+        holder.close()
+        if writer.is_alive() or writer.ident is not None:
+            writer.join()
