@@ -25,6 +25,7 @@ value by at most half the share of positive-negative pairs that fall in one bin.
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 from typing import Any
 
 import numpy as np
@@ -33,6 +34,7 @@ from numpy.typing import NDArray
 from .errors import InvalidInputError, SnapshotError
 
 EPS = float(np.finfo(np.float64).eps)
+_ONE_MINUS_EPS = 1.0 - EPS
 AUC_BINS = 4096
 _AUC_LOGIT_RANGE = 16.0
 _STATE_VERSION = 1
@@ -145,29 +147,55 @@ class Prequential:
 
     def update(self, y: Any, scores_row: NDArray[np.float64]) -> None:
         """Fold one record's score (taken before training on it) into the sums."""
-        self.n += 1
         if self.task == "regression":
-            value = float(y)
-            residual = value - float(scores_row[0])
-            self._abs_sum += abs(residual)
-            self._sq_sum += residual * residual
-            delta = value - self._y_mean
-            self._y_mean += delta / self.n
-            self._y_m2 += delta * (value - self._y_mean)
-            return
-        label = int(y)
-        if not 0 <= label < self.n_classes:
-            self.n -= 1
-            raise InvalidInputError(f"class index {label} is outside the classes", field="label")
-        if self.task == "binary":
-            p = float(scores_row[0])
-            predicted = 1 if p > 0.5 else 0
-            self._log_loss_sum -= math.log(_clip(p if label == 1 else 1.0 - p))
-            self._histogram[label][self._bin(p)] += 1
+            self._update_value(y, float(scores_row[0]))
+        elif self.task == "binary":
+            self._update_binary(y, float(scores_row[0]))
         else:
+            label = self._label(y)
+            self.n += 1
             predicted = int(scores_row.argmax())
             self._log_loss_sum -= math.log(_clip(float(scores_row[label])))
-        self._confusion[label][predicted] += 1
+            self._confusion[label][predicted] += 1
+
+    def scalar_update(self) -> Callable[[Any, float], None]:
+        """`update` for a single-output task taking the score as a float: f(y, score).
+
+        The online trainer's per-record form: no score array is written and read back.
+        """
+        if self.task == "regression":
+            return self._update_value
+        if self.task == "binary":
+            return self._update_binary
+        raise InvalidInputError("a multiclass score is a row, not one number", field="task")
+
+    def _label(self, y: Any) -> int:
+        label = int(y)
+        if not 0 <= label < self.n_classes:
+            raise InvalidInputError(f"class index {label} is outside the classes", field="label")
+        return label
+
+    def _update_value(self, y: Any, score: float) -> None:
+        value = float(y)
+        self.n += 1
+        residual = value - score
+        self._abs_sum += abs(residual)
+        self._sq_sum += residual * residual
+        delta = value - self._y_mean
+        self._y_mean += delta / self.n
+        self._y_m2 += delta * (value - self._y_mean)
+
+    def _update_binary(self, y: Any, p: float) -> None:
+        label = int(y)
+        if label != 0 and label != 1:
+            raise InvalidInputError(f"class index {label} is outside the classes", field="label")
+        self.n += 1
+        # Clipped as _clip does, written out: this runs once per record.
+        p_true = p if label == 1 else 1.0 - p
+        self._log_loss_sum -= math.log(EPS if p_true < EPS else
+                                       (_ONE_MINUS_EPS if p_true > _ONE_MINUS_EPS else p_true))
+        self._histogram[label][self._bin(p)] += 1
+        self._confusion[label][1 if p > 0.5 else 0] += 1
 
     @staticmethod
     def _bin(p: float) -> int:

@@ -142,6 +142,10 @@ class SGD(Optimizer):
         decay = -self.learning_rate * self.l2
         self._fixed = (np.array([self.momentum, 0.0, decay]),
                        np.array([0.0, decay, self.momentum]))
+        self._constant = self.schedule == "constant"
+        self._fixed_dots = (self._fixed[0].dot, self._fixed[1].dot)
+        self._coefficients_dot = self._coefficients.dot
+        self._grad_dot = self.grad.dot
         self._velocity_bound = 0.0  # the velocity starts at zero
         self._weight_bound = math.inf  # measured at the first step
 
@@ -155,40 +159,42 @@ class SGD(Optimizer):
         return live
 
     def step_(self, grad_scale: float = 1.0) -> None:
-        # clip_scale inlined: this runs once per record.
-        g = self.grad
-        raw = float(np.dot(g, g))
+        # clip_scale inlined, and bound `.dot` methods: this runs once per record.
+        raw = float(self._grad_dot(self.grad))
         squared = raw * (grad_scale * grad_scale)
         scale = grad_scale if squared < self._clip_squared else self.clip_scale(grad_scale)
         live = self._live
+        momentum = self.momentum
         # Coefficients follow the rows of the triple in use: (v_a, g, w) or (g, w, v_b).
-        if self.schedule == "constant":
+        if self._constant:
             lr = self.learning_rate
             c = self._fixed[live]
             c[1 - live] = -lr * scale
+            combine = self._fixed_dots[live]
         else:
             lr = self.rate()
             c = self._coefficients
-            c[0], c[1], c[2] = ((self.momentum, -lr * scale, -lr * self.l2) if live == 0
-                                else (-lr * scale, -lr * self.l2, self.momentum))
+            c[0], c[1], c[2] = ((momentum, -lr * scale, -lr * self.l2) if live == 0
+                                else (-lr * scale, -lr * self.l2, momentum))
+            combine = self._coefficients_dot
         new_velocity = self._slots[1 - live]
-        np.dot(c, self._triples[live], new_velocity)
+        combine(self._triples[live], new_velocity)
         update = new_velocity
         if self.nesterov:
             # w + mu v_new - lr g' = w + v_new + mu (v_new - v), as -lr g' = v_new - mu v.
             update = self._step
             np.subtract(new_velocity, self._slots[live], update)
-            np.multiply(update, self.momentum, update)
+            np.multiply(update, momentum, update)
             np.add(update, new_velocity, update)
         # Bounds of the new velocity and of the update, from the bounds of the operands.
         weight_bound = self._weight_bound
         if weight_bound == math.inf:
             weight_bound = float(np.max(np.abs(self.params)))
         # max |g_i| <= ||g|| = sqrt(raw); the gradient's coefficient is -lr * scale.
-        velocity_bound = (self.momentum * self._velocity_bound
+        velocity_bound = (momentum * self._velocity_bound
                           + lr * abs(scale) * math.sqrt(raw) + lr * self.l2 * weight_bound)
         update_bound = velocity_bound if not self.nesterov else \
-            (1.0 + self.momentum) * velocity_bound + self.momentum * self._velocity_bound
+            (1.0 + momentum) * velocity_bound + momentum * self._velocity_bound
         weight_bound += update_bound
         if not (update_bound < self.SAFE_BOUND and weight_bound < self.SAFE_BOUND):
             # |update_i| < 1.3e154 when this is finite, so w + update cannot overflow.

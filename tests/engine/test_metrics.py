@@ -172,3 +172,26 @@ def test_update_allocates_nothing_per_record(task: str) -> None:
                 if stat.traceback[0].filename.endswith("engine/metrics.py"))
     assert grown <= 512, f"update() kept {grown} bytes over 2900 records"
     assert peak - start <= 2048, f"update() held {peak - start} bytes at once"
+
+
+@pytest.mark.parametrize("task", ["binary", "regression"])
+def test_scalar_update_folds_exactly_what_update_folds(task: str) -> None:
+    """The online trainer's float form of update() leaves bit-identical state."""
+    y, scores = DATA[task](500, seed=3)
+    by_row, by_float = Prequential(task, 2), Prequential(task, 2)
+    record = by_float.scalar_update()
+    for label, row in zip(y.tolist(), scores, strict=True):
+        by_row.update(label, row)
+        record(label, float(row[0]))
+    assert by_float.result() == by_row.result()
+    for name, array in by_row.arrays().items():
+        assert np.array_equal(by_float.arrays()[name], array), name
+
+
+def test_scalar_update_refuses_a_label_outside_the_classes_and_counts_nothing() -> None:
+    metrics = Prequential("binary", 2)
+    with pytest.raises(InvalidInputError):
+        metrics.scalar_update()(2, 0.7)
+    assert metrics.n == 0
+    with pytest.raises(InvalidInputError):
+        Prequential("multiclass", 3).scalar_update()
