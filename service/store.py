@@ -9,6 +9,7 @@ class here, then add a numbered revision.
 from __future__ import annotations
 
 import datetime as dt
+import json
 from typing import Any
 
 from sqlalchemy import (
@@ -22,8 +23,10 @@ from sqlalchemy import (
     MetaData,
     String,
     Text,
+    TypeDecorator,
     UniqueConstraint,
 )
+from sqlalchemy.engine import Dialect
 from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column
 
 # Alembic docs/build/naming.rst: every constraint gets a deterministic name, so
@@ -40,6 +43,31 @@ NAMING_CONVENTION = {
 BigId = BigInteger().with_variant(Integer(), "sqlite")
 
 
+class TextJSON(TypeDecorator[Any]):
+    """A JSON value kept as TEXT (used on SQLite for record labels).
+
+    SQLite gives a column declared ``JSON`` NUMERIC affinity (SQLite
+    documentation, "Datatypes In SQLite", 3.1): a bare number, as a regression
+    label is, is converted to a REAL on the way in by SQLite's own
+    text-to-double conversion, which is not always correctly rounded
+    (``4.041736865667259e-301`` came back as ``4.0417368656672585e-301``). TEXT
+    affinity keeps the text the service wrote, so the label read is the label
+    sent, bit for bit."""
+
+    impl = Text
+    cache_ok = True
+
+    def process_bind_param(self, value: Any, dialect: Dialect) -> str | None:
+        return None if value is None else json.dumps(value, allow_nan=False)
+
+    def process_result_value(self, value: Any, dialect: Dialect) -> Any:
+        return None if value is None else json.loads(value)
+
+
+# JSON on PostgreSQL (which keeps numbers exactly), TEXT on SQLite (see TextJSON).
+LabelJSON = JSON().with_variant(TextJSON(), "sqlite")
+
+
 def utcnow() -> dt.datetime:
     return dt.datetime.now(dt.UTC)
 
@@ -52,9 +80,10 @@ class Base(DeclarativeBase):
 class ModelRow(Base):
     """A model: its spec, its record counters and the active version pointer.
 
-    Ingestion locks this row (``FOR UPDATE``) for the length of its transaction,
-    so the records of one model commit in sequence order (invariant 1); the
-    counters are kept here under that same lock instead of counted per request.
+    Ingestion locks this row (``FOR NO KEY UPDATE``) for the length of its
+    transaction, so the records of one model commit in sequence order
+    (invariant 1); the counters are kept here under that same lock instead of
+    counted per request.
     """
 
     __tablename__ = "models"
@@ -105,7 +134,7 @@ class RecordRow(Base):
     model_id: Mapped[int] = mapped_column(ForeignKey("models.id", ondelete="CASCADE"))
     key: Mapped[str | None] = mapped_column(String(200))
     features: Mapped[dict[str, Any]]
-    label: Mapped[Any] = mapped_column(JSON)
+    label: Mapped[Any] = mapped_column(LabelJSON)
     split: Mapped[str] = mapped_column(String(8))  # "train" or "holdout"
     received_at: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True), default=utcnow)
 
