@@ -8,7 +8,7 @@ from collections.abc import Mapping
 from typing import Any
 
 import flask_smorest
-from flask import Flask, Response
+from flask import Flask
 from flask_smorest.spec.plugins import integerconverter2paramschema
 from werkzeug.routing import IntegerConverter
 
@@ -89,14 +89,37 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
         api.register_blueprint(blueprint)
     problems.init_app(app)
     app.extensions["keelson.openapi"] = _openapi_document(app, api)
-    app.after_request(_security_headers)
+    app.wsgi_app = SecurityHeaders(app.wsgi_app)  # type: ignore[method-assign]
     return app
 
 
-def _security_headers(response: Response) -> Response:
-    for name, value in SECURITY_HEADERS.items():
-        response.headers.setdefault(name, value)
-    return response
+class SecurityHeaders:
+    """WSGI middleware: every answer carries ``SECURITY_HEADERS``, unless the
+    app gave one of them a value of its own.
+
+    Added to the plain list given to ``start_response``, in front of Flask:
+    werkzeug's header object lower-cases and scans its list on each
+    ``setdefault``, five times per request; this is one pass. Answers made
+    outside Flask's hooks are covered too.
+    """
+
+    _HEADERS = [(name, value) for name, value in SECURITY_HEADERS.items()]
+    _LOWERED = frozenset(name.lower() for name in SECURITY_HEADERS)
+
+    def __init__(self, app: Any) -> None:
+        self.app = app
+
+    def __call__(self, environ: dict[str, Any], start_response: Any) -> Any:
+        def start_secured(status: str, headers: list[tuple[str, str]],
+                          exc_info: Any = None) -> Any:
+            given = {name.lower() for name, _ in headers} & self._LOWERED
+            if given:
+                headers.extend(h for h in self._HEADERS if h[0].lower() not in given)
+            else:
+                headers.extend(self._HEADERS)
+            return start_response(status, headers, exc_info)
+
+        return self.app(environ, start_secured)
 
 
 def _openapi_document(app: Flask, api: Api) -> Any:
