@@ -11,14 +11,14 @@ chunk read after the cursor can never be missing one that commits later.
 
 from __future__ import annotations
 
-from collections.abc import Iterator
+from collections.abc import Iterator, Sequence
 from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 import orjson
 from numpy.typing import NDArray
-from sqlalchemy import Text, cast, func, select
+from sqlalchemy import Text, cast, func, select, type_coerce
 from sqlalchemy.orm import Session, sessionmaker
 
 from service.store import RecordRow
@@ -34,21 +34,43 @@ def decode_json(value: str | bytes | float) -> Any:
     return orjson.loads(value)
 
 
-_COLUMNS = (RecordRow.seq, RecordRow.features, RecordRow.label, RecordRow.split)
-# PostgreSQL: the json columns as their stored text (exactly what was sent),
-# decoded here with orjson; psycopg's per-value JSON loader costs several times
-# more. (Not on SQLite: there a JSON number may come back as a REAL, whose
-# conversion to text keeps only 15 digits.)
-_TEXT_COLUMNS = (RecordRow.seq, cast(RecordRow.features, Text), cast(RecordRow.label, Text),
-                 RecordRow.split)
+def decode_column(values: Sequence[Any]) -> list[Any]:
+    """A column of stored JSON texts -> their values, in one orjson call.
+
+    Each text is one JSON document the service wrote, so joined with commas
+    inside brackets they are one array of exactly as many values: one parse
+    instead of one call per record (measured about twice as fast on 20-field
+    records). Anything else (a bare number SQLite converted, an SQL NULL, a
+    count that does not match) takes the per-value path, which decodes or
+    fails exactly as before."""
+    try:
+        decoded = orjson.loads("[" + ",".join(values) + "]")
+    except (TypeError, orjson.JSONDecodeError):
+        decoded = None
+    if isinstance(decoded, list) and len(decoded) == len(values):
+        return decoded
+    return [None if value is None else decode_json(value) for value in values]
+
+
+def _json_text(column: Any, dialect: str) -> Any:
+    """A JSON column as its stored text, decoded by :func:`decode_column` (not
+    by SQLAlchemy's per-value result processor, several times dearer).
+    PostgreSQL: cast to text (psycopg's per-value JSON loader is dearer still).
+    SQLite: read as it is stored, without a CAST: a JSON number may have been
+    converted to a REAL there, whose conversion to text keeps only 15 digits."""
+    return cast(column, Text) if dialect == "postgresql" else type_coerce(column, Text)
 
 
 def record_columns(session: Session) -> tuple[Any, ...]:
-    return _TEXT_COLUMNS if session.get_bind().dialect.name == "postgresql" else _COLUMNS
+    dialect = session.get_bind().dialect.name
+    return (RecordRow.seq, _json_text(RecordRow.features, dialect),
+            _json_text(RecordRow.label, dialect), RecordRow.split)
 
 
-def to_chunk(session: Session, rows: list[Any]) -> RecordChunk:
-    return RecordChunk.from_rows(rows, as_text=session.get_bind().dialect.name == "postgresql")
+def fetch_chunk(session: Session, query: Any) -> RecordChunk:
+    """Run a select of :func:`record_columns` on the session's connection
+    (Core rows: no ORM loading per row) and decode it column by column."""
+    return RecordChunk.from_rows(session.connection().execute(query).all())
 
 
 @dataclass
@@ -64,19 +86,17 @@ class RecordChunk:
         return len(self.seqs)
 
     @classmethod
-    def from_rows(cls, rows: list[Any], as_text: bool = False) -> RecordChunk:
-        """From (seq, features, label, split) rows; ``as_text``: the JSON
-        columns are still text to decode."""
-        features = [row[1] for row in rows]
-        labels = [row[2] for row in rows]
-        if as_text:
-            features = [orjson.loads(value) for value in features]
-            labels = [None if value is None else orjson.loads(value) for value in labels]
+    def from_rows(cls, rows: Sequence[Any]) -> RecordChunk:
+        """From (seq, features text, label text, split) rows."""
+        if not rows:
+            return cls(seqs=np.empty(0, dtype=np.int64), features=[], labels=[],
+                       is_train=np.empty(0, dtype=bool))
+        seqs, features, labels, splits = zip(*rows, strict=True)
         return cls(
-            seqs=np.fromiter((row[0] for row in rows), dtype=np.int64, count=len(rows)),
-            features=features,
-            labels=labels,
-            is_train=np.fromiter((row[3] == "train" for row in rows), dtype=bool, count=len(rows)),
+            seqs=np.array(seqs, dtype=np.int64),
+            features=decode_column(features),
+            labels=decode_column(labels),
+            is_train=np.fromiter(map("train".__eq__, splits), dtype=bool, count=len(splits)),
         )
 
 
@@ -89,13 +109,12 @@ def read_after(
     )
     if split is not None:
         query = query.where(RecordRow.split == split)
-    rows = session.execute(query.order_by(RecordRow.seq).limit(limit)).all()
-    return to_chunk(session, rows)
+    return fetch_chunk(session, query.order_by(RecordRow.seq).limit(limit))
 
 
 def read_latest_holdout(session: Session, model_id: int, upto: int, limit: int) -> RecordChunk:
     """The latest ``limit`` holdout records with ``seq <= upto``, in sequence order."""
-    rows = session.execute(
+    rows = session.connection().execute(
         select(*record_columns(session))
         .where(
             RecordRow.model_id == model_id,
@@ -106,7 +125,7 @@ def read_latest_holdout(session: Session, model_id: int, upto: int, limit: int) 
         .limit(limit)
     ).all()
     rows.reverse()
-    return to_chunk(session, rows)
+    return RecordChunk.from_rows(rows)
 
 
 def count_records(
@@ -150,9 +169,8 @@ def iter_chunks(
             )
             if split is not None:
                 query = query.where(RecordRow.split == split)
-            rows = session.execute(query.order_by(RecordRow.seq).limit(chunk_records)).all()
-            chunk = to_chunk(session, rows)
-        if not rows:
+            chunk = fetch_chunk(session, query.order_by(RecordRow.seq).limit(chunk_records))
+        if not len(chunk):
             return
         yield chunk
         after = int(chunk.seqs[-1])

@@ -37,11 +37,11 @@ from service.worker.jobs import report_progress
 from service.worker.records import (
     RecordChunk,
     count_records,
+    fetch_chunk,
     iter_chunks,
     last_seq,
     read_latest_holdout,
     record_columns,
-    to_chunk,
 )
 from service.worker.settings import WorkerSettings
 from service.worker.versions import NewVersion, write_retrain_version
@@ -153,13 +153,13 @@ def _stats_sample(session: Session, model_id: int, cursor: int, n_train: int) ->
                RecordRow.split == "train")
         .subquery()
     )
-    rows = session.execute(
+    return fetch_chunk(
+        session,
         select(*record_columns(session))
         .join(numbered, numbered.c.seq == RecordRow.seq)
         .where((numbered.c.n - 1) % every == 0)
-        .order_by(RecordRow.seq)
-    ).all()
-    return to_chunk(session, rows)
+        .order_by(RecordRow.seq),
+    )
 
 
 class _ProgressReporter:
