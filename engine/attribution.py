@@ -28,6 +28,7 @@ from __future__ import annotations
 
 import functools
 import math
+from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import Any
 
@@ -125,6 +126,12 @@ def _row(name: str, values: Any, width: int) -> NDArray[np.float64]:
     return row
 
 
+def _copy_raw(raw: Mapping[str, Any]) -> dict[str, Any]:
+    """A copy of a raw baseline, a categorical field's {level: share} copied too."""
+    return {name: dict(value) if isinstance(value, dict) else value
+            for name, value in raw.items()}
+
+
 def _check_count(name: str, value: int, largest: int) -> None:
     if isinstance(value, bool) or not isinstance(value, int) or not 1 <= value <= largest:
         raise InvalidInputError(f"{name} must be an integer from 1 to {largest}", field=name)
@@ -142,11 +149,14 @@ def explain(
     samples: int = 32,
     noise: float = 0.15,
     seed: int = 0,
+    raw_baseline: Mapping[str, Any] | None = None,
 ) -> Explanation:
     """Explain the network's output at one encoded row x (n_inputs,) relative to
     an encoded baseline row (n_inputs,). `output_index` is a class index, or None
     for the class predicted at x (found in the same forward pass); 0 or None for
-    regression."""
+    regression. `raw_baseline`, if given, is `encoder.raw_baseline(baseline)`
+    already worked out (a caller that explains against one baseline many times
+    keeps it); the explanation gets its own copy."""
     if method not in METHODS:
         raise InvalidInputError(f"method must be one of {METHODS}, got {method!r}",
                                 field="explain")
@@ -227,7 +237,8 @@ def explain(
         method=method,
         output=label,
         attributions=dict(zip(encoder.fields, columns.tolist(), strict=True)),
-        baseline=encoder.raw_baseline(baseline),
+        baseline=encoder.raw_baseline(baseline) if raw_baseline is None else
+        dict(raw_baseline) if encoder.all_numeric else _copy_raw(raw_baseline),
         value=value,
         baseline_value=baseline_value,
         completeness_gap=gap,

@@ -11,6 +11,7 @@ single-unit head in Python floats.
 
 from __future__ import annotations
 
+import functools
 import math
 
 import numpy as np
@@ -107,45 +108,93 @@ def output_and_input_gradient(
     return unit, value, g
 
 
+@functools.lru_cache(maxsize=64)
+def _column_layout(sizes: tuple[int, ...]) -> tuple[tuple[int, ...], int]:
+    """First row of each layer's block in the column buffer of `gradient_at` (block j
+    holds layer j's outputs, sizes[j] rows, then a row of ones), and the total rows."""
+    starts, row = [], 0
+    for size in sizes[:-1]:
+        starts.append(row)
+        row += size + 1
+    return tuple(starts), row
+
+
+@functools.lru_cache(maxsize=64)
+def _ones(n: int) -> NDArray[np.float64]:
+    """A read-only vector of n ones: `ones - y` costs less than `1.0 - y` (NumPy
+    converts a scalar operand on every call)."""
+    ones = np.ones(n)
+    ones.flags.writeable = False
+    return ones
+
+
 def gradient_at(network: Network, x: NDArray[np.float64], baseline: NDArray[np.float64],
                 unit: int | None) -> tuple[int, float, float, NDArray[np.float64]]:
     """The unit (None: the most probable at x), f(x), f(baseline) and d f / d x
     (n_inputs,) for that head output: the one-record case of
-    `output_and_input_gradient`, trimmed for latency (both rows go forward
-    together, only x comes back; a single-unit head in Python floats)."""
-    activate = ACTIVATE[network.activation]
-    weights, biases = network.weights, network.biases
-    last = len(weights) - 1
-    hidden: list[NDArray[np.float64]] = []
-    a = np.concatenate((x, baseline)).reshape(2, -1)
-    for i in range(last):
-        a = np.dot(a, weights[i])
-        a += biases[i]
-        activate(a)
-        hidden.append(a[0])
+    `output_and_input_gradient`, trimmed for latency.
+
+    x and baseline go forward together as the two columns of one buffer in which
+    every layer's outputs are followed by a row of ones, so `layer.T @ block` gives
+    the next pre-activations with the bias (no separate add), and the slopes of
+    every hidden layer at x come from one pass down the buffer's first column. Only
+    x goes backward; a single-unit head runs in Python floats.
+    """
+    layers, weights, sizes = network.layers, network.weights, network.sizes
+    last = len(layers) - 1
+    n_inputs = sizes[0]
+    starts, rows = _column_layout(sizes)
+    buffer = np.empty((rows, 2))
+    buffer.fill(1.0)  # (np.ones costs several times more at this size)
+    buffer[:n_inputs, 0] = x
+    buffer[:n_inputs, 1] = baseline
+    block = buffer[: n_inputs + 1]
+    activation = network.activation
+    activate = ACTIVATE[activation]
+    tanh = activation == "tanh"
+    # Bound `.dot` methods: np.dot first goes through the array-function dispatch.
+    for i in range(1, last + 1):
+        start = starts[i]
+        core = buffer[start : start + sizes[i]]
+        layers[i - 1].T.dot(block, core)
+        if tanh:
+            np.tanh(core, core)
+        else:
+            activate(core)
+        block = buffer[start : start + sizes[i] + 1]
     if network.output == "softmax":
-        p = np.dot(a, weights[last])
-        p += biases[last]
-        _softmax_(p)
+        p = layers[last].T.dot(block)  # (k, 2): the logits at x and at the baseline
+        p -= p.max(axis=0)  # exp never overflows
+        np.exp(p, p)
+        p /= p.sum(axis=0)
         if unit is None:
-            unit = int(p[0].argmax())
-        value, baseline_value = p[:, unit].tolist()
-        slopes = p[0] * -value  # d p_u / d z_j = p_u (delta_uj - p_j)
+            unit = int(p[:, 0].argmax())
+        value, baseline_value = p[unit].tolist()
+        slopes = p[:, 0] * -value  # d p_u / d z_j = p_u (delta_uj - p_j)
         slopes[unit] += value
-        g = np.dot(weights[last], slopes)
+        g = weights[last].dot(slopes)
     else:
         unit = 0 if unit is None else unit
-        column = weights[last][:, unit]
-        bias = float(biases[last][unit])
-        value, baseline_value = (z + bias for z in np.dot(a, column).tolist())
+        value, baseline_value = layers[last][:, unit].dot(block).tolist()
         slope = 1.0
         if network.output == "logistic":
             value = 0.5 + 0.5 * math.tanh(0.5 * value)
             baseline_value = 0.5 + 0.5 * math.tanh(0.5 * baseline_value)
             slope = value * (1.0 - value)
-        g = column * slope
-    for i in range(last, 0, -1):
-        h = hidden[i - 1]
-        _times_slope_(g, h, network.activation)
-        g = np.dot(weights[i - 1], g)
+        g = weights[last][:, unit] * slope
+    if last:
+        # Slopes f'(z) at x of every hidden layer (the rows of ones give unused values).
+        y = buffer[n_inputs + 1 :, 0]
+        if activation == "tanh":  # 1 - y^2
+            slopes_x = np.multiply(y, y)
+            np.subtract(_ones(y.size), slopes_x, slopes_x)
+        elif activation == "logistic":  # y (1 - y)
+            slopes_x = np.subtract(_ones(y.size), y)
+            slopes_x *= y
+        else:  # relu: y >= 0, so sign(y) is the indicator [y > 0]
+            slopes_x = np.sign(y)
+        for i in range(last, 0, -1):
+            start = starts[i] - n_inputs - 1
+            g *= slopes_x[start : start + sizes[i]]
+            g = weights[i - 1].dot(g)
     return unit, value, baseline_value, g

@@ -42,6 +42,12 @@ class Learner:
         self.input_sum = np.zeros(encoder.n_inputs) if input_sum is None else input_sum
         self.input_count = input_count
         self._mean: Array | None = None  # input_mean, computed when first asked for
+        # input_mean in raw units, for the explanations' default baseline: (the mean
+        # array it was worked out from, the dict); stale once _mean is a new array.
+        self._raw_mean: tuple[Array, dict[str, Any]] | None = None
+        # Class label -> index for explain(output=label), by _exact_key-like
+        # (type, value) keys; only labels that are classes get in, so it stays small.
+        self._output_indices: dict[tuple[type, Any], int] = {}
         self.extra: dict[str, Any] = dict(extra or {})
         self._install(network, make_optimizer(network.params.size, self.spec["training"]))
 
@@ -202,19 +208,38 @@ class Learner:
         the predicted class) or None for regression.
         """
         x = self._row(x_row, "x")
-        base = self.input_mean if baseline is None else self._row(baseline, "baseline")
+        raw_base: dict[str, Any] | None = None
+        if baseline is None:
+            base = self.input_mean
+            if self._raw_mean is None or self._raw_mean[0] is not base:
+                self._raw_mean = (base, self.encoder.raw_baseline(base))
+            raw_base = self._raw_mean[1]
+        else:
+            base = self._row(baseline, "baseline")
         index: int | None
         if self.task == "regression":
             index = 0
         elif output is None:
             index = None  # explain() picks the predicted class from its own forward pass
         else:
-            try:
-                index = int(self.encoder.encode_labels([output])[0])
-            except InvalidInputError as exc:
-                raise InvalidInputError(str(exc), field="output") from None
+            index = self._output_index(output)
         return explain(self.network, self.encoder, x, method=method, output_index=index,
-                       baseline=base, steps=steps, samples=samples, noise=noise, seed=seed)
+                       baseline=base, steps=steps, samples=samples, noise=noise, seed=seed,
+                       raw_baseline=raw_base)
+
+    def _output_index(self, output: Any) -> int:
+        """The class index of a class label; InvalidInputError (field output) if none."""
+        key = (type(output), output)
+        try:
+            return self._output_indices[key]
+        except (KeyError, TypeError):  # not seen yet, or unhashable (never a class)
+            pass
+        try:
+            index = int(self.encoder.encode_labels([output])[0])
+        except InvalidInputError as exc:
+            raise InvalidInputError(str(exc), field="output") from None
+        self._output_indices[key] = index
+        return index
 
     def _row(self, row: Array | Mapping[str, Any], name: str) -> Array:
         """An encoded row; explain() itself checks its shape and finiteness."""

@@ -183,6 +183,43 @@ def test_explain_uses_labels_and_the_input_mean_baseline():
     assert caught.value.field == "output"
 
 
+def test_the_default_baseline_follows_the_records_and_each_explanation_owns_its_copy():
+    """The raw input mean is kept between explanations: it must follow learn() and
+    fit(), and an explanation's baseline dict must be its own."""
+    rows, labels = rows_and_labels("binary", 300)
+    learner = Learner.create(spec(), warmup=rows)
+    X, Y = learner.encode(rows), learner.encode_labels(labels)
+    learner.learn(X[:100], Y[:100])
+    first = learner.explain(X[0], method="gradient", output="failed")
+    assert first.baseline == learner.encoder.raw_baseline(learner.input_mean)
+    first.baseline["flow"] = -1.0
+    first.baseline["family"]["screw"] = -1.0
+    again = learner.explain(X[0], method="gradient", output="failed")
+    assert again.baseline == learner.encoder.raw_baseline(learner.input_mean)
+    learner.learn(X[100:], Y[100:])
+    moved = learner.explain(X[0], method="gradient", output="failed")
+    assert moved.baseline == learner.encoder.raw_baseline(learner.input_mean)
+    assert moved.baseline["flow"] != again.baseline["flow"]
+    learner.fit(X[:50], Y[:50])
+    refit = learner.explain(X[0], method="gradient", output="failed")
+    assert refit.baseline == learner.encoder.raw_baseline(learner.input_mean)
+    assert refit.baseline["flow"] == pytest.approx(np.mean([r["flow"] for r in rows[:50]]))
+
+
+def test_explain_output_labels_are_exact_before_and_after_a_valid_one():
+    rows, labels = rows_and_labels("binary", 50)
+    learner = Learner.create(spec(classes=[False, True]), warmup=rows)
+    for bad in (1, 1.0, "True", ["x"], None.__class__):
+        with pytest.raises(InvalidInputError) as caught:
+            learner.explain(learner.encode(rows[:1])[0], method="gradient", output=bad)
+        assert caught.value.field == "output"
+    x = learner.encode(rows[:1])[0]
+    assert learner.explain(x, method="gradient", output=True).output is True
+    assert learner.explain(x, method="gradient", output=False).output is False
+    with pytest.raises(InvalidInputError):
+        learner.explain(x, method="gradient", output=1)
+
+
 def test_a_fit_that_turns_non_finite_raises_and_leaves_the_learner_unchanged():
     rows, labels = rows_and_labels("regression", 60)
     learner = Learner.create(
