@@ -115,9 +115,13 @@ class Explanation:
                 "completeness_gap": self.completeness_gap}
 
 
+_FLOAT64 = np.dtype(np.float64)
+
+
 def _row(name: str, values: Any, width: int) -> NDArray[np.float64]:
     row: NDArray[np.float64] = values
-    if type(values) is not np.ndarray or values.dtype != np.float64 or values.ndim != 1:
+    # `is` on the native float64 dtype (a singleton): `!= np.float64` converts first.
+    if type(values) is not np.ndarray or values.dtype is not _FLOAT64 or values.ndim != 1:
         row = np.asarray(values, dtype=np.float64).reshape(-1)
     if row.shape != (width,):
         raise InvalidInputError(f"{name} must hold {width} encoded values", field=name)
@@ -169,7 +173,8 @@ def explain(
     task = encoder.task
     if output_index is not None:
         n_choices = 1 if task == "regression" else len(encoder.classes)
-        if isinstance(output_index, bool) or not isinstance(output_index, int | np.integer) \
+        if type(output_index) is not int and (isinstance(output_index, bool) or not
+                                              isinstance(output_index, np.integer)) \
                 or not 0 <= output_index < n_choices:
             raise InvalidInputError(
                 f"output index {output_index!r} is outside 0..{n_choices - 1}", field="output")
@@ -232,7 +237,7 @@ def explain(
         label = encoder.label_of(unit)
     gap = None
     if method == "integrated_gradients":
-        gap = abs(float(columns.sum()) - (value - baseline_value))
+        gap = abs(float(np.add.reduce(columns)) - (value - baseline_value))  # = sum()
     return Explanation(
         method=method,
         output=label,

@@ -83,28 +83,33 @@ def output_and_input_gradient(
     kept here because one pass must give both the values and the gradients, and
     because the weighted sum can be taken before the last product.
     """
-    activate = ACTIVATE[network.activation]
+    activation = network.activation
+    activate, tanh = ACTIVATE[activation], activation == "tanh"
     weights, biases = network.weights, network.biases
     last = len(weights) - 1
     hidden: list[NDArray[np.float64]] = []
     a = X
+    # `.dot` methods: np.dot first goes through the array-function dispatch.
     for i in range(last):
-        a = np.dot(a, weights[i])
+        a = a.dot(weights[i])
         a += biases[i]
-        activate(a)
+        if tanh:
+            np.tanh(a, a)  # (tanh_ itself, without its Python call)
+        else:
+            activate(a)
         hidden.append(a)
-    z = np.dot(a, weights[last])
+    z = a.dot(weights[last])
     z += biases[last]
     unit, value, slopes = _head_slopes(network.output, z, unit, m, choose_row)
-    g = np.dot(slopes, weights[last].T)
+    g = slopes.dot(weights[last].T)
     for i in range(last, 0, -1):
         h = hidden[i - 1][:m]
-        _times_slope_(g, h, network.activation)
+        _times_slope_(g, h, activation)
         if i == 1 and row_weights is not None:
-            g = np.dot(row_weights, g)  # sum the rows before, not after, the last product
-        g = np.dot(g, weights[i - 1].T)
+            g = row_weights.dot(g)  # sum the rows before, not after, the last product
+        g = g.dot(weights[i - 1].T)
     if last == 0 and row_weights is not None:
-        g = np.dot(row_weights, g)
+        g = row_weights.dot(g)
     return unit, value, g
 
 
