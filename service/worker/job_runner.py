@@ -13,10 +13,11 @@ import logging
 import threading
 import time
 
+from sqlalchemy.exc import OperationalError
 from sqlalchemy.orm import Session, sessionmaker
 
 from engine import TrainingCancelled
-from service.worker.jobs import fail_job, requeue_job
+from service.worker.jobs import fail_job, requeue_job, retry_job
 from service.worker.leasing import claim_job, renew_job
 from service.worker.retrain import run_retrain
 from service.worker.settings import WorkerSettings
@@ -74,6 +75,15 @@ class JobRunner:
             log.info("job %s: handed back", job_id)
         except Fenced as exc:
             log.warning("job %s: %s", job_id, exc)
+        except OperationalError as exc:
+            # The database failed the attempt, not the job (PostgreSQL's
+            # deadlock detection or a lost connection): try it again.
+            log.warning("job %s: database error, queued again: %s", job_id, exc.orig)
+            try:
+                retry_job(self.writes, job_id, self.worker_id,
+                          f"{type(exc.orig).__name__}: {exc.orig}")
+            except Exception:  # its lease runs out and a worker claims it again
+                log.exception("job %s: queueing it again failed", job_id)
         except Exception as exc:
             log.exception("job %s: failed", job_id)
             try:

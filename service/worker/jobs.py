@@ -8,10 +8,11 @@ from __future__ import annotations
 
 from typing import Any
 
-from sqlalchemy import update
+from sqlalchemy import case, update
 from sqlalchemy.orm import Session, sessionmaker
 
 from service.store import JobRow, utcnow
+from service.worker.leasing import MAX_JOB_ATTEMPTS
 
 
 def _held(job_id: int, worker_id: str) -> Any:
@@ -49,4 +50,19 @@ def requeue_job(sessions: sessionmaker[Session], job_id: int, worker_id: str) ->
             .where(_held(job_id, worker_id))
             .values(status="queued", leased_by=None, lease_expires_at=None,
                     attempts=JobRow.attempts - 1)
+        )
+
+
+def retry_job(sessions: sessionmaker[Session], job_id: int, worker_id: str, error: str) -> None:
+    """A database error (a deadlock, a lost connection) cut this attempt short:
+    queue the job again with the attempt counted and the error shown; the
+    attempt that reaches ``MAX_JOB_ATTEMPTS`` fails the job with it."""
+    last = JobRow.attempts >= MAX_JOB_ATTEMPTS
+    with sessions() as session, session.begin():
+        session.execute(
+            update(JobRow)
+            .where(_held(job_id, worker_id))
+            .values(status=case((last, "failed"), else_="queued"),
+                    finished_at=case((last, utcnow()), else_=None),
+                    error=error, leased_by=None, lease_expires_at=None)
         )

@@ -174,6 +174,7 @@ def write_retrain_version(
         lock_trainer(session, job.model_id)  # serialises version numbering
         version = insert_version(session, job.model_id, new)
         job.status = "succeeded"
+        job.error = None  # an earlier attempt's database error, now overcome
         job.version_id = version.id
         job.finished_at = utcnow()
         job.leased_by = None
