@@ -230,7 +230,20 @@ def _store(writes: Any, records: int) -> tuple[int, int, list[dict[str, float]],
 def _engine_alone(features: list[dict[str, float]], labels: list[bool],
                   epochs: int) -> tuple[float, float, float]:
     """Seconds for Learner.learn over every train record, and for Learner.fit
-    over them for ``epochs`` epochs (no early stop: the same work as the job)."""
+    over them for ``epochs`` epochs (no early stop: the same work as the job).
+
+    BLAS is held to one thread here, as the worker process holds it
+    (service/blas.py): both sides of each ratio run under the same setting.
+    Unpinned, the batch fit took up to twice as long on 2 cores, which made
+    the retrain ratio look better than the worker is."""
+    from threadpoolctl import threadpool_limits
+
+    with threadpool_limits(limits=1, user_api="blas"):
+        return _engine_alone_timed(features, labels, epochs)
+
+
+def _engine_alone_timed(features: list[dict[str, float]], labels: list[bool],
+                        epochs: int) -> tuple[float, float, float]:
     from engine import Learner, apply_defaults
 
     spec = apply_defaults(SPEC)
