@@ -9,7 +9,11 @@ single-output heads run in Python floats. Nothing grows with the records.
 
 A single-output network backpropagates d z / d params (z the output unit's
 pre-activation) and lets the optimizer multiply by the scalar dLoss/dz: that
-folds the loss into one coefficient instead of one pass per layer.
+folds the loss into one coefficient instead of one pass per layer. With SGD the
+weights move between two rows of the optimizer's buffer at every step (one
+matrix product gives the new velocity and weights, see SGD.step_swapping_), so
+the loop keeps a set of views per row and is back in the network's own row when
+a call returns.
 """
 
 from __future__ import annotations
@@ -29,6 +33,10 @@ from engine.network import Network
 from engine.optimizers import Optimizer
 
 Array = NDArray[np.float64]
+# OnlineTrainer._scalar_plan_for: (first layer, forward above it, last layer flat,
+# backward above the first layer, the first layer's backward).
+ScalarPlan = tuple[Array, list[tuple[Any, Array, Array]], Array, list[tuple[Any, ...]],
+                   tuple[Array, Array, Array, Array, Array] | None]
 
 
 def augment(X: Array) -> Array:
@@ -96,39 +104,52 @@ class OnlineTrainer:
                 self._deltas[i], slopes[i], self._deltas[i], self._delta_rows[i],
                 self._act_columns[i - 1] if i > 0 else None, self._grads[i],
                 (network.weights[i], self._deltas[i - 1]) if i > 0 else None))
-        # Single output: dz/d(last hidden) is the output weight column, so the first
-        # delta is that column times the slopes, straight from the weights.
-        self._scalar_plan = list(self._backward_plan)
-        if k == 1 and last > 0:
-            first = self._scalar_plan[0]
-            self._scalar_plan[0] = (network.weights[last].reshape(-1), *first[1:])
         # The single-output loop runs about fifteen small NumPy calls per record, so it
         # takes bound `.dot` methods of the fixed buffers (np.dot goes through the
         # array-function dispatch first, about 0.15 us a call) and subtracts from a
         # ones vector rather than from the scalar 1.0 (a scalar operand is converted
-        # on every call). Forward: the first layer (its input row changes per record),
-        # then (bound dot of the layer below, layer, pre-activation) above it.
-        # (Without hidden layers only the flag is read: the output reads the input row.)
+        # on every call). (Without hidden layers only the flag is read: the output
+        # reads the input row.)
         self._no_hidden = last == 0
-        self._first_layer = network.layers[0]
         self._first_core = cores[0] if last > 0 else self._z
-        self._upper_forward = [(acts[j - 1].dot, network.layers[j], cores[j])
-                               for j in range(1, last)]
         self._last_input = acts[-1] if last > 0 else self._z
         self._ones = np.ones_like(self._hidden)
-        # Backward, the hidden layers above the first (top first), then the first (fed by
-        # the input row, found per record).
-        self._scalar_upper = [(src, sl, de, col.dot, row, gr, down[0].dot, down[1])
-                              for src, sl, de, row, col, gr, down in self._scalar_plan
-                              if col is not None and down is not None]
-        self._scalar_first = None if last == 0 else (
-            self._scalar_plan[-1][0], self._scalar_plan[-1][1], self._scalar_plan[-1][2],
-            self._scalar_plan[-1][3], self._scalar_plan[-1][5])
-        self._last_layer_flat = network.layers[last].reshape(-1)  # (h + 1,) when k == 1
+        self._acts, self._cores, self._slopes = acts, cores, slopes
+        # A plan per row the weights can live in: SGD swaps them between two rows of
+        # its buffer at every step (see SGD.step_swapping_), others keep them in one.
+        weight_rows = optimizer.weight_rows if optimizer.swaps_params else (optimizer.params,)
+        self._scalar_plans = tuple(
+            self._scalar_plan_for(network.layers if row is optimizer.params
+                                  else network._views(row)) for row in weight_rows)
         self._last_grad_flat = self._grads[last].reshape(-1)
         self._binary = network.output == "logistic"
         self._squared_logistic = self._binary and loss == "squared_error"
         self._identity = network.output == "identity"
+
+    def _scalar_plan_for(self, layers: list[Array]) -> ScalarPlan:
+        """The single-output loop's views of one copy of the weights: forward, the first
+        layer (its input row changes per record), (bound dot of the layer below, layer,
+        pre-activation) above it, and the last layer flat; backward, per hidden layer
+        above the first, top first, (source, slopes, delta, bound dot of the column
+        feeding the layer, delta row, gradient block, bound dot of the weights, delta
+        one layer down), then the first's (source, slopes, delta, delta row, gradient
+        block). The delta is source * slopes: the output weight column at the top layer
+        (dz/d(last hidden) with one output), elsewhere the weights times the delta
+        above, already in the delta buffer."""
+        last = self._last
+        acts, cores, slopes, deltas = self._acts, self._cores, self._slopes, self._deltas
+        upper_forward = [(acts[j - 1].dot, layers[j], cores[j]) for j in range(1, last)]
+        upper: list[tuple[Any, ...]] = []
+        first: tuple[Array, Array, Array, Array, Array] | None = None
+        for i in range(last - 1, -1, -1):
+            source = layers[last][:-1].reshape(-1) if i == last - 1 else deltas[i]
+            if i > 0:
+                upper.append((source, slopes[i], deltas[i], self._act_columns[i - 1].dot,
+                              self._delta_rows[i], self._grads[i], layers[i][:-1].dot,
+                              deltas[i - 1]))
+            else:
+                first = (source, slopes[0], deltas[0], self._delta_rows[0], self._grads[0])
+        return layers[0], upper_forward, layers[last].reshape(-1), upper, first
 
     def learn(self, X: Array, y: NDArray[Any], scores: Array,
               metrics: Prequential | None = None,
@@ -176,23 +197,42 @@ class OnlineTrainer:
                     target_center: float, target_scale: float) -> None:
         """The single-output loop, written out in one function: per record it costs
         about fifteen small NumPy calls, so Python call overhead matters."""
+        optimizer = self.optimizer
+        if not optimizer.swaps_params:
+            self._scalar_loop(Xa, columns, targets, raw_targets, flat_scores, metrics,
+                              target_center, target_scale, optimizer.step_, None)
+            return
+        live = optimizer.begin_swapping()
+        try:
+            self._scalar_loop(Xa, columns, targets, raw_targets, flat_scores, metrics,
+                              target_center, target_scale, optimizer.step_swapping_, live)
+        finally:
+            optimizer.end_swapping()
+
+    def _scalar_loop(self, Xa: Array, columns: Array, targets: list[Any],
+                     raw_targets: list[Any], flat_scores: Array, metrics: Prequential | None,
+                     target_center: float, target_scale: float,
+                     step: Callable[[float], Any], live: int | None) -> None:
+        """`live`: None for a plain step_, else the row the weights are in (the
+        index in optimizer.weight_rows), which step_swapping_ moves at every step."""
         multiply, subtract, sign, copyto = np.multiply, np.subtract, np.sign, np.copyto
         exp, isfinite = math.exp, math.isfinite
         activation = self.network.activation
         activate = _ACTIVATE_INTO[activation]
         tanh, logistic = activation == "tanh", activation == "logistic"
-        first_layer, first_core = self._first_layer, self._first_core
-        upper_forward, last_input = self._upper_forward, self._last_input
+        first_core, last_input = self._first_core, self._last_input
         hidden, slopes_all, ones = self._hidden, self._slopes_all, self._ones
-        upper, first = self._scalar_upper, self._scalar_first
-        last_flat, last_grad = self._last_layer_flat, self._last_grad_flat
+        last_grad = self._last_grad_flat
         no_hidden, last_dot = self._no_hidden, last_input.dot
-        step = self.optimizer.step_
+        plans = self._scalar_plans
+        swapping = live is not None
+        row = 0 if live is None else live
         identity, squared_logistic = self._identity, self._squared_logistic
         record = None if metrics is None else metrics.scalar_update()
         i = 0
         try:
             for i in range(Xa.shape[0]):
+                first_layer, upper_forward, last_flat, upper, first = plans[row]
                 x = Xa[i]
                 if no_hidden:  # no hidden layer: the output reads the input row
                     z = float(x.dot(last_flat))
@@ -239,7 +279,10 @@ class OnlineTrainer:
                     source, slopes, delta, delta_row, grad = first
                     multiply(source, slopes, delta)
                     columns[i].dot(delta_row, grad)
-                step(d)
+                if swapping:
+                    row = step(d)
+                else:
+                    step(d)
                 if identity:
                     result = result * target_scale + target_center
                 flat_scores[i] = result

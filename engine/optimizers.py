@@ -35,6 +35,7 @@ class Optimizer:
     rows = 0  # rows of the buffer; subclasses name what each holds
     grad_row = 0
     params_row = 0
+    swaps_params = False  # has begin_swapping / step_swapping_ / end_swapping (SGD)
 
     def __init__(self, n_params: int, training: Mapping[str, Any]) -> None:
         self.learning_rate = float(training["learning_rate"])
@@ -49,6 +50,8 @@ class Optimizer:
         self.buffer = np.zeros((self.rows, n_params))
         self.params: Array = self.buffer[self.params_row]
         self.grad: Array = self.buffer[self.grad_row]
+        # The rows the weights can live in during a run of step_swapping_ (SGD).
+        self.weight_rows: tuple[Array, ...] = (self.params,)
 
     def rate(self) -> float:
         """Learning rate of the coming step."""
@@ -74,6 +77,19 @@ class Optimizer:
     def params_changed(self) -> None:
         """Tell the optimizer `params` were written from outside (no-op unless it keeps
         bounds on them)."""
+
+    def begin_swapping(self) -> int:
+        """Start a run of `step_swapping_` (only where `swaps_params`); returns the
+        index in `weight_rows` of the row that holds the weights."""
+        raise NotImplementedError
+
+    def step_swapping_(self, grad_scale: float = 1.0) -> int:
+        """`step_` inside a run: returns the index of the weights' row after it."""
+        raise NotImplementedError
+
+    def end_swapping(self) -> None:
+        """End a run: the weights are in `params` again."""
+        raise NotImplementedError
 
     def step_(self, grad_scale: float = 1.0) -> None:
         """Apply one step to `params` (mutates; all or nothing) for the loss gradient
@@ -108,11 +124,23 @@ class Optimizer:
 class SGD(Optimizer):
     """v <- mu v - lr (s g + l2 w);  w <- w + v  (Nesterov: w <- w + mu v_new - lr g').
 
-    Buffer rows [v_a, g, w, v_b, step]: the velocity lives in v_a or v_b in turn.
+    Buffer rows [v_a, g, w, v_b, step, w_b]: the velocity lives in v_a or v_b in turn.
     With the rows evenly spaced, the whole new velocity mu v - lr s g - lr l2 w is
     one matrix-vector product of a coefficient triple with rows (v_a, g, w) or, the
     other way round, (g, w, v_b), written into the spare slot: one BLAS call
     instead of five elementwise passes.
+
+    The online trainer steps with `step_swapping_` instead: the new velocity and the
+    new weights, (v', w') = C (v, g, w) for a 2 x 3 coefficient matrix C (w' = w + v',
+    or w + mu v' - lr g' with Nesterov, is one more linear combination of the same
+    rows), come out of one matrix product into the spare rows, and the live rows
+    swap. That reads three vectors and writes two where `step_` reads five and
+    writes two, in one call instead of two (four with Nesterov). The weights then
+    live in w or w_b in turn, so the trainer keeps views of both; `begin_swapping`
+    and `end_swapping` bracket a run of such steps and leave them in w (the row
+    `params` and the network are bound to) between runs. (v_a, g, w) are rows 0, 1, 2
+    and (g, v_b, w_b) rows 1, 3, 5, each evenly spaced, as are the outputs (v_b, w_b)
+    and (v_a, w), so each is one strided matrix for BLAS.
 
     Finiteness without a pass over the step: SGD keeps upper bounds on max |v_i| and
     max |w_i|. |v_new_i| <= mu |v_i| + lr s |g_i| + lr l2 |w_i| with |g_i| <= ||g||
@@ -125,8 +153,9 @@ class SGD(Optimizer):
     SAFE_BOUND = 1e150  # far below the float64 maximum (~1.8e308)
 
     kind = "sgd"
-    rows = 5
+    rows = 6
     grad_row, params_row = 1, 2
+    swaps_params = True
 
     def __init__(self, n_params: int, training: Mapping[str, Any]) -> None:
         super().__init__(n_params, training)
@@ -148,6 +177,21 @@ class SGD(Optimizer):
         self._grad_dot = self.grad.dot
         self._velocity_bound = 0.0  # the velocity starts at zero
         self._weight_bound = math.inf  # measured at the first step
+        # step_swapping_: the weight rows, inputs and outputs by live slot, and the
+        # coefficient matrices (flat views to set entries by index). The weights live
+        # in row w between runs; in a run, in the row of the velocity's slot.
+        self.weight_rows = (b[2], b[5])
+        self._swap_in = (b[0:3], b[1:6:2])  # (v_a, g, w) and (g, v_b, w_b)
+        self._swap_out = (b[3:6:2], b[0:3:2])  # (v_b, w_b) and (v_a, w)
+        self._swap_matrices = (np.zeros((2, 3)), np.zeros((2, 3)))
+        self._swap_flat = (self._swap_matrices[0].reshape(-1),
+                           self._swap_matrices[1].reshape(-1))
+        self._swapping = False
+        # The gradient's column of C: rows of (v_a, g, w) are 0, 1, 2, of (g, v_b, w_b) 1, 0, 2.
+        self._swap_order = ((0, 1, 2), (1, 0, 2))
+        if self._constant:
+            for live in (0, 1):
+                self._fill_swap_matrix(live, self.learning_rate, 0.0)
 
     def params_changed(self) -> None:
         """Forget the weight bound after `params` were written from outside."""
@@ -206,6 +250,73 @@ class SGD(Optimizer):
         self._velocity_bound, self._weight_bound = velocity_bound, weight_bound
         self._live = 1 - live
         self.step_count += 1
+
+    def _fill_swap_matrix(self, live: int, lr: float, scale: float) -> None:
+        """C for the inputs of slot `live`: row 0 gives v', row 1 gives w'."""
+        mu, a, b = self.momentum, -lr * scale, -lr * self.l2
+        if self.nesterov:  # w' = w + mu v' + a g + b w, v' = mu v + a g + b w
+            weight_row = (mu * mu, (1.0 + mu) * a, 1.0 + (1.0 + mu) * b)
+        else:  # w' = w + v'
+            weight_row = (mu, a, 1.0 + b)
+        c = self._swap_flat[live]
+        v_col, g_col, w_col = self._swap_order[live]
+        c[v_col], c[g_col], c[w_col] = mu, a, b
+        c[3 + v_col], c[3 + g_col], c[3 + w_col] = weight_row
+
+    def begin_swapping(self) -> int:
+        """Start a run of `step_swapping_`: the weights move to the live slot's row."""
+        if self._live == 1:
+            np.copyto(self.weight_rows[1], self.params)
+        self._swapping = True
+        return self._live
+
+    def end_swapping(self) -> None:
+        """End the run: the weights are back in `params` (row w)."""
+        if self._swapping and self._live == 1:
+            np.copyto(self.params, self.weight_rows[1])
+        self._swapping = False
+
+    def step_swapping_(self, grad_scale: float = 1.0) -> int:
+        """`step_` between `begin_swapping` and `end_swapping`, by one matrix product
+        into the spare rows (all or nothing: the rows swap only once it is finite).
+        Returns which of `weight_rows` holds the weights now."""
+        raw = float(self._grad_dot(self.grad))
+        squared = raw * (grad_scale * grad_scale)
+        scale = grad_scale if squared < self._clip_squared else self.clip_scale(grad_scale)
+        live = self._live
+        momentum = self.momentum
+        if self._constant:
+            lr = self.learning_rate
+            a = -lr * scale
+            c = self._swap_flat[live]
+            g_col = 1 - live
+            c[g_col] = a
+            c[3 + g_col] = (1.0 + momentum) * a if self.nesterov else a
+        else:
+            lr = self.rate()
+            self._fill_swap_matrix(live, lr, scale)
+        out = self._swap_out[live]
+        np.matmul(self._swap_matrices[live], self._swap_in[live], out=out)
+        # The same bounds as step_: w' = w + update, |update_i| <= update_bound.
+        weight_bound = self._weight_bound
+        if weight_bound == math.inf:
+            weight_bound = float(np.max(np.abs(self.weight_rows[live])))
+        velocity_bound = (momentum * self._velocity_bound
+                          + lr * abs(scale) * math.sqrt(raw) + lr * self.l2 * weight_bound)
+        update_bound = velocity_bound if not self.nesterov else \
+            (1.0 + momentum) * velocity_bound + momentum * self._velocity_bound
+        weight_bound += update_bound
+        if not (update_bound < self.SAFE_BOUND and weight_bound < self.SAFE_BOUND):
+            # Rare: look at every new value (a sum of squares could overflow from
+            # finite values this large), then measure the bounds afresh.
+            if not np.isfinite(out).all():
+                raise NonFiniteError("the step would make a weight non-finite")
+            velocity_bound = float(np.max(np.abs(out[0])))
+            weight_bound = math.inf
+        self._velocity_bound, self._weight_bound = velocity_bound, weight_bound
+        self._live = 1 - live
+        self.step_count += 1
+        return 1 - live
 
     def state_arrays(self) -> dict[str, Array]:
         return {"velocity": self.velocity.copy()}

@@ -92,3 +92,33 @@ def test_xor_is_learnt_online_by_a_small_hidden_layer():
     order = np.random.default_rng(1).integers(0, 4, size=4000)
     trainer.learn(X[order], y[order], np.empty((4000, 1)))
     assert np.array_equal(net.forward(X)[:, 0] > 0.5, y == 1)
+
+
+@pytest.mark.parametrize("nesterov", [False, True])
+@pytest.mark.parametrize("schedule", ["constant", "invscaling"])
+def test_weights_do_not_depend_on_how_the_stream_is_cut_into_calls(nesterov, schedule):
+    """SGD moves the weights between two rows at every step (step_swapping_); calls of
+    odd and even lengths, and a resume from the optimizer state at an odd step
+    count, must still give the weights of one uninterrupted call, bit for bit."""
+    X, y = problem("logistic", 1, 120, seed=6)
+    settings = {**TRAINING_DEFAULTS, "nesterov": nesterov, "lr_schedule": schedule,
+                "learning_rate": 0.05}
+
+    def trainer(net):
+        return OnlineTrainer(net, make_optimizer(net.params.size, settings), "cross_entropy")
+
+    start = Network.create((4, 6, 5, 1), "tanh", "logistic", np.random.default_rng(2))
+    whole = start.copy()
+    trainer(whole).learn(X, y, np.empty((120, 1)))
+    cut = start.copy()
+    pieces = trainer(cut)
+    bounds = [0, 1, 3, 4, 11, 57]
+    for a, b in zip(bounds, bounds[1:], strict=False):
+        pieces.learn(X[a:b], y[a:b], np.empty((b - a, 1)))
+    resumed = Network(cut.sizes, "tanh", "logistic", cut.params)  # step count 57: odd
+    again = trainer(resumed)
+    again.optimizer.load_state(pieces.optimizer.state_arrays(), pieces.optimizer.step_count)
+    again.learn(X[57:], y[57:], np.empty((63, 1)))
+    pieces.learn(X[57:], y[57:], np.empty((63, 1)))
+    assert np.array_equal(cut.params, whole.params)
+    assert np.array_equal(resumed.params, whole.params)

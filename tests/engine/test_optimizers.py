@@ -159,3 +159,84 @@ def test_large_but_finite_weights_still_step_exactly():
     opt.grad[:] = [2.0, 4.0]
     opt.step_()
     assert opt.params.tolist() == [0.0, -1.0]
+
+
+def swapping_steps(opt, grads):
+    """Steps the online trainer's way (the weights move between two rows); returns
+    the weights after each step."""
+    row = opt.begin_swapping()
+    seen = []
+    try:
+        for g in grads:
+            opt.grad[:] = g
+            row = opt.step_swapping_()
+            seen.append(opt.weight_rows[row].copy())
+    finally:
+        opt.end_swapping()
+    return seen
+
+
+@pytest.mark.parametrize("nesterov", [False, True])
+@pytest.mark.parametrize("schedule", ["constant", "invscaling"])
+@pytest.mark.parametrize("clip", [None, 0.5])
+def test_swapping_steps_equal_plain_steps_and_torch(nesterov, schedule, clip):
+    """One matrix product for (v', w') against step_ and against torch.optim.SGD
+    (reference library; equal to rounding: w' is summed in another order)."""
+    rng = np.random.default_rng(4)
+    w0, grads = rng.normal(size=9), rng.normal(size=(7, 9))
+    settings = training(learning_rate=0.1, momentum=0.9, nesterov=nesterov, l2=0.01,
+                        clip_norm=clip, lr_schedule=schedule)
+    plain, swapping = SGD(9, settings), SGD(9, settings)
+    plain.params[:] = swapping.params[:] = w0
+    for g in grads[:3]:  # begin the swapping run at an odd step count as well
+        plain.grad[:] = swapping.grad[:] = g
+        plain.step_()
+        swapping.step_()
+    for start in (3, 4, 6):  # runs of 1, 2 and 1 steps
+        stop = start + (2 if start == 4 else 1)
+        for g in grads[start:stop]:
+            plain.grad[:] = g
+            plain.step_()
+        swapping_steps(swapping, grads[start:stop])
+        np.testing.assert_allclose(swapping.params, plain.params, rtol=1e-13, atol=1e-15)
+        np.testing.assert_allclose(swapping.velocity, plain.velocity, rtol=1e-12, atol=1e-15)
+        assert swapping.step_count == plain.step_count
+    if clip is None and schedule == "constant":
+        tw = torch.tensor(w0, requires_grad=True)
+        topt = torch.optim.SGD([tw], lr=0.1, momentum=0.9, nesterov=nesterov,
+                               weight_decay=0.01)
+        for g in grads:
+            tw.grad = torch.tensor(g)
+            topt.step()
+        np.testing.assert_allclose(swapping.params, tw.detach().numpy(), rtol=1e-12,
+                                   atol=1e-14)
+
+
+@pytest.mark.parametrize("nesterov", [False, True])
+@pytest.mark.parametrize("bad", ["nan", "inf", "overflow"])
+def test_a_non_finite_swapping_step_raises_and_changes_nothing(nesterov, bad):
+    opt = SGD(4, training(learning_rate=1.0, momentum=0.5, l2=2.0, clip_norm=None,
+                          nesterov=nesterov))
+    opt.params[:] = [1.0, 2.0, 3.0, 4.0]
+    swapping_steps(opt, [np.array([0.1, 0.2, 0.3, 0.4])])
+    if bad == "overflow":  # the weight-decay term alone overflows (see above)
+        opt.params[0] = 1.5e308
+        opt.params_changed()
+    state = {k: v.copy() for k, v in opt.state_arrays().items()}
+    params, steps = opt.params.copy(), opt.step_count
+    gradient = {"nan": [0.1, np.nan, 0.3, 0.4], "inf": [0.1, np.inf, 0.3, 0.4],
+                "overflow": [0.1, 0.2, 0.3, 0.4]}[bad]
+    with np.errstate(over="ignore", invalid="ignore"), pytest.raises(NonFiniteError):
+        swapping_steps(opt, [np.array(gradient)])
+    assert np.array_equal(opt.params, params) and opt.step_count == steps
+    for name, value in opt.state_arrays().items():
+        assert np.array_equal(value, state[name])
+    # And the next good step goes on from there as if the bad one never came.
+    reference = SGD(4, training(learning_rate=1.0, momentum=0.5, l2=2.0, clip_norm=None,
+                                nesterov=nesterov))
+    reference.params[:] = params
+    reference.load_state(state, steps)
+    if bad != "overflow":
+        swapping_steps(opt, [np.array([0.3, 0.1, 0.2, 0.0])])
+        swapping_steps(reference, [np.array([0.3, 0.1, 0.2, 0.0])])
+        assert np.array_equal(opt.params, reference.params)
