@@ -11,7 +11,6 @@ single-unit head in Python floats.
 
 from __future__ import annotations
 
-import functools
 import math
 
 import numpy as np
@@ -113,93 +112,118 @@ def output_and_input_gradient(
     return unit, value, g
 
 
-@functools.lru_cache(maxsize=64)
-def _column_layout(sizes: tuple[int, ...]) -> tuple[tuple[int, ...], int]:
-    """First row of each layer's block in the column buffer of `gradient_at` (block j
-    holds layer j's outputs, sizes[j] rows, then a row of ones), and the total rows."""
-    starts, row = [], 0
-    for size in sizes[:-1]:
-        starts.append(row)
-        row += size + 1
-    return tuple(starts), row
+class _ColumnPass:
+    """Buffers and views for `gradient_at` on one network, kept between calls.
 
+    x and baseline go forward as the two columns of one buffer in which every
+    layer's outputs are followed by a row of ones, so `layer.T @ block` gives the
+    next pre-activations with the bias, and the slopes of every hidden layer at x
+    come from one pass down the buffer's first column. The views follow the
+    weights as they change; a workspace serves one call at a time (see
+    `gradient_at`) and is rebuilt if the network's parameters move to new storage.
+    """
 
-@functools.lru_cache(maxsize=64)
-def _ones(n: int) -> NDArray[np.float64]:
-    """A read-only vector of n ones: `ones - y` costs less than `1.0 - y` (NumPy
-    converts a scalar operand on every call)."""
-    ones = np.ones(n)
-    ones.flags.writeable = False
-    return ones
+    __slots__ = ("params", "x", "baseline", "forward", "last_block", "last_t_dot",
+                 "last_column_dot", "hidden_x", "slopes", "ones", "head_weights",
+                 "top", "backward")
+
+    def __init__(self, network: Network) -> None:
+        layers, weights, sizes = network.layers, network.weights, network.sizes
+        last = len(layers) - 1
+        n = sizes[0]
+        starts, row = [], 0
+        for size in sizes[:-1]:
+            starts.append(row)
+            row += size + 1
+        buffer = np.ones((row, 2))
+        self.params = network.params
+        self.x, self.baseline = buffer[:n, 0], buffer[:n, 1]
+        # Per layer: (bound dot of the transposed layer, block it reads, rows it fills).
+        self.forward = [(layers[i - 1].T.dot, buffer[starts[i - 1] : starts[i]],
+                         buffer[starts[i] : starts[i] + sizes[i]]) for i in range(1, last + 1)]
+        self.last_block = buffer[starts[last] :]
+        self.last_t_dot = layers[last].T.dot
+        self.last_column_dot = layers[last][:, 0].dot  # single-unit heads
+        self.hidden_x = buffer[n + 1 :, 0]
+        self.slopes = np.empty(self.hidden_x.size)
+        self.ones = np.ones(self.hidden_x.size)
+        self.head_weights = weights[last]
+        self.top = np.empty(sizes[last])  # d output / d (last hidden outputs)
+        # Per hidden layer, top first: (its slopes at x, bound dot of the weights
+        # below, where the gradient one layer down goes; None: a new array, returned).
+        self.backward = []
+        for i in range(last, 0, -1):
+            offset = starts[i] - n - 1
+            self.backward.append((self.slopes[offset : offset + sizes[i]], weights[i - 1].dot,
+                                  np.empty(sizes[i - 1]) if i > 1 else None))
 
 
 def gradient_at(network: Network, x: NDArray[np.float64], baseline: NDArray[np.float64],
                 unit: int | None) -> tuple[int, float, float, NDArray[np.float64]]:
     """The unit (None: the most probable at x), f(x), f(baseline) and d f / d x
     (n_inputs,) for that head output: the one-record case of
-    `output_and_input_gradient`, trimmed for latency.
+    `output_and_input_gradient`, trimmed for latency (see `_ColumnPass`: both rows go
+    forward together, only x comes back; a single-unit head in Python floats).
 
-    x and baseline go forward together as the two columns of one buffer in which
-    every layer's outputs are followed by a row of ones, so `layer.T @ block` gives
-    the next pre-activations with the bias (no separate add), and the slopes of
-    every hidden layer at x come from one pass down the buffer's first column. Only
-    x goes backward; a single-unit head runs in Python floats.
+    The network keeps a pool of workspaces: a caller pops one (or builds one when
+    the pool is empty) and puts it back when done. list.pop and list.append are
+    atomic, so concurrent callers (API threads) never share one.
     """
-    layers, weights, sizes = network.layers, network.weights, network.sizes
-    last = len(layers) - 1
-    n_inputs = sizes[0]
-    starts, rows = _column_layout(sizes)
-    buffer = np.empty((rows, 2))
-    buffer.fill(1.0)  # (np.ones costs several times more at this size)
-    buffer[:n_inputs, 0] = x
-    buffer[:n_inputs, 1] = baseline
-    block = buffer[: n_inputs + 1]
+    pool = network.workspaces
+    try:
+        work: _ColumnPass = pool.pop()
+        if work.params is not network.params:
+            work = _ColumnPass(network)
+    except IndexError:
+        work = _ColumnPass(network)
+    work.x[...] = x
+    work.baseline[...] = baseline
     activation = network.activation
-    activate = ACTIVATE[activation]
-    tanh = activation == "tanh"
-    # Bound `.dot` methods: np.dot first goes through the array-function dispatch.
-    for i in range(1, last + 1):
-        start = starts[i]
-        core = buffer[start : start + sizes[i]]
-        layers[i - 1].T.dot(block, core)
-        if tanh:
+    if activation == "tanh":
+        for dot, block, core in work.forward:
+            dot(block, core)
             np.tanh(core, core)
-        else:
+    else:
+        activate = ACTIVATE[activation]
+        for dot, block, core in work.forward:
+            dot(block, core)
             activate(core)
-        block = buffer[start : start + sizes[i] + 1]
+    head_weights = work.head_weights
+    hidden = bool(work.backward)
     if network.output == "softmax":
-        p = layers[last].T.dot(block)  # (k, 2): the logits at x and at the baseline
+        p = work.last_t_dot(work.last_block)  # (k, 2): the logits at x and at the baseline
         p -= p.max(axis=0)  # exp never overflows
         np.exp(p, p)
         p /= p.sum(axis=0)
         if unit is None:
             unit = int(p[:, 0].argmax())
         value, baseline_value = p[unit].tolist()
-        slopes = p[:, 0] * -value  # d p_u / d z_j = p_u (delta_uj - p_j)
-        slopes[unit] += value
-        g = weights[last].dot(slopes)
+        head = p[:, 0] * -value  # d p_u / d z_j = p_u (delta_uj - p_j)
+        head[unit] += value
+        g = head_weights.dot(head, work.top) if hidden else head_weights.dot(head)
     else:
         unit = 0 if unit is None else unit
-        value, baseline_value = layers[last][:, unit].dot(block).tolist()
+        value, baseline_value = work.last_column_dot(work.last_block).tolist()
         slope = 1.0
         if network.output == "logistic":
             value = 0.5 + 0.5 * math.tanh(0.5 * value)
             baseline_value = 0.5 + 0.5 * math.tanh(0.5 * baseline_value)
             slope = value * (1.0 - value)
-        g = weights[last][:, unit] * slope
-    if last:
+        column = head_weights[:, unit]
+        g = np.multiply(column, slope, work.top) if hidden else column * slope
+    if hidden:
         # Slopes f'(z) at x of every hidden layer (the rows of ones give unused values).
-        y = buffer[n_inputs + 1 :, 0]
+        y, slopes, ones = work.hidden_x, work.slopes, work.ones
         if activation == "tanh":  # 1 - y^2
-            slopes_x = np.multiply(y, y)
-            np.subtract(_ones(y.size), slopes_x, slopes_x)
+            np.multiply(y, y, slopes)
+            np.subtract(ones, slopes, slopes)
         elif activation == "logistic":  # y (1 - y)
-            slopes_x = np.subtract(_ones(y.size), y)
-            slopes_x *= y
+            np.subtract(ones, y, slopes)
+            np.multiply(slopes, y, slopes)
         else:  # relu: y >= 0, so sign(y) is the indicator [y > 0]
-            slopes_x = np.sign(y)
-        for i in range(last, 0, -1):
-            start = starts[i] - n_inputs - 1
-            g *= slopes_x[start : start + sizes[i]]
-            g = weights[i - 1].dot(g)
+            np.sign(y, slopes)
+        for layer_slopes, dot, below in work.backward:
+            g *= layer_slopes
+            g = dot(g) if below is None else dot(g, below)
+    pool.append(work)
     return unit, value, baseline_value, g

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
+from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
@@ -59,6 +60,9 @@ class Network:
         self.layers = self._views(self.params)
         self.weights = [layer[:-1] for layer in self.layers]
         self.biases = [layer[-1] for layer in self.layers]
+        # Reusable scratch of passes that keep views of the parameters (one-record
+        # explanations, engine.input_gradients); each entry serves one caller at a time.
+        self.workspaces: list[Any] = []
 
     def bind_(self, storage: Array) -> None:
         """Move the parameters into `storage` (1-D float64, right size) and rebuild the views.
@@ -75,6 +79,7 @@ class Network:
         self.layers = self._views(storage)
         self.weights = [layer[:-1] for layer in self.layers]
         self.biases = [layer[-1] for layer in self.layers]
+        self.workspaces = []  # their views are of the old storage
 
     @staticmethod
     def parameter_count(sizes: Sequence[int]) -> int:

@@ -55,3 +55,50 @@ def test_no_unit_picks_the_most_probable_class(hidden: tuple[int, ...]) -> None:
     for task in ("binary", "regression"):
         network, rows = setup(task, hidden, "tanh")
         assert gradient_at(network, rows[0], rows[1], None)[0] == 0
+
+
+def test_kept_workspaces_follow_the_weights_and_serve_concurrent_callers() -> None:
+    """gradient_at keeps buffers and views on the network between calls: they must see
+    weights changed in place, parameters moved to new storage, and never be shared
+    by two threads at once (the API explains from several threads)."""
+    import threading
+
+    network, rows = setup("binary", (8, 5), "tanh")
+    fresh = network.copy()
+    gradient_at(network, rows[0], rows[1], 0)  # a workspace is now kept
+    network.params *= 0.5
+    fresh.params *= 0.5
+    expected = fresh.input_gradient(rows[2], 0)[0]
+    np.testing.assert_allclose(gradient_at(network, rows[2], rows[3], 0)[3], expected,
+                               rtol=1e-11, atol=1e-14)
+    storage = np.zeros_like(network.params)
+    network.bind_(storage)
+    storage *= -1.0
+    fresh.params *= -1.0
+    np.testing.assert_allclose(gradient_at(network, rows[2], rows[3], 0)[3],
+                               fresh.input_gradient(rows[2], 0)[0], rtol=1e-11, atol=1e-14)
+
+    expected_all = [gradient_at(network, rows[r], rows[r - 1], 0) for r in range(1, 9)]
+    failures: list[int] = []
+
+    def work(offset: int) -> None:
+        for k in range(400):
+            r = 1 + (k + offset) % 8
+            unit, value, base_value, gradient = gradient_at(network, rows[r], rows[r - 1], 0)
+            want = expected_all[r - 1]
+            if (value, base_value) != want[1:3] or not np.array_equal(gradient, want[3]):
+                failures.append(r)
+
+    import sys
+
+    interval = sys.getswitchinterval()
+    sys.setswitchinterval(1e-6)  # switch threads often, inside the passes too
+    try:
+        threads = [threading.Thread(target=work, args=(t,)) for t in range(4)]
+        for thread in threads:
+            thread.start()
+        for thread in threads:
+            thread.join()
+    finally:
+        sys.setswitchinterval(interval)
+    assert failures == []
