@@ -81,6 +81,16 @@ class ActiveScore:
         return value * value * n if self.metric == "rmse" else value * n
 
 
+UNREAD: Any = object()  # decide() reads the active version id itself
+
+
+def read_active_id(session: Session, model_id: int) -> int | None:
+    """The model's active version id (None when none is active)."""
+    return session.execute(
+        select(ModelRow.active_version_id).where(ModelRow.id == model_id)
+    ).scalar_one()
+
+
 def decide(
     sessions: sessionmaker[Session],
     model_id: int,
@@ -91,22 +101,29 @@ def decide(
     cursor: int,
     holdout_window: int,
     active: ActiveScore,
+    active_id: Any = UNREAD,
 ) -> Promotion | None:
     """Promotion(over=active id) when the new version should become active,
     None when it stays a candidate. ``active`` is used when it tracks the
-    active version on this window, and set up to do so otherwise."""
+    active version on this window, and set up to do so otherwise.
+
+    ``active_id``: the active version id as the caller last read it (the
+    online loop reads it in the transaction that read the records, instead of
+    one more transaction per version). A stale value is safe: the version
+    write promotes only if the active version is still the one decided
+    against (versions.py), so the new version then stays a candidate."""
     if spec.get("promotion", "auto") != "auto":
         return None
-    with sessions() as session:
-        active_id = session.execute(
-            select(ModelRow.active_version_id).where(ModelRow.id == model_id)
-        ).scalar_one()
-        if active_id is None:
-            active.forget()
-            return Promotion(over=None) if should_promote(spec, new_metrics, None) else None
-        if active.version_id != active_id:
-            _score_from_scratch(session, active, active_id, model_id, window, encoder,
-                                cursor, holdout_window)
+    if active_id is UNREAD or (active_id is not None and active.version_id != active_id):
+        with sessions() as session:
+            if active_id is UNREAD:
+                active_id = read_active_id(session, model_id)
+            if active_id is not None and active.version_id != active_id:
+                _score_from_scratch(session, active, active_id, model_id, window, encoder,
+                                    cursor, holdout_window)
+    if active_id is None:
+        active.forget()
+        return Promotion(over=None) if should_promote(spec, new_metrics, None) else None
     holdout = {active.metric: active.value()}
     if should_promote(spec, new_metrics, {"holdout": holdout}):
         return Promotion(over=active_id)

@@ -30,9 +30,11 @@ from service.store import ModelRow, TrainerRow, VersionRow
 from service.worker.decide import (
     ENCODER_KEY,
     RECORDS_BEFORE_KEY,
+    UNREAD,
     decide,
     encoder_of,
     new_active_score,
+    read_active_id,
 )
 from service.worker.holdout import HoldoutWindow, evaluate, json_metrics
 from service.worker.records import RecordChunk, read_after, read_latest_holdout
@@ -74,6 +76,8 @@ class OnlineLineage:
         self.window = HoldoutWindow(settings.holdout_window)
         self.last_arrival = time.monotonic()
         self._warmup_seen = -1
+        # The active version id read with the current chunk (UNREAD outside one).
+        self._active_id: Any = UNREAD
         with reads() as session:
             self.spec: dict[str, Any] = dict(session.get(ModelRow, model_id).spec)  # type: ignore[union-attr]
             trainer = session.get(TrainerRow, model_id)
@@ -99,13 +103,28 @@ class OnlineLineage:
             return self._warm_up()
         with self.reads() as session:
             chunk = read_after(session, self.model_id, self.cursor, self.settings.chunk_records)
+            if self._reaches_a_version(chunk):
+                # In this transaction rather than one more per version.
+                self._active_id = read_active_id(session, self.model_id)
         if not len(chunk):
             if time.monotonic() - self.last_arrival >= self.settings.idle_seconds:
                 self.flush()
             return False
         self.last_arrival = time.monotonic()
-        self._apply(chunk)
+        try:
+            self._apply(chunk)
+        finally:
+            self._active_id = UNREAD
         return True
+
+    def _reaches_a_version(self, chunk: RecordChunk) -> bool:
+        """Whether applying ``chunk`` will write a count-based version that
+        needs a promotion decision."""
+        assert self.learner is not None
+        if self.spec.get("promotion", "auto") != "auto" or not len(chunk):
+            return False
+        to_boundary = self.checkpoint_every - self.learner.records_seen % self.checkpoint_every
+        return int(np.count_nonzero(chunk.is_train)) >= to_boundary
 
     def flush(self) -> None:
         """Write a version for train records applied since the last one (or,
@@ -180,7 +199,8 @@ class OnlineLineage:
             "holdout_window": self.settings.holdout_window,
         }
         promotion = decide(self.writes, self.model_id, self.spec, metrics, self.window,
-                           self.encoder, self.cursor, self.settings.holdout_window, self.active)
+                           self.encoder, self.cursor, self.settings.holdout_window, self.active,
+                           self._active_id)
         new = NewVersion(snapshot=snapshot, origin="online", cursor=self.cursor,
                          records_seen=self.records_before + learner.records_seen,
                          metrics=metrics,
@@ -190,6 +210,8 @@ class OnlineLineage:
         if version.status == "active":
             # The version's state, frozen: the live learner moves on.
             self.active.start(version.id, Learner.from_bytes(snapshot), metrics["holdout"])
+            if self._active_id is not UNREAD:
+                self._active_id = version.id
         self.head_id = version.id
         self.stored_cursor = self.cursor
         self.pending_train = 0
