@@ -243,7 +243,7 @@ class Learner:
 
     def _row(self, row: Array | Mapping[str, Any], name: str) -> Array:
         """An encoded row; explain() itself checks its shape and finiteness."""
-        if isinstance(row, Mapping):
+        if type(row) is not np.ndarray and isinstance(row, Mapping):  # (ABC check last)
             encoded: Array = self.encode([row])[0]
             return encoded
         return row
