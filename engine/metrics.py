@@ -37,6 +37,7 @@ EPS = float(np.finfo(np.float64).eps)
 _ONE_MINUS_EPS = 1.0 - EPS
 AUC_BINS = 4096
 _AUC_LOGIT_RANGE = 16.0
+_BINS_PER_LOGIT = AUC_BINS / (2.0 * _AUC_LOGIT_RANGE)
 _STATE_VERSION = 1
 
 
@@ -194,7 +195,18 @@ class Prequential:
         p_true = p if label == 1 else 1.0 - p
         self._log_loss_sum -= math.log(EPS if p_true < EPS else
                                        (_ONE_MINUS_EPS if p_true > _ONE_MINUS_EPS else p_true))
-        self._histogram[label][self._bin(p)] += 1
+        # _bin(p), written out.
+        if p <= 0.0:
+            position = 0
+        elif p >= 1.0:
+            position = AUC_BINS - 1
+        else:
+            position = int((math.log(p) - math.log1p(-p) + _AUC_LOGIT_RANGE) * _BINS_PER_LOGIT)
+            if position < 0:
+                position = 0
+            elif position >= AUC_BINS:
+                position = AUC_BINS - 1
+        self._histogram[label][position] += 1
         self._confusion[label][1 if p > 0.5 else 0] += 1
 
     @staticmethod
@@ -205,7 +217,7 @@ class Prequential:
         if p >= 1.0:
             return AUC_BINS - 1
         logit = math.log(p) - math.log1p(-p)
-        position = (logit + _AUC_LOGIT_RANGE) * (AUC_BINS / (2.0 * _AUC_LOGIT_RANGE))
+        position = (logit + _AUC_LOGIT_RANGE) * _BINS_PER_LOGIT
         return min(max(int(position), 0), AUC_BINS - 1)
 
     def result(self) -> dict[str, float]:

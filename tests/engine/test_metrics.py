@@ -195,3 +195,19 @@ def test_scalar_update_refuses_a_label_outside_the_classes_and_counts_nothing() 
     assert metrics.n == 0
     with pytest.raises(InvalidInputError):
         Prequential("multiclass", 3).scalar_update()
+
+
+def test_the_written_out_bin_of_the_float_update_matches_bin() -> None:
+    """_update_binary computes _bin inline; the histogram must land in the same bins,
+    at the clamps and the bin edges too."""
+    edges = [(b / 128.0 - 16.0) for b in (0, 1, 2047, 2048, 4095)]
+    probabilities = [0.0, 1.0, 1e-300, 1.0 - 1e-16, 0.5, 1e-9, 1.0 - 1e-9]
+    probabilities += [1.0 / (1.0 + math.exp(-t)) for t in edges]
+    probabilities += np.random.default_rng(5).uniform(0.0, 1.0, 500).tolist()
+    metrics = Prequential("binary", 2)
+    for p in probabilities:
+        metrics.scalar_update()(1, p)
+    expected = [0] * AUC_BINS
+    for p in probabilities:
+        expected[Prequential._bin(p)] += 1
+    assert metrics.arrays()["histogram"][1].tolist() == expected
