@@ -26,7 +26,7 @@ from engine import Learner
 from service.promotion import primary_metric, should_promote
 from service.store import ModelRow, VersionRow
 from service.worker.holdout import HoldoutWindow, evaluate
-from service.worker.records import read_latest_holdout
+from service.worker.records import RecordChunk, read_latest_holdout
 from service.worker.versions import Promotion
 
 ENCODER_KEY = "encoder"  # snapshot extra: which frozen encoding a version uses
@@ -102,6 +102,7 @@ def decide(
     holdout_window: int,
     active: ActiveScore,
     active_id: Any = UNREAD,
+    holdout_rows: RecordChunk | None = None,
 ) -> Promotion | None:
     """Promotion(over=active id) when the new version should become active,
     None when it stays a candidate. ``active`` is used when it tracks the
@@ -111,7 +112,9 @@ def decide(
     online loop reads it in the transaction that read the records, instead of
     one more transaction per version). A stale value is safe: the version
     write promotes only if the active version is still the one decided
-    against (versions.py), so the new version then stays a candidate."""
+    against (versions.py), so the new version then stays a candidate.
+    ``holdout_rows``: the window's rows as read (a retrain has them at hand),
+    so an active version of another encoding need not read them again."""
     if spec.get("promotion", "auto") != "auto":
         return None
     if active_id is UNREAD or (active_id is not None and active.version_id != active_id):
@@ -120,7 +123,7 @@ def decide(
                 active_id = read_active_id(session, model_id)
             if active_id is not None and active.version_id != active_id:
                 _score_from_scratch(session, active, active_id, model_id, window, encoder,
-                                    cursor, holdout_window)
+                                    cursor, holdout_window, holdout_rows)
     if active_id is None:
         active.forget()
         return Promotion(over=None) if should_promote(spec, new_metrics, None) else None
@@ -132,7 +135,7 @@ def decide(
 
 def _score_from_scratch(session: Session, active: ActiveScore, active_id: int, model_id: int,
                         window: HoldoutWindow, encoder: str | None, cursor: int,
-                        holdout_window: int) -> None:
+                        holdout_window: int, rows: RecordChunk | None) -> None:
     snapshot = session.execute(
         select(VersionRow.snapshot).where(VersionRow.id == active_id)
     ).scalar_one()
@@ -142,7 +145,8 @@ def _score_from_scratch(session: Session, active: ActiveScore, active_id: int, m
         return
     # Another encoding (a retrain from scratch): encode the same rows its way.
     # Not tracked: the window's rows are in the lineage's encoding.
-    rows = read_latest_holdout(session, model_id, cursor, holdout_window)
+    if rows is None:
+        rows = read_latest_holdout(session, model_id, cursor, holdout_window)
     own = HoldoutWindow(holdout_window)
     if len(rows):
         own.extend(learner.encode(rows.features), learner.encode_labels(rows.labels))

@@ -105,7 +105,7 @@ def run_retrain(
         "fit": _plain(report),
     }
     promotion = decide(writes, model_id, spec, metrics, window, encoder, cursor,
-                       settings.holdout_window, new_active_score(spec))
+                       settings.holdout_window, new_active_score(spec), holdout_rows=rows)
     # The version has learned from every train record up to its cursor.
     records_before = n_train - learner.records_seen
     snapshot = learner.to_bytes(extra={"cursor": cursor, ENCODER_KEY: encoder,
