@@ -136,6 +136,12 @@ def _copy_raw(raw: Mapping[str, Any]) -> dict[str, Any]:
             for name, value in raw.items()}
 
 
+def check_row(name: str, values: Any, width: int) -> NDArray[np.float64]:
+    """`values` as a finite float64 row of `width`; InvalidInputError (field `name`)
+    otherwise."""
+    return _row(name, values, width)
+
+
 def _check_count(name: str, value: int, largest: int) -> None:
     if isinstance(value, bool) or not isinstance(value, int) or not 1 <= value <= largest:
         raise InvalidInputError(f"{name} must be an integer from 1 to {largest}", field=name)
@@ -158,9 +164,10 @@ def explain(
     """Explain the network's output at one encoded row x (n_inputs,) relative to
     an encoded baseline row (n_inputs,). `output_index` is a class index, or None
     for the class predicted at x (found in the same forward pass); 0 or None for
-    regression. `raw_baseline`, if given, is `encoder.raw_baseline(baseline)`
-    already worked out (a caller that explains against one baseline many times
-    keeps it); the explanation gets its own copy."""
+    regression. `raw_baseline`, if given, is `encoder.raw_baseline(baseline)` of a
+    baseline the caller has already passed through `check_row` (a caller that
+    explains against one baseline many times keeps both); the explanation gets its
+    own copy."""
     if method not in METHODS:
         raise InvalidInputError(f"method must be one of {METHODS}, got {method!r}",
                                 field="explain")
@@ -169,7 +176,8 @@ def explain(
         raise InvalidInputError(f"network {network.sizes} does not fit the encoder's "
                                 f"{n_inputs} inputs and {encoder.n_outputs} outputs")
     x = _row("x", x, n_inputs)
-    baseline = _row("baseline", baseline, n_inputs)
+    if raw_baseline is None:
+        baseline = _row("baseline", baseline, n_inputs)
     task = encoder.task
     if output_index is not None:
         n_choices = 1 if task == "regression" else len(encoder.classes)

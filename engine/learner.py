@@ -14,7 +14,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from engine import batch, snapshot
-from engine.attribution import Explanation, explain
+from engine.attribution import Explanation, check_row, explain
 from engine.encoding import Encoder
 from engine.errors import InvalidInputError, NonFiniteError, SnapshotError
 from engine.metrics import Prequential, batch_metrics
@@ -212,6 +212,7 @@ class Learner:
         if baseline is None:
             base = self.input_mean
             if self._raw_mean is None or self._raw_mean[0] is not base:
+                check_row("baseline", base, self.encoder.n_inputs)  # once per mean
                 self._raw_mean = (base, self.encoder.raw_baseline(base))
             raw_base = self._raw_mean[1]
         else:

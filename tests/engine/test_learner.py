@@ -238,3 +238,17 @@ def test_learner_refuses_an_invalid_spec_naming_the_field():
     with pytest.raises(InvalidInputError) as caught:
         Learner.create(spec(hidden_layers=[0]))
     assert caught.value.field == "hidden_layers"
+
+
+def test_a_non_finite_input_mean_is_refused_as_a_baseline():
+    """The kept default baseline is checked once per mean, still checked."""
+    rows, labels = rows_and_labels("binary", 20)
+    learner = Learner.create(spec(), warmup=rows)
+    X, Y = learner.encode(rows), learner.encode_labels(labels)
+    learner.learn(X[:10], Y[:10])
+    learner.explain(X[0], method="gradient")  # keeps the finite mean's raw form
+    learner.input_sum = np.full(learner.encoder.n_inputs, np.inf)
+    learner.learn(X[10:11], Y[10:11])  # a new mean: inf
+    with pytest.raises(InvalidInputError) as caught:
+        learner.explain(X[0], method="gradient")
+    assert caught.value.field == "baseline"
