@@ -67,6 +67,7 @@ def _json_records() -> list[Any]:
         errors["records"] = ["Not a valid list."]
     if errors:
         raise InvalidInputError("The body is invalid; nothing was stored.", errors=errors)
+    assert isinstance(records, list)
     return records
 
 

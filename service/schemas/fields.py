@@ -22,6 +22,12 @@ TRUE_TEXT = frozenset({"true", "1"})
 FALSE_TEXT = frozenset({"false", "0"})
 
 
+def _document(field: fields.Field[Any], **values: Any) -> None:
+    """Add OpenAPI keywords to a field's metadata (what apispec documents),
+    keeping any the caller passed; ``None`` values are left out."""
+    field.metadata = {**{k: v for k, v in values.items() if v is not None}, **field.metadata}
+
+
 def _finite(value: float | int) -> float:
     try:
         number = float(value)
@@ -32,7 +38,7 @@ def _finite(value: float | int) -> float:
     return number
 
 
-class StrictNumber(fields.Field):
+class StrictNumber(fields.Field[Any]):
     """A finite JSON number (not a bool, not a string), optionally bounded.
 
     Deserialises to ``float`` when ``as_float`` (record values); otherwise the
@@ -53,13 +59,8 @@ class StrictNumber(fields.Field):
         self.maximum = maximum
         self.exclusive_minimum = exclusive_minimum
         self.as_float = as_float
-        self.metadata.setdefault("type", "number")
-        if minimum is not None:
-            self.metadata.setdefault("minimum", minimum)
-            if exclusive_minimum:
-                self.metadata.setdefault("exclusiveMinimum", True)
-        if maximum is not None:
-            self.metadata.setdefault("maximum", maximum)
+        _document(self, type="number", minimum=minimum, maximum=maximum,
+                  exclusiveMinimum=True if minimum is not None and exclusive_minimum else None)
 
     def _deserialize(self, value: Any, attr: str | None, data: Any, **kwargs: Any) -> Any:
         if isinstance(value, bool) or not isinstance(value, int | float):
@@ -94,7 +95,7 @@ class NumberFromText(StrictNumber):
         return self.check(number)
 
 
-class StrictInteger(fields.Field):
+class StrictInteger(fields.Field[Any]):
     """A JSON integer (not a bool, not 2.0), optionally bounded."""
 
     def __init__(
@@ -103,11 +104,7 @@ class StrictInteger(fields.Field):
         super().__init__(**kwargs)
         self.minimum = minimum
         self.maximum = maximum
-        self.metadata.setdefault("type", "integer")
-        if minimum is not None:
-            self.metadata.setdefault("minimum", minimum)
-        if maximum is not None:
-            self.metadata.setdefault("maximum", maximum)
+        _document(self, type="integer", minimum=minimum, maximum=maximum)
 
     def _deserialize(self, value: Any, attr: str | None, data: Any, **kwargs: Any) -> Any:
         if isinstance(value, bool) or not isinstance(value, int):
@@ -119,12 +116,12 @@ class StrictInteger(fields.Field):
         return value
 
 
-class StrictBoolean(fields.Field):
+class StrictBoolean(fields.Field[Any]):
     """JSON ``true`` or ``false``; nothing else."""
 
     def __init__(self, **kwargs: Any) -> None:
         super().__init__(**kwargs)
-        self.metadata.setdefault("type", "boolean")
+        _document(self, type="boolean")
 
     def _deserialize(self, value: Any, attr: str | None, data: Any, **kwargs: Any) -> Any:
         if not isinstance(value, bool):
@@ -143,7 +140,7 @@ class BooleanFromText(StrictBoolean):
         return super()._deserialize(value, attr, data, **kwargs)
 
 
-class Choice(fields.Field):
+class Choice(fields.Field[Any]):
     """One of a fixed list of JSON values, compared by type and value (so
     ``true`` is not ``1`` and ``"1"`` is not ``1``): levels and classes."""
 
@@ -152,7 +149,7 @@ class Choice(fields.Field):
         self.choices = list(choices)
         self.lookup = {(type(c), c): c for c in self.choices}
         self.what = what
-        self.metadata.setdefault("enum", self.choices)
+        _document(self, enum=self.choices)
 
     def _deserialize(self, value: Any, attr: str | None, data: Any, **kwargs: Any) -> Any:
         try:

@@ -53,7 +53,7 @@ def record_schema(spec: Mapping[str, Any], *, text: bool = False) -> Schema:
     return _record_schema(_cache_key(spec), text)
 
 
-def label_field(spec: Mapping[str, Any], *, text: bool = False) -> fields.Field:
+def label_field(spec: Mapping[str, Any], *, text: bool = False) -> fields.Field[Any]:
     """The field a label is checked with: a class of the model, or a number."""
     classes = spec.get("classes")
     if spec["task"] == "regression" or classes is None:
@@ -66,12 +66,12 @@ def label_field(spec: Mapping[str, Any], *, text: bool = False) -> fields.Field:
 @lru_cache(maxsize=CACHE_SIZE)
 def _feature_schema(key: str, text: bool) -> Schema:
     spec = json.loads(key)
-    declared: dict[str, fields.Field] = {}
+    declared: dict[str, fields.Field[Any]] = {}
     for feature in spec["features"]:
         kind = feature["type"]
         if kind == "numeric":
             number = NumberFromText if text else StrictNumber
-            field: fields.Field = number(
+            field: fields.Field[Any] = number(
                 minimum=feature.get("min"), maximum=feature.get("max"),
                 as_float=True, required=True,
             )
@@ -88,7 +88,7 @@ def _feature_schema(key: str, text: bool) -> Schema:
 @lru_cache(maxsize=CACHE_SIZE)
 def _record_schema(key: str, text: bool) -> Schema:
     spec = json.loads(key)
-    declared: dict[str, fields.Field] = {
+    declared: dict[str, fields.Field[Any]] = {
         "key": fields.String(validate=[
             validate.Length(min=1, max=MAX_KEY_LENGTH),
             # PostgreSQL text cannot hold U+0000 (it was a 500 there); refused

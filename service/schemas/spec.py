@@ -110,7 +110,7 @@ class TrainingSchema(Schema):
     checkpoint_every = StrictInteger(minimum=1, maximum=100_000_000)
 
 
-class ClassLabel(fields.Field):
+class ClassLabel(fields.Field[Any]):
     """A class: a string, an integer or a boolean."""
 
     def _deserialize(self, value: Any, attr: str | None, data: Any, **kwargs: Any) -> Any:

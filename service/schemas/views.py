@@ -29,7 +29,7 @@ class TrainerStateSchema(Schema):
 class ModelSchema(ModelSpecSchema):
     """A stored model: its full spec (defaults filled) and its state."""
 
-    classes = fields.Raw(allow_none=True)
+    classes = fields.Raw(allow_none=True)  # type: ignore[assignment]  # null for regression
     active_version = fields.Integer(allow_none=True, required=True)
     records = fields.Nested(RecordCountsSchema, required=True)
     trainer = fields.Nested(TrainerStateSchema, required=True)

@@ -193,7 +193,9 @@ def _bulk_insert(
     """
     connection = session.connection()
     if postgres:
-        cursor = connection.connection.driver_connection.cursor()
+        driver = connection.connection.driver_connection
+        assert driver is not None  # a pooled connection in use has its driver's
+        cursor = driver.cursor()
         with cursor, cursor.copy(f"COPY records ({_COLUMNS}) FROM STDIN") as copy:
             for row in rows:
                 copy.write_row((*row, received_at))
