@@ -1,4 +1,5 @@
-"""The gunicorn logger builds access-log fields only when the line is written.
+"""gunicorn settings: access-log fields built only when the line is written,
+and a loaded worker's objects frozen out of the collector's full passes.
 
 Each case runs in a child process: importing service.gunicorn_conf sets the
 metrics folder in the environment and re-chooses prometheus_client's value
@@ -64,3 +65,46 @@ def test_an_enabled_access_log_writes_one_json_line_with_fields(tmp_path: Path) 
     assert line["logger"] == "gunicorn.access"
     assert line["method"] == "GET" and line["path"] == "/healthz" and line["status"] == 200
     assert line["request_id"] == "req-1"
+
+
+def test_a_loaded_worker_freezes_what_is_alive(tmp_path: Path) -> None:
+    child = ("import gc, service.gunicorn_conf as conf\n"
+             "from service.app import create_app\n"
+             f"app = create_app({{'KEELSON_DATABASE_URL': 'sqlite:///{tmp_path}/k.db'}})\n"
+             "conf.post_worker_init(None)\n"
+             "print(gc.get_freeze_count(), len(gc.get_objects()))\n")
+    env = {**os.environ, "PROMETHEUS_MULTIPROC_DIR": str(tmp_path / "metrics")}
+    done = subprocess.run([sys.executable, "-c", child], env=env, capture_output=True,
+                          text=True, timeout=60, check=True,
+                          cwd=Path(__file__).resolve().parents[2])
+    frozen, still_tracked = map(int, done.stdout.split())
+    # The app's objects are frozen; next to nothing is left for a full collection.
+    assert frozen > 10_000 and still_tracked < 1_000
+
+
+def test_an_address_another_server_listens_on_is_refused(tmp_path: Path) -> None:
+    # With SO_REUSEPORT a second server could otherwise share the port silently.
+    child = """
+import socket
+from service.gunicorn_conf import refuse_a_taken_address
+
+with socket.socket() as listener:
+    listener.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEPORT, 1)
+    listener.bind(("127.0.0.1", 0))
+    listener.listen()
+    port = listener.getsockname()[1]
+    try:
+        refuse_a_taken_address("127.0.0.1", port)
+        print("taken port accepted")
+    except SystemExit as refusal:
+        print("refused:", refusal)
+refuse_a_taken_address("127.0.0.1", port)  # closed: free again
+print("free again")
+"""
+    env = {**os.environ, "PROMETHEUS_MULTIPROC_DIR": str(tmp_path / "metrics")}
+    done = subprocess.run([sys.executable, "-c", child], env=env, capture_output=True,
+                          text=True, timeout=60, check=True,
+                          cwd=Path(__file__).resolve().parents[2])
+    refused, free = done.stdout.splitlines()
+    assert refused.startswith("refused: cannot listen on 127.0.0.1:")
+    assert "already in use" in refused and free == "free again"
