@@ -24,9 +24,11 @@ from service.extensions import get_database
 from service.store import TokenRow
 
 SCOPES = ("ingest", "predict", "admin")
+_ALL_SCOPES = frozenset(SCOPES)
 PUBLIC = "public"
 SCOPE_ATTRIBUTE = "keelson_scope"
 CACHE_KEY = "keelson.tokens"
+ADMIN_DIGEST_KEY = "keelson.admin_token_digest"
 CACHE_LIMIT = 1024
 
 F = TypeVar("F", bound=Callable[..., Any])
@@ -85,7 +87,8 @@ class _TokenCache:
 
 
 def _bearer_token() -> str | None:
-    header = request.headers.get("Authorization", "")
+    # The WSGI variable itself: the header view would rebuild its name per call.
+    header = request.environ.get("HTTP_AUTHORIZATION", "")
     scheme, _, token = header.partition(" ")
     # RFC 7235: the scheme name is case-insensitive.
     if scheme.lower() != "bearer" or not token.strip():
@@ -96,10 +99,11 @@ def _bearer_token() -> str | None:
 def scopes_for_token(token: str) -> frozenset[str] | None:
     """The scopes of a presented token, or None when it is unknown or revoked."""
     digest = hash_token(token)
-    admin_token = current_app.config.get("KEELSON_ADMIN_TOKEN")
-    if admin_token and hmac.compare_digest(digest, hash_token(admin_token)):
-        return frozenset(SCOPES)
-    cache: _TokenCache = current_app.extensions[CACHE_KEY]
+    extensions = current_app.extensions
+    admin_digest = extensions[ADMIN_DIGEST_KEY]  # hashed once, at init_app
+    if admin_digest and hmac.compare_digest(digest, admin_digest):
+        return _ALL_SCOPES
+    cache: _TokenCache = extensions[CACHE_KEY]
     cached = cache.get(digest)
     if cached is not None:
         return cached
@@ -158,5 +162,7 @@ def authenticate() -> None:
 
 
 def init_app(app: Flask) -> None:
+    admin_token = app.config.get("KEELSON_ADMIN_TOKEN")
+    app.extensions[ADMIN_DIGEST_KEY] = hash_token(admin_token) if admin_token else None
     app.extensions[CACHE_KEY] = _TokenCache(float(app.config["KEELSON_TOKEN_CACHE_SECONDS"]))
     app.before_request(authenticate)
