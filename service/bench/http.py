@@ -15,6 +15,10 @@ and duration) measures:
 
 beside ``raw_insert``: the same rows written with one SQLAlchemy Core
 executemany per 1,000 rows into the same database, no HTTP, no validation.
+
+Each route also reports the CPU time the server (gunicorn's master and
+workers, from /proc) and wrk spent per request: other work on a shared
+machine moves requests/s and latency a lot, and CPU per request far less.
 """
 
 from __future__ import annotations
@@ -24,6 +28,7 @@ import json
 import os
 import platform
 import re
+import resource
 import secrets
 import shutil
 import signal
@@ -111,7 +116,7 @@ def _measure(url: str, scratch: Path, wrk: str, duration: int, connections: int,
     body_path.write_text(_post_script(scratch / "ingest.json"))
 
     figures: dict[str, Any] = {}
-    with _gunicorn(url, token, scratch / f"gunicorn-{backend}.log") as base:
+    with _gunicorn(url, token, scratch / f"gunicorn-{backend}.log") as (base, server):
         auth = f"Authorization: Bearer {token}"
         for name, path, headers, script in [
             ("trivial", "/healthz", [], None),
@@ -121,11 +126,12 @@ def _measure(url: str, scratch: Path, wrk: str, duration: int, connections: int,
              [auth], None),
         ]:
             progress(f"[{backend}] wrk {name}: {connections} connections, {duration} s")
-            figures[name] = _wrk(wrk, base + path, headers, script, duration, connections)
+            figures[name] = _wrk(wrk, base + path, headers, script, duration, connections,
+                                 server)
         progress(f"[{backend}] wrk ingest_http: {INGEST_BATCH} records per request")
         ingest = _wrk(wrk, base + f"/v1/models/{demo_data.MODEL_NAME}/records",
                       [auth, "Content-Type: application/json"], body_path, duration,
-                      connections)
+                      connections, server)
         ingest["records_per_s"] = round(ingest["requests_per_s"] * INGEST_BATCH, 1)
         figures["ingest_http"] = ingest
     progress(f"[{backend}] raw bulk insert of the same rows")
@@ -137,8 +143,17 @@ def _measure(url: str, scratch: Path, wrk: str, duration: int, connections: int,
         "gradient_to_trivial": round(figures["predict_gradient"]["requests_per_s"] / ceiling, 3),
         "ingest_http_to_raw_insert":
             round(ingest["records_per_s"] / figures["raw_insert"]["records_per_s"], 3),
+        # The same ratio had both routes been held to the server's CPU alone:
+        # trivial's CPU per request over the prediction's.
+        "integrated_gradients_to_trivial_by_server_cpu": _cpu_ratio(
+            figures["trivial"], figures["predict_integrated_gradients"]),
     }
     return figures
+
+
+def _cpu_ratio(ceiling: dict[str, Any], route: dict[str, Any]) -> float | None:
+    fast, slow = ceiling["server_cpu_us_per_request"], route["server_cpu_us_per_request"]
+    return round(fast / slow, 3) if fast and slow else None
 
 
 def _post_script(body: Path) -> str:
@@ -184,21 +199,56 @@ def parse_wrk(output: str) -> dict[str, Any]:
 
 
 def _wrk(wrk: str, url: str, headers: list[str], script: Path | None, duration: int,
-         connections: int) -> dict[str, Any]:
+         connections: int, server: int) -> dict[str, Any]:
     command = [wrk, f"-t{min(2, connections)}", f"-c{connections}", f"-d{duration}s",
                "--latency", "--timeout", "30s"]
     for header in headers:
         command += ["-H", header]
     if script is not None:
         command += ["-s", str(script)]
+    server_before = _tree_cpu_seconds(server)
+    wrk_before = _children_cpu_seconds()
     done = subprocess.run([*command, url], capture_output=True, text=True, check=False,
                           timeout=duration + 60)
+    wrk_cpu = _children_cpu_seconds() - wrk_before
+    server_after = _tree_cpu_seconds(server)
     if done.returncode != 0:
         raise click.ClickException(f"wrk failed ({done.returncode}): {done.stderr.strip()}")
     figures = parse_wrk(done.stdout)
+    # CPU time per request: what each answer costs the server (and the load
+    # generator), a figure that other work on the machine skews far less than
+    # requests/s and latency.
+    count = max(figures["requests"], 1)
+    figures["server_cpu_us_per_request"] = (
+        None if server_before is None or server_after is None
+        else round((server_after - server_before) / count * 1e6, 1))
+    figures["load_generator_cpu_us_per_request"] = round(wrk_cpu / count * 1e6, 1)
     if figures["non_2xx"]:
         figures["warning"] = "some answers were not 2xx; see the server log"
     return figures
+
+
+def _children_cpu_seconds() -> float:
+    used = resource.getrusage(resource.RUSAGE_CHILDREN)  # waited-for children: wrk
+    return used.ru_utime + used.ru_stime
+
+
+def _tree_cpu_seconds(pid: int) -> float | None:
+    """User + system CPU of a process and its descendants (gunicorn's master and
+    workers) from /proc; None where there is no /proc."""
+    tick = os.sysconf("SC_CLK_TCK")
+    total, pending = 0.0, [pid]
+    try:
+        while pending:
+            current = pending.pop()
+            with open(f"/proc/{current}/stat") as stat:
+                fields = stat.read().rsplit(")", 1)[1].split()
+            total += (int(fields[11]) + int(fields[12])) / tick  # utime, stime
+            with open(f"/proc/{current}/task/{current}/children") as children:
+                pending.extend(int(child) for child in children.read().split())
+    except OSError:
+        return None
+    return total
 
 
 def _raw_insert(url: str, batch: list[dict[str, Any]]) -> dict[str, Any]:
@@ -234,7 +284,7 @@ def _free_port() -> int:
 
 
 @contextlib.contextmanager
-def _gunicorn(url: str, token: str, log: Path) -> Iterator[str]:
+def _gunicorn(url: str, token: str, log: Path) -> Iterator[tuple[str, int]]:
     port = _free_port()
     metrics = tempfile.mkdtemp(prefix="keelson-bench-metrics-")
     env = {**os.environ, "KEELSON_DATABASE_URL": url, "KEELSON_ADMIN_TOKEN": token,
@@ -248,7 +298,7 @@ def _gunicorn(url: str, token: str, log: Path) -> Iterator[str]:
         base = f"http://127.0.0.1:{port}"
         try:
             _wait_ready(base + "/readyz", server, log)
-            yield base
+            yield base, server.pid
         finally:
             if server.poll() is None:
                 os.killpg(server.pid, signal.SIGTERM)
