@@ -296,7 +296,7 @@ class SGD(Optimizer):
             lr = self.rate()
             self._fill_swap_matrix(live, lr, scale)
         out = self._swap_out[live]
-        np.matmul(self._swap_matrices[live], self._swap_in[live], out=out)
+        np.matmul(self._swap_matrices[live], self._swap_in[live], out)  # (positional out)
         # The same bounds as step_: w' = w + update, |update_i| <= update_bound.
         weight_bound = self._weight_bound
         if weight_bound == math.inf:
