@@ -37,23 +37,25 @@ class JobRunner:
         self._thread: threading.Thread | None = None
         self._next_poll = 0.0
 
-    def poll(self) -> None:
-        """Claim a job when none is running (at most once per poll interval)."""
+    def poll(self) -> bool:
+        """Claim a job when none is running (at most once per poll interval).
+        True when the database was asked (and answered)."""
         if self._thread is not None and self._thread.is_alive():
-            return
+            return False
         now = time.monotonic()
         if now < self._next_poll:
-            return
+            return False
         self._next_poll = now + max(self.settings.poll_seconds, 1.0)
         with self.writes() as session, session.begin():
             job = claim_job(session, self.worker_id, self.settings.lease_seconds)
             job_id = None if job is None else job.id
         if job_id is None:
-            return
+            return True
         log.info("job %s: claimed by %s", job_id, self.worker_id)
         self._thread = threading.Thread(target=self._run, args=(job_id,),
                                         name=f"job-{job_id}", daemon=True)
         self._thread.start()
+        return True
 
     def close(self) -> None:
         """Wait for the running job (the stop event cancels it)."""

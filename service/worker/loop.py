@@ -104,14 +104,17 @@ class Worker:
 
     def _tick(self) -> bool:
         now = time.monotonic()
+        answered = False  # whether a bookkeeping query reached the database
         try:
             if now >= self._next_heartbeat:
                 self._heartbeat()
                 self._next_heartbeat = now + self.settings.heartbeat_seconds
+                answered = True
             if now >= self._next_claim:
                 self._claim()
                 self._next_claim = now + self.settings.claim_seconds
-            self.jobs.poll()
+                answered = True
+            answered = self.jobs.poll() or answered
         except DATABASE_AWAY as exc:
             # Said once, not a traceback per poll; keep trying, keep the state.
             if not self._database_away:
@@ -122,7 +125,8 @@ class Worker:
         except Exception:
             log.exception("worker %s: lease bookkeeping failed", self.worker_id)
             return False
-        if self._database_away:
+        if self._database_away and answered:
+            # Only an answer proves it: a tick with nothing due asked nothing.
             log.info("worker %s: database reachable again", self.worker_id)
             self._database_away = False
         busy = False
