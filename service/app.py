@@ -50,7 +50,7 @@ class BoundedIntegerConverter(IntegerConverter):
         super().__init__(map, fixed_digits, min, max, signed)
 
 
-class Api(flask_smorest.Api):
+class Api(flask_smorest.Api):  # type: ignore[misc]  # flask-smorest ships no types
     """flask-smorest's Api documenting errors as RFC 9457 problem details."""
 
     ERROR_SCHEMA = ProblemSchema

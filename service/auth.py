@@ -88,7 +88,7 @@ class _TokenCache:
 
 def _bearer_token() -> str | None:
     # The WSGI variable itself: the header view would rebuild its name per call.
-    header = request.environ.get("HTTP_AUTHORIZATION", "")
+    header: str = request.environ.get("HTTP_AUTHORIZATION", "")
     scheme, _, token = header.partition(" ")
     # RFC 7235: the scheme name is case-insensitive.
     if scheme.lower() != "bearer" or not token.strip():

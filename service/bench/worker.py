@@ -173,7 +173,7 @@ def _measure(url: str, records: int, progress: Progress, retrain: bool) -> dict[
 
 def _store(writes: Any, records: int) -> tuple[int, int, list[dict[str, float]], list[bool],
                                                list[str]]:
-    from sqlalchemy import insert
+    from sqlalchemy import Table, insert
 
     import engine
     from service.store import ModelRow, RecordRow, TrainerRow, utcnow
@@ -208,7 +208,9 @@ def _store(writes: Any, records: int) -> tuple[int, int, list[dict[str, float]],
             rows.append({"seq": seq, "model_id": model_id, "key": None, "features": record,
                          "label": label, "split": split, "received_at": now})
         with writes() as session, session.begin():
-            session.execute(insert(RecordRow.__table__), rows)
+            table = RecordRow.__table__
+            assert isinstance(table, Table)
+            session.execute(insert(table), rows)
     with writes() as session, session.begin():
         model = session.get(ModelRow, model_id)
         model.records_holdout = splits.count("holdout")

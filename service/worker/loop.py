@@ -73,8 +73,8 @@ def run_worker(
         Worker(settings, engine, worker_id or default_worker_id(), stop).run()
     finally:
         engine.dispose()
-        for signum, handler in previous.items():
-            signal.signal(signum, handler)
+        for number, handler in previous.items():
+            signal.signal(number, handler)
 
 
 class Worker:

@@ -193,7 +193,7 @@ class OnlineLineage:
         snapshot = learner.to_bytes(extra={"cursor": self.cursor, ENCODER_KEY: self.encoder,
                                            RECORDS_BEFORE_KEY: self.records_before,
                                            "model_id": self.model_id})
-        metrics = {
+        metrics: dict[str, Any] = {
             "prequential": json_metrics(learner.prequential_metrics()),
             "holdout": evaluate(learner, self.window),
             "holdout_window": self.settings.holdout_window,

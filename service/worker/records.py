@@ -124,8 +124,7 @@ def read_latest_holdout(session: Session, model_id: int, upto: int, limit: int) 
         .order_by(RecordRow.seq.desc())
         .limit(limit)
     ).all()
-    rows.reverse()
-    return RecordChunk.from_rows(rows)
+    return RecordChunk.from_rows(rows[::-1])
 
 
 def count_records(

@@ -196,7 +196,8 @@ def _finite_or_none(value: float | None) -> float | None:
 
 def _plain(report: Any) -> dict[str, Any]:
     """The fit report as JSON-ready values."""
-    fields = dataclasses.asdict(report) if dataclasses.is_dataclass(report) else dict(vars(report))
+    is_instance = dataclasses.is_dataclass(report) and not isinstance(report, type)
+    fields = dataclasses.asdict(report) if is_instance else dict(vars(report))
     plain: dict[str, Any] = {}
     for key, value in fields.items():
         if isinstance(value, np.generic):
