@@ -81,9 +81,10 @@ def evaluate(learner: Any, window: HoldoutWindow) -> dict[str, float | None]:
 
 def json_metrics(metrics: Mapping[str, Any]) -> dict[str, float | None]:
     """Metrics as JSON numbers: an undefined one (NaN, e.g. before any record)
-    becomes null, since JSON has no NaN (RFC 8259)."""
+    becomes null, since JSON has no NaN (RFC 8259); ``n``, a count of rows,
+    is a whole number."""
     plain: dict[str, float | None] = {}
     for key, value in metrics.items():
         number = float(value)
-        plain[key] = number if math.isfinite(number) else None
+        plain[key] = None if not math.isfinite(number) else int(number) if key == "n" else number
     return plain

@@ -85,7 +85,7 @@ def test_the_stored_prequential_metrics_are_those_of_each_records_score_before_i
     learner = Learner.create(spec_full, warmup=features[:64], warmup_labels=labels[:64])
     scores = learner.learn(learner.encode(features), learner.encode_labels(labels))[:, 0]
     truth = np.array(labels, dtype=bool)
-    assert stored["n"] == len(rows)
+    assert stored["n"] == len(rows) and type(stored["n"]) is int  # a count, not 400.0
     assert stored["accuracy"] == pytest.approx(accuracy_score(truth, scores > 0.5), abs=1e-12)
     assert stored["log_loss"] == pytest.approx(log_loss(truth, scores, labels=[False, True]),
                                                rel=1e-9)
