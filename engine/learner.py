@@ -35,6 +35,9 @@ class Learner:
                  input_sum: Array | None = None, input_count: int = 0,
                  extra: Mapping[str, Any] | None = None) -> None:
         self.spec: dict[str, Any] = apply_defaults(spec)
+        # The spec's hash, worked out at the first snapshot: a learner's spec is
+        # fixed, and hashing it cost a quarter of each snapshot.
+        self._spec_hash: str | None = None
         self.encoder = encoder
         self.loss: str = self.spec["loss"]
         self.prequential = prequential or Prequential(self.task, len(encoder.classes))
@@ -263,7 +266,7 @@ class Learner:
         arrays.update({f"prequential.{k}": v for k, v in self.prequential.arrays().items()})
         meta = {
             "spec": self.spec,
-            "spec_hash": spec_hash(self.spec),
+            "spec_hash": self._spec_hash or self._hash_spec(),
             "sizes": list(self.network.sizes),
             "records_seen": self.records_seen,
             "input_count": self.input_count,
@@ -278,6 +281,10 @@ class Learner:
         except (TypeError, ValueError) as exc:
             raise InvalidInputError(f"extra must be JSON without NaN: {exc}",
                                     field="extra") from exc
+
+    def _hash_spec(self) -> str:
+        self._spec_hash = spec_hash(self.spec)
+        return self._spec_hash
 
     @classmethod
     def from_bytes(cls, data: bytes) -> Learner:
@@ -306,6 +313,7 @@ class Learner:
             learner = cls(spec, encoder, network, prequential=prequential,
                           records_seen=int(meta["records_seen"]), input_sum=input_sum,
                           input_count=int(meta["input_count"]), extra=meta["extra"])
+            learner._spec_hash = meta["spec_hash"]  # checked against the spec above
             if learner.optimizer.kind != meta["optimizer"]["kind"]:
                 raise SnapshotError("the snapshot's optimizer does not match its spec")
             learner.optimizer.load_state(part("optimizer."),
