@@ -16,7 +16,10 @@ Array = NDArray[np.float64]
 
 
 # `out` goes positionally where NumPy allows it: these run once per layer per
-# record, and keyword parsing costs as much as a small array operation.
+# record, and keyword parsing costs as much as a small array operation. For the
+# same reason the derivatives take `one`: a caller on a per-record path passes an
+# array of ones shaped like `y`, which NumPy uses as it is, where the scalar 1.0
+# is converted to an array on every call (same values either way).
 
 
 def tanh_(z: Array) -> Array:
@@ -37,19 +40,19 @@ def relu_(z: Array) -> Array:
     return np.maximum(z, 0.0, out=z)  # a positional out is deprecated for maximum
 
 
-def tanh_derivative(y: Array, out: Array) -> Array:
+def tanh_derivative(y: Array, out: Array, one: Array | float = 1.0) -> Array:
     """d tanh/dz = 1 - y^2."""
     np.multiply(y, y, out)
-    return np.subtract(1.0, out, out)
+    return np.subtract(one, out, out)
 
 
-def logistic_derivative(y: Array, out: Array) -> Array:
+def logistic_derivative(y: Array, out: Array, one: Array | float = 1.0) -> Array:
     """d logistic/dz = y (1 - y)."""
-    np.subtract(1.0, y, out)
+    np.subtract(one, y, out)
     return np.multiply(out, y, out)
 
 
-def relu_derivative(y: Array, out: Array) -> Array:
+def relu_derivative(y: Array, out: Array, one: Array | float = 1.0) -> Array:
     """d relu/dz = 1 where y > 0, else 0 (0 at the kink, as PyTorch)."""
     # y >= 0 always, so sign(y) is exactly the indicator [y > 0].
     return np.sign(y, out)
@@ -60,7 +63,7 @@ ACTIVATE: dict[str, Callable[[Array], Array]] = {
     "logistic": logistic_,
     "relu": relu_,
 }
-DERIVATIVE: dict[str, Callable[[Array, Array], Array]] = {
+DERIVATIVE: dict[str, Callable[..., Array]] = {
     "tanh": tanh_derivative,
     "logistic": logistic_derivative,
     "relu": relu_derivative,

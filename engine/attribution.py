@@ -118,7 +118,9 @@ class Explanation:
 _FLOAT64 = np.dtype(np.float64)
 
 
-def _row(name: str, values: Any, width: int) -> NDArray[np.float64]:
+def check_row(name: str, values: Any, width: int) -> NDArray[np.float64]:
+    """`values` as a finite float64 row of `width`; InvalidInputError (field `name`)
+    otherwise."""
     row: NDArray[np.float64] = values
     # `is` on the native float64 dtype (a singleton): `!= np.float64` converts first.
     if type(values) is not np.ndarray or values.dtype is not _FLOAT64 or values.ndim != 1:
@@ -134,12 +136,6 @@ def _copy_raw(raw: Mapping[str, Any]) -> dict[str, Any]:
     """A copy of a raw baseline, a categorical field's {level: share} copied too."""
     return {name: dict(value) if isinstance(value, dict) else value
             for name, value in raw.items()}
-
-
-def check_row(name: str, values: Any, width: int) -> NDArray[np.float64]:
-    """`values` as a finite float64 row of `width`; InvalidInputError (field `name`)
-    otherwise."""
-    return _row(name, values, width)
 
 
 def _check_count(name: str, value: int, largest: int) -> None:
@@ -175,9 +171,9 @@ def explain(
     if network.sizes[0] != n_inputs or network.sizes[-1] != encoder.n_outputs:
         raise InvalidInputError(f"network {network.sizes} does not fit the encoder's "
                                 f"{n_inputs} inputs and {encoder.n_outputs} outputs")
-    x = _row("x", x, n_inputs)
+    x = check_row("x", x, n_inputs)
     if raw_baseline is None:
-        baseline = _row("baseline", baseline, n_inputs)
+        baseline = check_row("baseline", baseline, n_inputs)
     task = encoder.task
     if output_index is not None:
         n_choices = 1 if task == "regression" else len(encoder.classes)

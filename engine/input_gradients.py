@@ -16,7 +16,7 @@ import math
 import numpy as np
 from numpy.typing import NDArray
 
-from .activations import ACTIVATE
+from .activations import ACTIVATE, DERIVATIVE
 from .network import Network
 
 
@@ -213,15 +213,7 @@ def gradient_at(network: Network, x: NDArray[np.float64], baseline: NDArray[np.f
         g = np.multiply(column, slope, work.top) if hidden else column * slope
     if hidden:
         # Slopes f'(z) at x of every hidden layer (the rows of ones give unused values).
-        y, slopes, ones = work.hidden_x, work.slopes, work.ones
-        if activation == "tanh":  # 1 - y^2
-            np.multiply(y, y, slopes)
-            np.subtract(ones, slopes, slopes)
-        elif activation == "logistic":  # y (1 - y)
-            np.subtract(ones, y, slopes)
-            np.multiply(slopes, y, slopes)
-        else:  # relu: y >= 0, so sign(y) is the indicator [y > 0]
-            np.sign(y, slopes)
+        DERIVATIVE[activation](work.hidden_x, work.slopes, work.ones)
         for layer_slopes, dot, below in work.backward:
             g *= layer_slopes
             g = dot(g) if below is None else dot(g, below)

@@ -106,9 +106,9 @@ class OnlineTrainer:
                 (network.weights[i], self._deltas[i - 1]) if i > 0 else None))
         # The single-output loop runs about fifteen small NumPy calls per record, so it
         # takes bound `.dot` methods of the fixed buffers (np.dot goes through the
-        # array-function dispatch first, about 0.15 us a call) and subtracts from a
-        # ones vector rather than from the scalar 1.0 (a scalar operand is converted
-        # on every call). (Without hidden layers only the flag is read: the output
+        # array-function dispatch first, about 0.15 us a call) and gives the slopes a
+        # ones vector rather than the scalar 1.0 (a scalar operand is converted on
+        # every call). (Without hidden layers only the flag is read: the output
         # reads the input row.)
         self._no_hidden = last == 0
         self._first_core = cores[0] if last > 0 else self._z
@@ -215,11 +215,10 @@ class OnlineTrainer:
                      step: Callable[[float], Any], live: int | None) -> None:
         """`live`: None for a plain step_, else the row the weights are in (the
         index in optimizer.weight_rows), which step_swapping_ moves at every step."""
-        multiply, subtract, sign, copyto = np.multiply, np.subtract, np.sign, np.copyto
+        multiply, copyto = np.multiply, np.copyto
         exp, isfinite = math.exp, math.isfinite
         activation = self.network.activation
-        activate = _ACTIVATE_INTO[activation]
-        tanh, logistic = activation == "tanh", activation == "logistic"
+        activate, slope = _ACTIVATE_INTO[activation], self._slope
         first_core, last_input = self._first_core, self._last_input
         hidden, slopes_all, ones = self._hidden, self._slopes_all, self._ones
         last_grad = self._last_grad_flat
@@ -262,15 +261,7 @@ class OnlineTrainer:
                 # Backpropagate dz/dparams; the optimizer scales it by dL/dz = d.
                 if first is not None:
                     copyto(last_grad, last_input)  # dz/dW_last = the last layer's input
-                    # Every hidden layer's slope in one pass (or two), from its output.
-                    if tanh:  # 1 - y^2
-                        multiply(hidden, hidden, slopes_all)
-                        subtract(ones, slopes_all, slopes_all)
-                    elif logistic:  # y (1 - y)
-                        subtract(ones, hidden, slopes_all)
-                        multiply(slopes_all, hidden, slopes_all)
-                    else:  # relu: y >= 0, so sign(y) is the indicator [y > 0]
-                        sign(hidden, slopes_all)
+                    slope(hidden, slopes_all, ones)  # every hidden layer in one pass
                     for source, slopes, delta, column_dot, delta_row, grad, down_dot, below \
                             in upper:
                         multiply(source, slopes, delta)
@@ -304,7 +295,7 @@ class OnlineTrainer:
     def _backward_hidden(self, x_column: Array, plan: list[Any]) -> None:
         """Deltas of the hidden layers down to the first layer's gradient;
         dL/dW = input (column) times delta (row)."""
-        self._slope(self._hidden, self._slopes_all)  # every hidden layer in one pass
+        self._slope(self._hidden, self._slopes_all, self._ones)  # every hidden layer at once
         dot, multiply = np.dot, np.multiply
         for source, slopes, delta, delta_row, column, grad, below in plan:
             multiply(source, slopes, delta)

@@ -230,17 +230,8 @@ class SGD(Optimizer):
             np.subtract(new_velocity, self._slots[live], update)
             np.multiply(update, momentum, update)
             np.add(update, new_velocity, update)
-        # Bounds of the new velocity and of the update, from the bounds of the operands.
-        weight_bound = self._weight_bound
-        if weight_bound == math.inf:
-            weight_bound = float(np.max(np.abs(self.params)))
-        # max |g_i| <= ||g|| = sqrt(raw); the gradient's coefficient is -lr * scale.
-        velocity_bound = (momentum * self._velocity_bound
-                          + lr * abs(scale) * math.sqrt(raw) + lr * self.l2 * weight_bound)
-        update_bound = velocity_bound if not self.nesterov else \
-            (1.0 + momentum) * velocity_bound + momentum * self._velocity_bound
-        weight_bound += update_bound
-        if not (update_bound < self.SAFE_BOUND and weight_bound < self.SAFE_BOUND):
+        velocity_bound, weight_bound, safe = self._bounds_after(self.params, lr, scale, raw)
+        if not safe:
             # |update_i| < 1.3e154 when this is finite, so w + update cannot overflow.
             if not math.isfinite(float(np.dot(update, update))):
                 raise NonFiniteError("the step would make a weight non-finite")
@@ -250,6 +241,24 @@ class SGD(Optimizer):
         self._velocity_bound, self._weight_bound = velocity_bound, weight_bound
         self._live = 1 - live
         self.step_count += 1
+
+    def _bounds_after(self, weights: Array, lr: float, scale: float, raw: float
+                      ) -> tuple[float, float, bool]:
+        """Bounds on |v'_i| and |w'_i| after a step, from the bounds of its operands
+        (`weights`: where the weights are now; `raw`: the squared gradient norm),
+        and whether the update and the new weights are safely far from overflow."""
+        weight_bound = self._weight_bound
+        if weight_bound == math.inf:
+            weight_bound = float(np.max(np.abs(weights)))
+        momentum = self.momentum
+        # max |g_i| <= ||g|| = sqrt(raw); the gradient's coefficient is -lr * scale.
+        velocity_bound = (momentum * self._velocity_bound
+                          + lr * abs(scale) * math.sqrt(raw) + lr * self.l2 * weight_bound)
+        update_bound = velocity_bound if not self.nesterov else \
+            (1.0 + momentum) * velocity_bound + momentum * self._velocity_bound
+        weight_bound += update_bound
+        safe = update_bound < self.SAFE_BOUND and weight_bound < self.SAFE_BOUND
+        return velocity_bound, weight_bound, safe
 
     def _fill_swap_matrix(self, live: int, lr: float, scale: float) -> None:
         """C for the inputs of slot `live`: row 0 gives v', row 1 gives w'."""
@@ -297,16 +306,9 @@ class SGD(Optimizer):
             self._fill_swap_matrix(live, lr, scale)
         out = self._swap_out[live]
         np.matmul(self._swap_matrices[live], self._swap_in[live], out)  # (positional out)
-        # The same bounds as step_: w' = w + update, |update_i| <= update_bound.
-        weight_bound = self._weight_bound
-        if weight_bound == math.inf:
-            weight_bound = float(np.max(np.abs(self.weight_rows[live])))
-        velocity_bound = (momentum * self._velocity_bound
-                          + lr * abs(scale) * math.sqrt(raw) + lr * self.l2 * weight_bound)
-        update_bound = velocity_bound if not self.nesterov else \
-            (1.0 + momentum) * velocity_bound + momentum * self._velocity_bound
-        weight_bound += update_bound
-        if not (update_bound < self.SAFE_BOUND and weight_bound < self.SAFE_BOUND):
+        velocity_bound, weight_bound, safe = self._bounds_after(
+            self.weight_rows[live], lr, scale, raw)
+        if not safe:
             # Rare: look at every new value (a sum of squares could overflow from
             # finite values this large), then measure the bounds afresh.
             if not np.isfinite(out).all():

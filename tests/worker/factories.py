@@ -4,9 +4,10 @@ from __future__ import annotations
 
 from typing import Any
 
-from sqlalchemy.orm import Session
+from sqlalchemy.orm import Session, sessionmaker
 
-from service.store import ModelRow, TrainerRow, VersionRow
+from service.store import JobRow, ModelRow, TrainerRow, VersionRow
+from service.worker.leasing import claim_job
 
 
 def create_model(session: Session, name: str = "pump-risk", **spec: Any) -> ModelRow:
@@ -52,3 +53,14 @@ def create_version(
     session.add(version)
     session.flush()
     return version
+
+
+def claimed_retrain(writes: sessionmaker[Session], worker: str = "a") -> tuple[int, int]:
+    """A model with a retrain job queued, then claimed by ``worker``: (model id, job id)."""
+    with writes() as session, session.begin():
+        model_id = create_model(session).id
+        session.add(JobRow(model_id=model_id, kind="retrain", status="queued", params={}))
+    with writes() as session, session.begin():
+        job = claim_job(session, worker, 30)
+        assert job is not None
+        return model_id, job.id

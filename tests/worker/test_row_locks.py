@@ -19,11 +19,9 @@ import pytest
 
 from service.db import make_engine, make_sessionmaker
 from service.promotion import lock_model
-from service.store import JobRow
 from service.usecases.common import find_model
-from service.worker.leasing import claim_job
 from service.worker.versions import NewVersion, lock_trainer, write_retrain_version
-from tests.worker.factories import create_model
+from tests.worker.factories import claimed_retrain
 
 
 @pytest.fixture
@@ -33,20 +31,10 @@ def writes(postgres_url: str):  # type: ignore[no-untyped-def]
     engine.dispose()
 
 
-def queued_retrain(writes: Any) -> tuple[int, int]:
-    with writes() as session, session.begin():
-        model_id = create_model(session).id
-        session.add(JobRow(model_id=model_id, kind="retrain", status="queued", params={}))
-    with writes() as session, session.begin():
-        job = claim_job(session, "a", 30)
-        assert job is not None
-        return model_id, job.id
-
-
 @pytest.mark.parametrize("how", ["lock_model", "find_model"])
 def test_a_retrain_version_is_written_while_another_transaction_holds_the_model(
         writes: Any, how: str) -> None:
-    model_id, job_id = queued_retrain(writes)
+    model_id, job_id = claimed_retrain(writes)
     new = NewVersion(snapshot=b"w", origin="retrain", cursor=0, records_seen=0,
                      metrics={}, parent_id=None, job_id=job_id)
     outcome: dict[str, Any] = {}

@@ -8,7 +8,7 @@ from sqlalchemy import select
 
 from service.db import make_engine, make_sessionmaker
 from service.store import JobRow, ModelRow, TrainerRow, VersionRow
-from service.worker.leasing import claim_job, claim_trainers
+from service.worker.leasing import claim_trainers
 from service.worker.versions import (
     Fenced,
     NewVersion,
@@ -18,7 +18,7 @@ from service.worker.versions import (
     write_online_version,
     write_retrain_version,
 )
-from tests.worker.factories import create_model
+from tests.worker.factories import claimed_retrain, create_model
 
 
 @pytest.fixture
@@ -96,13 +96,7 @@ def test_stopping_a_lineage_records_the_error_and_frees_the_lease(writes) -> Non
 
 
 def test_a_retrain_version_completes_its_job_in_the_same_transaction(writes) -> None:  # type: ignore[no-untyped-def]
-    with writes() as session, session.begin():
-        model_id = create_model(session).id
-        session.add(JobRow(model_id=model_id, kind="retrain", status="queued", params={}))
-    with writes() as session, session.begin():
-        job = claim_job(session, "a", 30)
-        assert job is not None
-        job_id = job.id
+    model_id, job_id = claimed_retrain(writes)
     new = NewVersion(snapshot=b"w", origin="retrain", cursor=30, records_seen=24,
                      metrics={}, parent_id=None, job_id=job_id)
     with pytest.raises(Fenced):
