@@ -7,8 +7,8 @@ import os
 
 from alembic import context
 
-from service.db import make_engine
-from service.store import Base
+from service.store.database import make_engine
+from service.store.tables import Base
 
 config = context.config
 target_metadata = Base.metadata

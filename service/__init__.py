@@ -1,5 +1,7 @@
-"""Keelson's service: HTTP API, store, worker and command line around engine/."""
+"""Keelson's service around engine/: the HTTP side (web), the store, the version
+rules (versions), the use cases, the training worker and the tools (the
+``keelson`` command, demo, import, benchmarks).
 
-from service.app import create_app
-
-__all__ = ["create_app"]
+Importing this package imports nothing else: entry points install their signal
+handling before anything heavy loads (service.process).
+"""

@@ -1,6 +1,6 @@
 """Errors the use cases raise on purpose, independent of HTTP.
 
-The API turns each into a problem details answer (service.problems); the
+The API turns each into a problem details answer (service.web.problems); the
 command line prints them. ``errors`` maps field paths (``records.3.features.x``)
 to lists of messages.
 """

@@ -22,7 +22,7 @@ import pytest
 from sqlalchemy import create_engine, text
 from sqlalchemy.engine import make_url
 
-from service.db import upgrade_database
+from service.store.schema import upgrade_database
 
 BACKENDS = ["sqlite", "postgresql"]
 

@@ -2,8 +2,9 @@
 
 from sqlalchemy import inspect, select
 
-from service.db import make_engine, make_sessionmaker, schema_is_current
-from service.store import ModelRow
+from service.store.database import make_engine, make_sessionmaker
+from service.store.schema import schema_is_current
+from service.store.tables import ModelRow
 
 
 def test_each_test_database_is_migrated_and_empty(database_url: str) -> None:

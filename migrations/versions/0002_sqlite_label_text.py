@@ -2,7 +2,7 @@
 
 SQLite gave ``records.label`` (declared JSON) NUMERIC affinity, so a bare
 number was converted to a REAL by SQLite's own, not always correctly rounded,
-text-to-double conversion (see ``service.store.TextJSON``). From here on the
+text-to-double conversion (see ``service.store.tables.TextJSON``). From here on the
 column has TEXT affinity and keeps the JSON text as written. Labels already
 stored as REALs are rewritten as the shortest text of the double SQLite kept
 (what Python's ``repr`` gives), not through SQLite's own REAL-to-TEXT

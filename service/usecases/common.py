@@ -10,10 +10,16 @@ from sqlalchemy import select
 from sqlalchemy.orm import Session
 
 from service.errors import NotFoundError
-from service.schemas.spec import MODEL_NAME_PATTERN
-from service.store import ModelRow
+from service.store.tables import ModelRow
 
+# What a model name may be: it is a URL path segment and a metric label.
+MODEL_NAME_PATTERN = r"[a-z0-9][a-z0-9-]{0,63}"
 _MODEL_NAME = re.compile(MODEL_NAME_PATTERN)
+
+
+def is_model_name(name: str) -> bool:
+    """Whether ``name`` could name a model (anything else names none)."""
+    return _MODEL_NAME.fullmatch(name) is not None
 
 
 def find_model(session: Session, name: str, *, lock: bool = False) -> ModelRow:
@@ -21,11 +27,11 @@ def find_model(session: Session, name: str, *, lock: bool = False) -> ModelRow:
 
     A name that could never be valid (``..``, uppercase, too long) is simply
     not found: it never reaches the database. ``lock`` takes the row lock
-    (``SELECT ... FOR NO KEY UPDATE``, see ``service.promotion.lock_model``;
+    (``SELECT ... FOR NO KEY UPDATE``, see ``service.versions.promote.lock_model``;
     on SQLite the write session's BEGIN IMMEDIATE already holds the database
     lock).
     """
-    if not _MODEL_NAME.fullmatch(name):
+    if not is_model_name(name):
         raise NotFoundError(f"There is no model named {name!r}.")
     query = select(ModelRow).where(ModelRow.name == name)
     if lock:  # and refresh a row this session may hold from an earlier transaction

@@ -7,8 +7,8 @@ from typing import Any
 from sqlalchemy import select
 
 from service.errors import ConflictError, NotFoundError
-from service.extensions import Database
-from service.store import JobRow, ModelRow, VersionRow
+from service.store.database import Database, transaction
+from service.store.tables import JobRow, ModelRow, VersionRow
 from service.usecases.common import as_utc, find_model
 
 
@@ -30,21 +30,14 @@ def job_view(job: JobRow, model_name: str, version_number: int | None) -> dict[s
 def request_retrain(db: Database, name: str, *, warm_start: bool) -> dict[str, Any]:
     """Queue a full retrain for a worker. A warm start continues from the
     active version, so it needs one (ConflictError otherwise)."""
-    with db.write() as session:
-        try:
-            model = find_model(session, name)
-            if warm_start and model.active_version_id is None:
-                raise ConflictError(
-                    f"Model {name!r} has no active version to warm-start from."
-                )
-            job = JobRow(model_id=model.id, kind="retrain", status="queued",
-                         params={"warm_start": warm_start}, attempts=0)
-            session.add(job)
-            session.commit()
-        except Exception:
-            session.rollback()
-            raise
-        return job_view(job, model.name, None)
+    with transaction(db.write) as session:
+        model = find_model(session, name)
+        if warm_start and model.active_version_id is None:
+            raise ConflictError(f"Model {name!r} has no active version to warm-start from.")
+        job = JobRow(model_id=model.id, kind="retrain", status="queued",
+                     params={"warm_start": warm_start}, attempts=0)
+        session.add(job)
+    return job_view(job, model.name, None)
 
 
 def get_job(db: Database, job_id: int) -> dict[str, Any]:

@@ -11,8 +11,8 @@ from sqlalchemy.orm import Session
 
 import engine
 from service.errors import ConflictError, InvalidInputError
-from service.extensions import Database
-from service.store import ModelRow, RecordRow, TrainerRow, VersionRow
+from service.store.database import Database, transaction
+from service.store.tables import ModelRow, RecordRow, TrainerRow, VersionRow
 from service.usecases.common import find_model, model_view
 
 
@@ -25,21 +25,17 @@ def create_model(db: Database, validated: Mapping[str, Any]) -> dict[str, Any]:
         raise InvalidInputError(
             "The model spec is invalid.", errors={exc.field or "body": [str(exc)]}
         ) from exc
-    with db.write() as session:
-        try:
+    taken = ConflictError(f"A model named {spec['name']!r} already exists.")
+    try:
+        with transaction(db.write) as session:
             if session.scalar(select(ModelRow.id).where(ModelRow.name == spec["name"])):
-                raise ConflictError(f"A model named {spec['name']!r} already exists.")
+                raise taken
             row = ModelRow(name=spec["name"], spec=spec, records_train=0, records_holdout=0)
             session.add(row)
             session.flush()
             session.add(TrainerRow(model_id=row.id, cursor=0))
-            session.commit()
-        except IntegrityError as exc:  # a concurrent create won the race
-            session.rollback()
-            raise ConflictError(f"A model named {spec['name']!r} already exists.") from exc
-        except Exception:
-            session.rollback()
-            raise
+    except IntegrityError as exc:  # a concurrent create won the race
+        raise taken from exc
     return model_view(row, active_version=None, cursor=0, lag=0)
 
 

@@ -8,14 +8,13 @@ into the errors the API answers with.
 from __future__ import annotations
 
 import math
-import re
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
 from service.errors import ConflictError, KeelsonError, NotFoundError
-from service.schemas.spec import MODEL_NAME_PATTERN
-from service.version_cache import (
+from service.usecases.common import is_model_name
+from service.versions.cache import (
     LoadedVersion,
     ModelEntry,
     ModelNotFound,
@@ -31,7 +30,6 @@ DEFAULT_EXPLAIN = "integrated_gradients"
 DEFAULT_STEPS, MIN_STEPS, MAX_STEPS = 64, 2, 1024
 DEFAULT_SAMPLES, MAX_SAMPLES = 32, 1024
 DEFAULT_NOISE, MAX_NOISE = 0.15, 10.0
-_MODEL_NAME = re.compile(MODEL_NAME_PATTERN)
 
 
 @dataclass(frozen=True, slots=True)
@@ -65,7 +63,7 @@ class NonFiniteOutputError(KeelsonError):
 
 def find_model(cache: VersionCache, name: str) -> ModelEntry:
     """The cached model called ``name`` (its active pointer at most the bound old)."""
-    if not _MODEL_NAME.fullmatch(name):
+    if not is_model_name(name):
         raise NotFoundError(f"There is no model named {name!r}.")
     try:
         return cache.model(name)

@@ -24,10 +24,10 @@ from sqlalchemy.dialects.postgresql import ARRAY
 from sqlalchemy.orm import Session, sessionmaker
 
 from service.errors import InvalidInputError, TooLargeError
-from service.problems import flatten_messages
-from service.schemas.records import fast_record_loader, record_schema
-from service.store import ModelRow, RecordRow, utcnow
+from service.store.tables import ModelRow, RecordRow, utcnow
 from service.usecases.common import find_model
+from service.web.problems import flatten_messages
+from service.web.schemas.records import fast_record_loader, record_schema
 
 KEY_CHUNK = 500  # keys per IN (...) on SQLite: under its parameter limit
 _SPLIT_SCALE = float(2**64)

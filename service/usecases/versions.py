@@ -11,11 +11,11 @@ from typing import Any
 from sqlalchemy import Row, select
 from sqlalchemy.orm import Session, aliased, defer
 
-from service import promotion
 from service.errors import NotFoundError
-from service.extensions import Database
-from service.store import VersionRow
+from service.store.database import Database, transaction
+from service.store.tables import VersionRow
 from service.usecases.common import as_utc, find_model
+from service.versions.promote import promote
 
 _Parent = aliased(VersionRow)
 _COLUMNS = (
@@ -62,22 +62,18 @@ def get_version(db: Database, name: str, number: int) -> dict[str, Any]:
 
 def promote_version(db: Database, name: str, number: int) -> dict[str, Any]:
     """Make version ``number`` the active one (idempotent for the active one)."""
-    with db.write() as session:
-        try:
-            model = find_model(session, name, lock=True)
-            version = session.scalars(
-                select(VersionRow)
-                .options(defer(VersionRow.snapshot))  # never load weights to move a pointer
-                .where(VersionRow.model_id == model.id, VersionRow.number == number)
-            ).first()
-            if version is None:
-                raise NotFoundError(f"Model {name!r} has no version {number}.")
-            if model.active_version_id != version.id:
-                promotion.promote(session, model, version)
-            session.commit()
-        except Exception:
-            session.rollback()
-            raise
+    with transaction(db.write) as session:
+        model = find_model(session, name, lock=True)
+        version = session.scalars(
+            select(VersionRow)
+            .options(defer(VersionRow.snapshot))  # never load weights to move a pointer
+            .where(VersionRow.model_id == model.id, VersionRow.number == number)
+        ).first()
+        if version is None:
+            raise NotFoundError(f"Model {name!r} has no version {number}.")
+        if model.active_version_id != version.id:
+            promote(session, model, version)
+    with db.read() as session:
         return _one(session, model.id, name, number)
 
 

@@ -17,11 +17,12 @@ from sqlalchemy.exc import OperationalError
 from sqlalchemy.orm import Session, sessionmaker
 
 from engine import TrainingCancelled
+from service.store.database import transaction
+from service.versions.writes import Fenced
 from service.worker.jobs import fail_job, requeue_job, retry_job
 from service.worker.leasing import claim_job, renew_job
 from service.worker.retrain import run_retrain
 from service.worker.settings import WorkerSettings
-from service.worker.versions import Fenced
 
 log = logging.getLogger("keelson.worker")
 
@@ -46,7 +47,7 @@ class JobRunner:
         if now < self._next_poll:
             return False
         self._next_poll = now + max(self.settings.poll_seconds, 1.0)
-        with self.writes() as session, session.begin():
+        with transaction(self.writes) as session:
             job = claim_job(session, self.worker_id, self.settings.lease_seconds)
             job_id = None if job is None else job.id
         if job_id is None:
@@ -99,7 +100,7 @@ class JobRunner:
     def _keep_lease(self, job_id: int, lost: threading.Event, done: threading.Event) -> None:
         while not done.wait(self.settings.heartbeat_seconds):
             try:
-                with self.writes() as session, session.begin():
+                with transaction(self.writes) as session:
                     held = renew_job(session, self.worker_id, job_id,
                                      self.settings.lease_seconds)
             except Exception:

@@ -11,7 +11,8 @@ from typing import Any
 from sqlalchemy import case, update
 from sqlalchemy.orm import Session, sessionmaker
 
-from service.store import JobRow, utcnow
+from service.store.database import transaction
+from service.store.tables import JobRow, utcnow
 from service.worker.leasing import MAX_JOB_ATTEMPTS
 
 
@@ -23,7 +24,7 @@ def report_progress(
     sessions: sessionmaker[Session], job_id: int, worker_id: str, progress: dict[str, Any]
 ) -> bool:
     """Store the job's progress; False when this worker no longer holds it."""
-    with sessions() as session, session.begin():
+    with transaction(sessions) as session:
         result = session.execute(
             update(JobRow).where(_held(job_id, worker_id)).values(progress=progress)
         )
@@ -32,7 +33,7 @@ def report_progress(
 
 def fail_job(sessions: sessionmaker[Session], job_id: int, worker_id: str, error: str) -> None:
     """The job failed for good: record why."""
-    with sessions() as session, session.begin():
+    with transaction(sessions) as session:
         session.execute(
             update(JobRow)
             .where(_held(job_id, worker_id))
@@ -44,7 +45,7 @@ def fail_job(sessions: sessionmaker[Session], job_id: int, worker_id: str, error
 def requeue_job(sessions: sessionmaker[Session], job_id: int, worker_id: str) -> None:
     """This worker is stopping: hand the job back so another can run it now
     instead of after the lease expires."""
-    with sessions() as session, session.begin():
+    with transaction(sessions) as session:
         session.execute(
             update(JobRow)
             .where(_held(job_id, worker_id))
@@ -58,7 +59,7 @@ def retry_job(sessions: sessionmaker[Session], job_id: int, worker_id: str, erro
     queue the job again with the attempt counted and the error shown; the
     attempt that reaches ``MAX_JOB_ATTEMPTS`` fails the job with it."""
     last = JobRow.attempts >= MAX_JOB_ATTEMPTS
-    with sessions() as session, session.begin():
+    with transaction(sessions) as session:
         session.execute(
             update(JobRow)
             .where(_held(job_id, worker_id))

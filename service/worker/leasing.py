@@ -24,7 +24,7 @@ from sqlalchemy import BigInteger, DateTime, literal, or_, select, update
 from sqlalchemy.dialects import postgresql, sqlite
 from sqlalchemy.orm import Session
 
-from service.store import JobRow, ModelRow, TrainerRow, utcnow
+from service.store.tables import JobRow, ModelRow, TrainerRow, utcnow
 
 # A job whose worker vanished this many times is failed instead of retried:
 # it is likely what brings its workers down.

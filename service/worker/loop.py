@@ -15,7 +15,6 @@ from __future__ import annotations
 
 import logging
 import os
-import signal
 import socket
 import threading
 import time
@@ -27,7 +26,10 @@ from sqlalchemy import exc as sa_exc
 from sqlalchemy.orm import Session, sessionmaker
 
 from engine import EngineError
-from service.db import make_engine, make_sessionmaker
+from service.process import stop_on_signals
+from service.store.database import make_engine, make_sessionmaker, transaction
+from service.store.record_log import decode_json
+from service.versions.writes import Fenced, stop_lineage
 from service.worker.job_runner import JobRunner
 from service.worker.leasing import (
     claim_trainers,
@@ -35,10 +37,8 @@ from service.worker.leasing import (
     release_trainers,
     renew_trainers,
 )
-from service.worker.online import LineageStopped, OnlineLineage
-from service.worker.records import decode_json
+from service.worker.lineage import LineageStopped, OnlineLineage
 from service.worker.settings import WorkerSettings
-from service.worker.versions import Fenced, stop_lineage
 
 log = logging.getLogger("keelson.worker")
 CLAIM_BATCH = 4
@@ -59,22 +59,24 @@ def run_worker(
 
     ``config`` is the service configuration mapping (service/config.py keys;
     the worker's own keys are listed in service/worker/settings.py). Without a
-    ``stop`` event, SIGTERM and SIGINT stop the worker (main thread only).
+    ``stop`` event, SIGTERM and SIGINT stop the worker (main thread only; see
+    service.process). A stop requested before the loop starts, while the
+    process was still loading, ends it at once: nothing was leased, nothing
+    is written, and the exit is a clean one.
     """
     settings = WorkerSettings.from_config(config)
-    own_signals = stop is None and threading.current_thread() is threading.main_thread()
-    stop = stop or threading.Event()
-    previous: dict[int, Any] = {}
-    if own_signals:
-        for signum in (signal.SIGTERM, signal.SIGINT):
-            previous[signum] = signal.signal(signum, lambda *_: stop.set())
+    if stop is None:
+        main_thread = threading.current_thread() is threading.main_thread()
+        stop = stop_on_signals() if main_thread else threading.Event()
+    name = worker_id or default_worker_id()
+    if stop.is_set():
+        log.info("worker %s: stopped while starting; nothing to do", name)
+        return
     engine = make_engine(settings.database_url, json_deserializer=decode_json)
     try:
-        Worker(settings, engine, worker_id or default_worker_id(), stop).run()
+        Worker(settings, engine, name, stop).run()
     finally:
         engine.dispose()
-        for number, handler in previous.items():
-            signal.signal(number, handler)
 
 
 class Worker:
@@ -146,7 +148,7 @@ class Worker:
         return busy
 
     def _heartbeat(self) -> None:
-        with self.writes() as session, session.begin():
+        with transaction(self.writes) as session:
             held = renew_trainers(session, self.worker_id, self.lineages,
                                   self.settings.lease_seconds)
         for model_id in list(self.lineages):
@@ -163,7 +165,7 @@ class Worker:
         limit = self.settings.max_models
         # A few at a time, so workers starting together share the models.
         room = CLAIM_BATCH if limit is None else min(CLAIM_BATCH, limit - len(self.lineages))
-        with self.writes() as session, session.begin():
+        with transaction(self.writes) as session:
             ensure_trainer_rows(session)
             claimed = claim_trainers(session, self.worker_id, self.settings.lease_seconds,
                                      room, exclude=self.lineages)
@@ -187,7 +189,7 @@ class Worker:
             except Exception:
                 log.exception("model %s: final version failed", model_id)
         try:
-            with self.writes() as session, session.begin():
+            with transaction(self.writes) as session:
                 release_trainers(session, self.worker_id, self.lineages)
         except Exception:
             log.exception("worker %s: releasing leases failed (they will expire)",

@@ -24,17 +24,7 @@ from sqlalchemy import func, select
 from sqlalchemy.orm import Session, sessionmaker
 
 from engine import Learner, TrainingCancelled
-from service.store import JobRow, ModelRow, RecordRow, VersionRow
-from service.worker.decide import (
-    ENCODER_KEY,
-    RECORDS_BEFORE_KEY,
-    decide,
-    encoder_of,
-    new_active_score,
-)
-from service.worker.holdout import HoldoutWindow, evaluate, json_metrics
-from service.worker.jobs import report_progress
-from service.worker.records import (
+from service.store.record_log import (
     RecordChunk,
     count_records,
     fetch_chunk,
@@ -43,8 +33,19 @@ from service.worker.records import (
     read_latest_holdout,
     record_columns,
 )
+from service.store.tables import JobRow, ModelRow, RecordRow, VersionRow
+from service.versions.compare import (
+    ENCODER_KEY,
+    RECORDS_BEFORE_KEY,
+    encoder_of,
+    measure_active,
+    new_active_score,
+)
+from service.versions.decide import PromotionContext, decide
+from service.versions.holdout import HoldoutWindow, evaluate, json_metrics
+from service.versions.writes import NewVersion, write_retrain_version
+from service.worker.jobs import report_progress
 from service.worker.settings import WorkerSettings
-from service.worker.versions import NewVersion, write_retrain_version
 
 log = logging.getLogger("keelson.worker")
 
@@ -104,8 +105,10 @@ def run_retrain(
         "holdout_window": settings.holdout_window,
         "fit": _plain(report),
     }
-    promotion = decide(writes, model_id, spec, metrics, window, encoder, cursor,
-                       settings.holdout_window, new_active_score(spec), holdout_rows=rows)
+    active_id, active_metrics = measure_active(
+        writes, model_id, spec, window, encoder, cursor, settings.holdout_window,
+        new_active_score(spec), holdout_rows=rows)
+    promotion = decide(PromotionContext(spec, metrics, active_id, active_metrics))
     # The version has learned from every train record up to its cursor.
     records_before = n_train - learner.records_seen
     snapshot = learner.to_bytes(extra={"cursor": cursor, ENCODER_KEY: encoder,

@@ -31,9 +31,9 @@ import psycopg
 from sqlalchemy import create_engine, text
 from sqlalchemy.engine import make_url
 
-from service import create_app
-from service.db import upgrade_database
-from service.extensions import get_database
+from service.store.schema import upgrade_database
+from service.web.app import create_app
+from service.web.extensions import get_database
 from tests.service.helpers import ADMIN_TOKEN, ApiClient, create_model, record
 
 BATCH = 1_000

@@ -19,8 +19,8 @@ import time
 from pathlib import Path
 from typing import Any
 
-from service import create_app
-from service.db import upgrade_database
+from service.store.schema import upgrade_database
+from service.web.app import create_app
 from tests.service.helpers import ADMIN_TOKEN, ApiClient, create_model
 from tests.service.predictions_factory import (
     add_version,

@@ -11,7 +11,7 @@ from pathlib import Path
 
 import pytest
 
-from service.bench.http import parse_wrk
+from service.tools.bench.http import parse_wrk
 
 CLEAN = """Running 2s test @ http://127.0.0.1:8856/
   1 threads and 2 connections
@@ -69,7 +69,7 @@ def test_without_wrk_the_command_says_what_to_install(monkeypatch: pytest.Monkey
                                                       tmp_path: Path) -> None:
     from click.testing import CliRunner
 
-    from service.cli import cli
+    from service.tools.cli import cli
 
     monkeypatch.setenv("PATH", str(tmp_path))  # an empty folder: no wrk on it
     result = CliRunner().invoke(cli, ["bench", "http", "--json"], prog_name="keelson")

@@ -13,8 +13,8 @@ from pathlib import Path
 from click.testing import CliRunner
 from sqlalchemy import create_engine, inspect, text
 
-from service.app import create_app
-from service.cli import cli
+from service.tools.cli import cli
+from service.web.app import create_app
 
 
 def _run(database_url: str, *args: str) -> tuple[int, str, str]:
@@ -107,7 +107,7 @@ def test_upgrades_started_together_on_postgresql_take_turns(postgres_url: str) -
     empty = make_url(postgres_url).set(database=name).render_as_string(hide_password=False)
     try:
         env = {"PATH": "/usr/bin:/bin", "KEELSON_DATABASE_URL": empty}
-        runs = [subprocess.Popen([sys.executable, "-m", "service.cli", "db", "upgrade"],
+        runs = [subprocess.Popen([sys.executable, "-m", "service", "db", "upgrade"],
                                  env=env, stdout=subprocess.PIPE, stderr=subprocess.STDOUT,
                                  text=True) for _ in range(4)]
         outputs = [run.communicate(timeout=120)[0] for run in runs]

@@ -12,7 +12,7 @@ import click
 import pytest
 from click.testing import CliRunner
 
-from service.cli import cli
+from service.tools.cli import cli
 
 
 def _all_commands(group: click.Group, prefix: tuple[str, ...] = ()) -> list[tuple[str, ...]]:
@@ -57,7 +57,7 @@ def test_the_options_of_the_contract_exist(option: str, command: str) -> None:
 
 
 def test_the_installed_console_script_runs_the_same_command() -> None:
-    done = subprocess.run([sys.executable, "-m", "service.cli", "--help"],
+    done = subprocess.run([sys.executable, "-m", "service", "--help"],
                           capture_output=True, text=True, timeout=60)
     assert done.returncode == 0
     assert "Usage:" in done.stdout

@@ -20,8 +20,8 @@ from pathlib import Path
 import pytest
 from click.testing import CliRunner
 
-from service.cli import cli
-from service.demo_data import model_spec
+from service.tools.cli import cli
+from service.tools.demo.data import model_spec
 from tests.product.servers import ROOT, free_port
 
 FIELDS = [f["name"] for f in model_spec()["features"]]
@@ -75,7 +75,7 @@ def test_demo_serve_prints_where_and_how_then_serves_and_stops_cleanly(
     # Files, not pipes: a pipe nobody reads fills up and blocks the server's logging.
     with out_path.open("w") as out, err_path.open("w") as err:
         process = subprocess.Popen(
-            [sys.executable, "-m", "service.cli", "demo", "--records", "300", "--no-retrain",
+            [sys.executable, "-m", "service", "demo", "--records", "300", "--no-retrain",
              "--serve", "--port", str(port)],
             cwd=ROOT, env=env, stdout=out, stderr=err, text=True, process_group=0)
     try:

@@ -59,7 +59,7 @@ def test_the_clone_collects_the_whole_suite_without_errors(clone: Path) -> None:
 
 def test_the_clone_runs_the_demo_on_embedded_sqlite(clone: Path, tmp_path: Path) -> None:
     env = _env(clone) | {"KEELSON_DATABASE_URL": f"sqlite:///{tmp_path}/demo.db"}
-    done = subprocess.run([sys.executable, "-m", "service.cli", "demo", "--records", "300",
+    done = subprocess.run([sys.executable, "-m", "service", "demo", "--records", "300",
                            "--no-retrain"], cwd=clone, env=env, capture_output=True,
                           text=True, timeout=300, check=False)
     assert done.returncode == 0, done.stdout[-3000:] + done.stderr[-3000:]

@@ -14,8 +14,8 @@ from click.testing import CliRunner
 from sklearn.datasets import load_iris
 from sqlalchemy import create_engine, text
 
-from service.app import create_app
-from service.cli import cli
+from service.tools.cli import cli
+from service.web.app import create_app
 
 ADMIN = "test-admin-token"
 FEATURES = ["sepal_length", "sepal_width", "petal_length", "petal_width"]

@@ -19,8 +19,8 @@ from pathlib import Path
 import pytest
 from prometheus_client.parser import text_string_to_metric_families
 
-from service.app import create_app
-from service.observability import RequestIdFilter, json_formatter
+from service.web.app import create_app
+from service.web.observability import RequestIdFilter, json_formatter
 from tests.product.servers import free_port, running, wait_until_answering
 
 REQUESTS_METRIC = "keelson_http_requests"  # the parser drops the _total suffix
@@ -47,7 +47,7 @@ def test_request_counters_add_up_across_two_gunicorn_workers(
            "KEELSON_PORT": str(port), "KEELSON_WEB_WORKERS": "2", "KEELSON_THREADS": "1",
            "PROMETHEUS_MULTIPROC_DIR": str(metrics_dir), "KEELSON_ACCESS_LOG": "0"}
     base = f"http://127.0.0.1:{port}"
-    command = [sys.executable, "-m", "gunicorn", "--config", "python:service.gunicorn_conf"]
+    command = [sys.executable, "-m", "gunicorn", "--config", "python:service.web.server"]
     with running(command, env, tmp_path / "gunicorn.log") as server:
         wait_until_answering(f"{base}/healthz", server)
         before = _request_count(_get(f"{base}/metrics"), "/healthz")

@@ -33,7 +33,7 @@ def _start(tmp_path: Path, port: int, *args: str) -> subprocess.Popen[bytes]:
            "KEELSON_ADMIN_TOKEN": ADMIN, "KEELSON_WEB_WORKERS": "1",
            "KEELSON_WORKER_IDLE_SECONDS": "0.5", "PROMETHEUS_MULTIPROC_DIR": str(tmp_path / "m")}
     log = (tmp_path / "serve.log").open("wb")
-    return subprocess.Popen([sys.executable, "-m", "service.cli", "serve", "--port", str(port),
+    return subprocess.Popen([sys.executable, "-m", "service", "serve", "--port", str(port),
                              *args], cwd=ROOT, env=env, stdout=log, stderr=subprocess.STDOUT,
                             process_group=0)
 

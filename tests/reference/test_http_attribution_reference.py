@@ -26,8 +26,8 @@ import numpy as np
 import pytest
 from flask import Flask
 
-from service import create_app
-from service.extensions import get_database
+from service.web.app import create_app
+from service.web.extensions import get_database
 from tests.service.helpers import ADMIN_TOKEN, ApiClient, create_model
 from tests.service.predictions_factory import add_version, stored_spec, train_learner
 

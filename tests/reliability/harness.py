@@ -133,9 +133,9 @@ def api_server(database_url: str, tmp_path: Path, workers: int = 2, with_worker:
     env = server_env(database_url, tmp_path, KEELSON_HOST="127.0.0.1", KEELSON_PORT=str(port),
                      KEELSON_WEB_WORKERS=str(workers), **extra)
     if gunicorn_only:
-        command = [sys.executable, "-m", "gunicorn", "--config", "python:service.gunicorn_conf"]
+        command = [sys.executable, "-m", "gunicorn", "--config", "python:service.web.server"]
     else:
-        command = [sys.executable, "-m", "service.cli", "serve", "--host", "127.0.0.1",
+        command = [sys.executable, "-m", "service", "serve", "--host", "127.0.0.1",
                    "--port", str(port), "--workers", str(workers)]
         if not with_worker:
             command.append("--no-worker")

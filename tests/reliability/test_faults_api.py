@@ -18,7 +18,7 @@ from typing import Any
 import pytest
 from sqlalchemy import create_engine, func, select
 
-from service.store import RecordRow
+from service.store.tables import RecordRow
 from tests.reliability.harness import ADMIN, Client, api_server, stop_group
 
 pytestmark = pytest.mark.slow

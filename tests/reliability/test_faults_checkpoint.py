@@ -30,7 +30,7 @@ from sqlalchemy import text
 from sqlalchemy.engine import make_url
 
 from engine import Learner
-from service.extensions import Database
+from service.store.database import Database
 from tests.worker.helpers import (
     assert_one_chain,
     assert_same_state,

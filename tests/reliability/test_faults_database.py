@@ -25,7 +25,7 @@ import pytest
 from sqlalchemy import create_engine, func, select, text
 from sqlalchemy.engine import make_url
 
-from service.store import RecordRow
+from service.store.tables import RecordRow
 from tests.reliability.harness import Client, TcpProxy, api_server, wait_for, worker_process
 
 pytestmark = pytest.mark.slow

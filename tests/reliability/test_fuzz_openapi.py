@@ -25,8 +25,8 @@ import schemathesis
 from flask import Flask
 from hypothesis import HealthCheck, given, settings
 
-from service import create_app
-from service.extensions import get_database
+from service.web.app import create_app
+from service.web.extensions import get_database
 from tests.service.helpers import ADMIN_TOKEN, ApiClient, create_model, record
 from tests.service.predictions_factory import add_version, pump_rows, pump_rule, train_learner
 

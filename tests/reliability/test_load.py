@@ -25,7 +25,7 @@ from typing import Any
 import pytest
 from sqlalchemy import create_engine, func, select
 
-from service.store import RecordRow, TrainerRow, VersionRow
+from service.store.tables import RecordRow, TrainerRow, VersionRow
 from tests.reliability.harness import Client, api_server, wait_for
 
 pytestmark = pytest.mark.slow

@@ -27,8 +27,8 @@ from hypothesis import HealthCheck, assume, given, settings
 from hypothesis import strategies as st
 from sqlalchemy import select
 
-from service.extensions import get_database
-from service.store import ModelRow, RecordRow
+from service.store.tables import ModelRow, RecordRow
+from service.web.extensions import get_database
 from tests.service.conftest import build_app
 from tests.service.helpers import ADMIN_TOKEN
 

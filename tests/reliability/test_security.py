@@ -35,11 +35,11 @@ from click.testing import CliRunner
 from flask import Flask
 from sqlalchemy import func, select
 
-from service import auth
-from service.app import SECURITY_HEADERS
-from service.cli import cli as keelson
-from service.extensions import get_database
-from service.store import ModelRow, RecordRow, TrainerRow, VersionRow
+from service.store.tables import ModelRow, RecordRow, TrainerRow, VersionRow
+from service.tools.cli import cli as keelson
+from service.web import auth
+from service.web.app import SECURITY_HEADERS
+from service.web.extensions import get_database
 from tests.reliability.harness import ADMIN, Client, api_server
 from tests.service.conftest import build_app
 from tests.service.helpers import ADMIN_TOKEN, ApiClient, create_model, record

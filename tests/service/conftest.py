@@ -8,8 +8,8 @@ from collections.abc import Iterator
 import pytest
 from flask import Flask
 
-from service import create_app
-from service.extensions import get_database
+from service.web.app import create_app
+from service.web.extensions import get_database
 from tests.service.helpers import ADMIN_TOKEN, ApiClient
 
 

@@ -10,9 +10,9 @@ from typing import Any
 from flask import Flask
 from sqlalchemy import func, select
 
-from service.extensions import get_database
-from service.store import ModelRow, RecordRow, VersionRow
-from service.tokens import create_token
+from service.store.tables import ModelRow, RecordRow, VersionRow
+from service.usecases.tokens import create_token
+from service.web.extensions import get_database
 
 ADMIN_TOKEN = "test-admin-token"
 PROBLEM = "application/problem+json"
@@ -67,8 +67,7 @@ class ApiClient:
         return json.loads(response.data)
 
     def token(self, *scopes: str, name: str = "test") -> str:
-        with get_database(self.app).write() as session:
-            _row, plaintext = create_token(session, name, scopes)
+        _row, plaintext = create_token(get_database(self.app), name, scopes)
         return plaintext
 
 

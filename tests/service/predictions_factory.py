@@ -11,8 +11,8 @@ from flask import Flask
 from sqlalchemy import select
 
 from engine import Learner
-from service.extensions import get_database
-from service.store import ModelRow, VersionRow
+from service.store.tables import ModelRow, VersionRow
+from service.web.extensions import get_database
 
 Rule = Callable[[Mapping[str, Any]], Any]
 

@@ -5,8 +5,8 @@ from __future__ import annotations
 from flask import Flask
 from sqlalchemy import select
 
-from service.extensions import get_database
-from service.store import JobRow
+from service.store.tables import JobRow
+from service.web.extensions import get_database
 from tests.service.helpers import ApiClient, add_version, create_model
 
 RETRAIN = "/v1/models/pump-risk/retrain"

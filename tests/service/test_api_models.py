@@ -9,8 +9,8 @@ import pytest
 from flask import Flask
 from sqlalchemy import select
 
-from service.extensions import get_database
-from service.store import ModelRow, TrainerRow
+from service.store.tables import ModelRow, TrainerRow
+from service.web.extensions import get_database
 from tests.service.helpers import ApiClient, create_model, model_row, model_spec
 
 FULL_TRAINING = {
@@ -173,7 +173,7 @@ def test_an_unknown_model_is_not_found(api: ApiClient) -> None:
 
 def test_feature_names_cannot_shadow_prediction_query_parameters() -> None:
     # GET predictions reads features and options from one query string.
-    from service.schemas import RESERVED_FIELD_NAMES
-    from service.schemas.predictions import PredictionQuerySchema
+    from service.web.schemas.predictions import PredictionQuerySchema
+    from service.web.schemas.spec import RESERVED_FIELD_NAMES
 
     assert set(PredictionQuerySchema().fields) <= RESERVED_FIELD_NAMES

@@ -9,8 +9,8 @@ import pytest
 from flask import Flask
 from openapi_spec_validator import validate
 
-from service.auth import public
-from service.extensions import get_database
+from service.web.auth import public
+from service.web.extensions import get_database
 from tests.service.conftest import build_app
 from tests.service.helpers import ApiClient, create_model
 

@@ -11,10 +11,10 @@ from flask import Flask
 from sqlalchemy import select
 
 from service.errors import InvalidInputError, TooLargeError
-from service.extensions import get_database
-from service.store import RecordRow, utcnow
+from service.store.tables import RecordRow, utcnow
 from service.usecases.common import as_utc
 from service.usecases.records import ingest_records, split_of
+from service.web.extensions import get_database
 from tests.service.helpers import ApiClient, count_records, create_model, model_row, record
 
 RECORDS = "/v1/models/pump-risk/records"

@@ -7,8 +7,8 @@ from typing import Any
 from flask import Flask
 from sqlalchemy import select
 
-from service.extensions import get_database
-from service.store import ModelRow, TrainerRow, VersionRow
+from service.store.tables import ModelRow, TrainerRow, VersionRow
+from service.web.extensions import get_database
 from tests.service.helpers import ApiClient, add_version, create_model, model_row
 
 VERSIONS = "/v1/models/pump-risk/versions"

@@ -10,11 +10,11 @@ import pytest
 from flask import Flask
 from sqlalchemy import select
 
-from service.auth import PUBLIC, SCOPES, declared_scope, hash_token
 from service.errors import InvalidInputError, NotFoundError
-from service.extensions import get_database
-from service.store import TokenRow
-from service.tokens import create_token, list_tokens, revoke_token
+from service.store.tables import TokenRow
+from service.usecases.tokens import create_token, list_tokens, revoke_token
+from service.web.auth import PUBLIC, SCOPES, declared_scope, hash_token
+from service.web.extensions import get_database
 from tests.service.conftest import build_app
 from tests.service.helpers import ApiClient, create_model
 
@@ -103,8 +103,7 @@ def test_a_malformed_authorization_header_is_401(matrix_api: ApiClient, header: 
 
 
 def test_tokens_are_stored_only_as_their_sha256(app: Flask) -> None:
-    with get_database(app).write() as session:
-        row, plaintext = create_token(session, "ingester", ["ingest"])
+    row, plaintext = create_token(get_database(app), "ingester", ["ingest"])
     with get_database(app).read() as session:
         stored = session.scalars(select(TokenRow)).one()
     # FIPS 180-4 SHA-256, as hashlib computes it.
@@ -119,27 +118,26 @@ def test_a_revoked_token_is_refused(sqlite_url: str) -> None:
     api = ApiClient(app)
     token = api.token("predict", name="reader")
     api.request("GET", "/v1/models", 200, token=token)
-    with get_database(app).write() as session:
-        revoked = revoke_token(session, "reader")
+    revoked = revoke_token(get_database(app), "reader")
     assert [r.name for r in revoked] == ["reader"] and revoked[0].revoked_at is not None
     body = api.request("GET", "/v1/models", 401, token=token)
     assert body["detail"] == "The bearer token is unknown or revoked."
 
 
 def test_token_use_cases_list_revoke_by_id_and_refuse_nonsense(app: Flask) -> None:
-    with get_database(app).write() as session:
-        first, _ = create_token(session, "a", ["predict", "ingest", "predict"])
-        create_token(session, "b", ["admin"])
-        assert first.scopes == ["ingest", "predict"]
-        assert [t.name for t in list_tokens(session)] == ["a", "b"]
-        assert [t.id for t in revoke_token(session, first.id)] == [first.id]
-        with pytest.raises(NotFoundError):
-            revoke_token(session, first.id)
-        with pytest.raises(InvalidInputError) as bad:
-            create_token(session, "", ["root"])
-        assert set(bad.value.errors or {}) == {"name", "scopes"}
-        with pytest.raises(InvalidInputError):
-            create_token(session, "none", [])
+    db = get_database(app)
+    first, _ = create_token(db, "a", ["predict", "ingest", "predict"])
+    create_token(db, "b", ["admin"])
+    assert first.scopes == ["ingest", "predict"]
+    assert [t.name for t in list_tokens(db)] == ["a", "b"]
+    assert [t.id for t in revoke_token(db, first.id)] == [first.id]
+    with pytest.raises(NotFoundError):
+        revoke_token(db, first.id)
+    with pytest.raises(InvalidInputError) as bad:
+        create_token(db, "", ["root"])
+    assert set(bad.value.errors or {}) == {"name", "scopes"}
+    with pytest.raises(InvalidInputError):
+        create_token(db, "none", [])
 
 
 def test_the_environment_admin_token_holds_every_scope(sqlite_url: str) -> None:

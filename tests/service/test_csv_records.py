@@ -4,8 +4,8 @@ from __future__ import annotations
 
 import pytest
 
-from service.csv_records import parse_csv_records
 from service.errors import InvalidInputError, MalformedError, TooLargeError
+from service.web.csv_records import parse_csv_records
 from tests.service.helpers import model_spec
 
 SPEC = {**model_spec(), "classes": ["ok", "failed"]}

@@ -1,7 +1,7 @@
 """gunicorn settings: access-log fields built only when the line is written,
 and a loaded worker's objects frozen out of the collector's full passes.
 
-Each case runs in a child process: importing service.gunicorn_conf sets the
+Each case runs in a child process: importing service.web.server sets the
 metrics folder in the environment and re-chooses prometheus_client's value
 store, which must not leak into the other tests of this process.
 """
@@ -19,7 +19,7 @@ import pytest
 CHILD = r"""
 import json, logging, sys
 from gunicorn.config import Config
-import service.gunicorn_conf as conf
+import service.web.server as conf
 
 cfg = Config()
 cfg.set("logconfig_dict", conf.logconfig_dict)
@@ -68,8 +68,8 @@ def test_an_enabled_access_log_writes_one_json_line_with_fields(tmp_path: Path) 
 
 
 def test_a_loaded_worker_freezes_what_is_alive(tmp_path: Path) -> None:
-    child = ("import gc, service.gunicorn_conf as conf\n"
-             "from service.app import create_app\n"
+    child = ("import gc, service.web.server as conf\n"
+             "from service.web.app import create_app\n"
              f"app = create_app({{'KEELSON_DATABASE_URL': 'sqlite:///{tmp_path}/k.db'}})\n"
              "conf.post_worker_init(None)\n"
              "print(gc.get_freeze_count(), len(gc.get_objects()))\n")
@@ -86,7 +86,7 @@ def test_an_address_another_server_listens_on_is_refused(tmp_path: Path) -> None
     # With SO_REUSEPORT a second server could otherwise share the port silently.
     child = """
 import socket
-from service.gunicorn_conf import refuse_a_taken_address
+from service.web.server import refuse_a_taken_address
 
 with socket.socket() as listener:
     listener.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEPORT, 1)

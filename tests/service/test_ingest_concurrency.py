@@ -9,9 +9,9 @@ import threading
 from flask import Flask
 from sqlalchemy import select
 
-from service.extensions import get_database
-from service.store import ModelRow, RecordRow
+from service.store.tables import ModelRow, RecordRow
 from service.usecases.records import ingest_records
+from service.web.extensions import get_database
 from tests.service.helpers import ApiClient, count_records, create_model, model_row, record
 
 WRITERS = 4

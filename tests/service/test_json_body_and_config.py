@@ -10,7 +10,7 @@ from hypothesis import strategies as st
 
 from service.config import DEFAULTS, ConfigError, load_config
 from service.errors import InvalidInputError, MalformedError, UnsupportedMediaError
-from service.json_body import MAX_DEPTH, loads_strict, nesting_depth_exceeds, require_json
+from service.web.bodies import MAX_DEPTH, loads_strict, nesting_depth_exceeds, require_json
 
 
 def test_plain_json_parses_as_the_standard_library_does() -> None:

@@ -16,8 +16,8 @@ from pathlib import Path
 
 from sqlalchemy import create_engine, select, text
 
-from service.db import upgrade_database
-from service.store import RecordRow
+from service.store.schema import upgrade_database
+from service.store.tables import RecordRow
 
 SENT = "4.041736865667259e-301"
 

@@ -20,9 +20,9 @@ import pytest
 from sqlalchemy import event
 
 from engine import Learner
-from service.api.predictions import version_cache
-from service.extensions import get_database
-from service.schemas.predictions import PredictionBatchSchema, PredictionSchema
+from service.web.extensions import get_database
+from service.web.schemas.predictions import PredictionBatchSchema, PredictionSchema
+from service.web.views.predictions import version_cache
 from tests.service.conftest import build_app
 from tests.service.helpers import ApiClient, create_model
 from tests.service.predictions_factory import (
@@ -267,7 +267,7 @@ def test_a_corrupt_snapshot_is_a_503_problem_and_never_runs_code(
             return (Path.touch, (marker,))
 
     add_version(api.app, "pump-risk", pickle.dumps(Payload()))
-    with caplog.at_level(logging.ERROR, logger="service.version_cache"):
+    with caplog.at_level(logging.ERROR, logger="service.versions.cache"):
         body = api.request("GET", f"{PATH}?{PUMP_QUERY}", 503)
     assert body == {
         "type": "about:blank", "title": "Service Unavailable", "status": 503,

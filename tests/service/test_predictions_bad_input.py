@@ -12,10 +12,10 @@ import pytest
 from flask import Flask
 from sqlalchemy import select
 
-from service.extensions import get_database
-from service.json_body import MAX_DEPTH
-from service.schemas.fields import NON_FINITE
-from service.store import ModelRow, VersionRow
+from service.store.tables import ModelRow, VersionRow
+from service.web.bodies import MAX_DEPTH
+from service.web.extensions import get_database
+from service.web.schemas.fields import NON_FINITE
 from tests.service.helpers import ApiClient, create_model
 from tests.service.predictions_factory import (
     add_version,

@@ -9,9 +9,9 @@ from collections.abc import Iterator
 import pytest
 from sqlalchemy import Engine, event, update
 
-from service.db import make_engine, make_sessionmaker
-from service.store import ModelRow, VersionRow
-from service.version_cache import (
+from service.store.database import make_engine, make_sessionmaker
+from service.store.tables import ModelRow, VersionRow
+from service.versions.cache import (
     LRU,
     ModelNotFound,
     NoActiveVersion,

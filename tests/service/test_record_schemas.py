@@ -12,8 +12,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from marshmallow import ValidationError
 
-from service.schemas import feature_schema, record_schema
-from service.schemas.records import fast_record_loader
+from service.web.schemas.records import fast_record_loader, feature_schema, record_schema
 
 SPEC: dict[str, Any] = {
     "task": "binary",

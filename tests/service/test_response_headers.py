@@ -11,8 +11,8 @@ from pathlib import Path
 
 from flask import Response
 
-from service.app import SECURITY_HEADERS
-from service.auth import public
+from service.web.app import SECURITY_HEADERS
+from service.web.auth import public
 from tests.service.conftest import build_app
 
 
@@ -50,7 +50,7 @@ def test_a_view_that_sets_a_security_header_keeps_its_own_value(tmp_path: Path) 
 
 
 def test_the_request_id_is_the_same_in_the_answer_and_the_logs(tmp_path: Path) -> None:
-    from service.observability import current_request_id
+    from service.web.observability import current_request_id
 
     app = build_app(f"sqlite:///{tmp_path}/k.db")
     seen: list[str | None] = []

@@ -6,7 +6,7 @@ from typing import Any
 
 from sqlalchemy.orm import Session, sessionmaker
 
-from service.store import JobRow, ModelRow, TrainerRow, VersionRow
+from service.store.tables import JobRow, ModelRow, TrainerRow, VersionRow
 from service.worker.leasing import claim_job
 
 

@@ -17,9 +17,8 @@ from typing import Any
 from sqlalchemy import select
 
 from engine import Learner
-from service.db import make_engine, make_sessionmaker
-from service.extensions import Database
-from service.store import ModelRow, RecordRow, TrainerRow, VersionRow
+from service.store.database import Database, make_engine, make_sessionmaker
+from service.store.tables import ModelRow, RecordRow, TrainerRow, VersionRow
 from service.usecases.models import create_model
 from service.usecases.records import ingest_records
 from service.worker import run_worker

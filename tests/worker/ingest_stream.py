@@ -8,7 +8,7 @@ import sys
 
 import numpy as np
 
-from service.db import make_engine, make_sessionmaker
+from service.store.database import make_engine, make_sessionmaker
 from service.usecases.records import ingest_records
 
 FIELDS = ["a", "b", "c", "d"]

@@ -4,7 +4,7 @@ CI machine says nothing)."""
 
 from __future__ import annotations
 
-from service.bench.worker import run_worker_bench
+from service.tools.bench.worker import run_worker_bench
 
 
 def test_the_worker_benchmark_measures_online_and_retrain_on_a_small_stream(

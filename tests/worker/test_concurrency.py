@@ -4,7 +4,7 @@ Sequence numbers come from one PostgreSQL sequence shared by all models, so
 under concurrent ingestion a lower number can commit after a higher one. The
 chosen mechanism: ingest locks the model's row before it takes numbers, so
 one model's records commit in sequence order (service/usecases/records.py),
-and the worker reads "after the cursor" (service/worker/records.py). Here six
+and the worker reads "after the cursor" (service/store/record_log.py). Here six
 processes ingest into two models at once while a worker consumes; afterwards
 each model's weights must equal, bit for bit, one pass of the engine over its
 train records in sequence order: a skipped or a repeated record would change

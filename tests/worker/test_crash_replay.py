@@ -26,7 +26,7 @@ import numpy as np
 from sqlalchemy import select
 
 from engine import Learner
-from service.store import RecordRow
+from service.store.tables import RecordRow
 from tests.worker.helpers import (
     assert_one_chain,
     assert_same_state,

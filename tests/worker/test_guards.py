@@ -7,8 +7,8 @@ import time
 import numpy as np
 
 from engine import Learner
+from service.versions.writes import stop_lineage
 from service.worker.leasing import claim_trainers
-from service.worker.versions import stop_lineage
 from tests.worker.helpers import (
     database,
     model_row,

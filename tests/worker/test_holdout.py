@@ -5,7 +5,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from service.worker.holdout import HoldoutWindow
+from service.versions.holdout import HoldoutWindow
 
 
 def test_the_window_holds_the_latest_rows_in_sequence_order() -> None:

@@ -12,8 +12,8 @@ import datetime as dt
 import pytest
 from sqlalchemy import select, update
 
-from service.db import make_engine, make_sessionmaker
-from service.store import JobRow, ModelRow, TrainerRow, utcnow
+from service.store.database import make_engine, make_sessionmaker
+from service.store.tables import JobRow, ModelRow, TrainerRow, utcnow
 from service.worker.leasing import (
     MAX_JOB_ATTEMPTS,
     claim_job,

@@ -8,7 +8,7 @@ from sklearn.metrics import accuracy_score, log_loss
 from sqlalchemy import select
 
 from engine import Learner
-from service.store import RecordRow
+from service.store.tables import RecordRow
 from tests.worker.helpers import (
     caught_up,
     database,

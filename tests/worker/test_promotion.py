@@ -8,9 +8,10 @@ from __future__ import annotations
 
 from sqlalchemy import select
 
-from service.db import make_engine, make_sessionmaker
-from service.promotion import RELATIVE_TOLERANCE, promote, should_promote
-from service.store import ModelRow, TrainerRow, VersionRow
+from service.store.database import make_engine, make_sessionmaker
+from service.store.tables import ModelRow, TrainerRow, VersionRow
+from service.versions.policy import RELATIVE_TOLERANCE, should_promote
+from service.versions.promote import promote
 from tests.worker.factories import create_model, create_version
 
 BINARY = {"task": "binary"}

@@ -11,9 +11,9 @@ import numpy as np
 import pytest
 
 from engine import InvalidInputError, Learner
-from service.db import make_engine, make_sessionmaker
-from service.store import RecordRow
-from service.worker.records import decode_column, decode_json, iter_chunks, read_after
+from service.store.database import make_engine, make_sessionmaker
+from service.store.record_log import decode_column, decode_json, iter_chunks, read_after
+from service.store.tables import RecordRow
 from tests.worker.factories import create_model
 
 # Values whose text round trip is easy to get wrong: 17 significant digits,

@@ -21,8 +21,8 @@ import pytest
 from sklearn.datasets import load_breast_cancer, load_iris
 from sqlalchemy import select
 
-from service.app import create_app
-from service.store import RecordRow
+from service.store.tables import RecordRow
+from service.web.app import create_app
 from tests.worker.helpers import database, wait_until, worker_thread
 
 TOKEN = "reference-admin-token"

@@ -10,7 +10,7 @@ import pytest
 from sqlalchemy import func, select
 
 from engine import Learner
-from service.store import RecordRow
+from service.store.tables import RecordRow
 from service.usecases.jobs import get_job, request_retrain
 from service.usecases.versions import list_versions, promote_version
 from service.worker import retrain as retrain_module

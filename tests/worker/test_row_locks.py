@@ -17,10 +17,10 @@ from typing import Any
 
 import pytest
 
-from service.db import make_engine, make_sessionmaker
-from service.promotion import lock_model
+from service.store.database import make_engine, make_sessionmaker
 from service.usecases.common import find_model
-from service.worker.versions import NewVersion, lock_trainer, write_retrain_version
+from service.versions.promote import lock_model
+from service.versions.writes import NewVersion, lock_trainer, write_retrain_version
 from tests.worker.factories import claimed_retrain
 
 

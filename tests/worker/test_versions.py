@@ -6,18 +6,18 @@ from __future__ import annotations
 import pytest
 from sqlalchemy import select
 
-from service.db import make_engine, make_sessionmaker
-from service.store import JobRow, ModelRow, TrainerRow, VersionRow
-from service.worker.leasing import claim_trainers
-from service.worker.versions import (
+from service.store.database import make_engine, make_sessionmaker
+from service.store.tables import JobRow, ModelRow, TrainerRow, VersionRow
+from service.versions.decide import Promotion
+from service.versions.writes import (
     Fenced,
     NewVersion,
-    Promotion,
     advance_cursor,
     stop_lineage,
     write_online_version,
     write_retrain_version,
 )
+from service.worker.leasing import claim_trainers
 from tests.worker.factories import claimed_retrain, create_model
 
 

@@ -1,0 +1,75 @@
+"""Use cases for bearer tokens: create (shown once), list, revoke.
+
+Only the SHA-256 hash of a token is stored; the plaintext exists in the return
+value of ``create_token`` and nowhere else. Each function runs in its own
+transaction on the database it is given.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import secrets
+from collections.abc import Iterable
+
+from sqlalchemy import select
+
+from service.errors import InvalidInputError, NotFoundError
+from service.store.database import Database, transaction
+from service.store.tables import TokenRow, utcnow
+
+SCOPES = ("ingest", "predict", "admin")  # admin implies the others
+TOKEN_BYTES = 32  # 256 bits of randomness: guessing is not an attack
+MAX_NAME_LENGTH = 100
+
+
+
+def hash_token(plaintext: str) -> str:
+    """What is stored of a token: its SHA-256, hex."""
+    return hashlib.sha256(plaintext.encode("utf-8")).hexdigest()
+
+
+def create_token(db: Database, name: str, scopes: Iterable[str]) -> tuple[TokenRow, str]:
+    """Store a new token with ``scopes``; returns its row and the plaintext."""
+    wanted = sorted(set(scopes))
+    errors: dict[str, list[str]] = {}
+    if not name or len(name) > MAX_NAME_LENGTH:
+        errors["name"] = [f"A name of 1 to {MAX_NAME_LENGTH} characters is required."]
+    if not wanted:
+        errors["scopes"] = ["At least one scope is required."]
+    unknown = [s for s in wanted if s not in SCOPES]
+    if unknown:
+        errors["scopes"] = [f"Unknown scope {s!r}; choose from {', '.join(SCOPES)}."
+                            for s in unknown]
+    if errors:
+        raise InvalidInputError("The token request is invalid.", errors=errors)
+    plaintext = secrets.token_urlsafe(TOKEN_BYTES)
+    row = TokenRow(name=name, token_hash=hash_token(plaintext), scopes=wanted)
+    with transaction(db.write) as session:
+        session.add(row)
+    return row, plaintext
+
+
+def list_tokens(db: Database) -> list[TokenRow]:
+    """Every token, revoked ones included, oldest first."""
+    with db.read() as session:
+        return list(session.scalars(select(TokenRow).order_by(TokenRow.id)))
+
+
+def revoke_token(db: Database, id_or_name: int | str) -> list[TokenRow]:
+    """Revoke the token with this id, or every live token with this name.
+
+    Returns the revoked rows; raises NotFoundError when nothing matched.
+    """
+    query = select(TokenRow).where(TokenRow.revoked_at.is_(None))
+    if isinstance(id_or_name, int) or str(id_or_name).isdigit():
+        query = query.where(TokenRow.id == int(id_or_name))
+    else:
+        query = query.where(TokenRow.name == id_or_name)
+    with transaction(db.write) as session:
+        rows = list(session.scalars(query))
+        if not rows:
+            raise NotFoundError(f"No live token matches {id_or_name!r}.")
+        now = utcnow()
+        for row in rows:
+            row.revoked_at = now
+    return rows

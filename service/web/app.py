@@ -1,0 +1,149 @@
+"""The app factory: configuration, database, auth, error envelope, blueprints."""
+
+from __future__ import annotations
+
+import copy
+import re
+from collections.abc import Mapping
+from typing import Any
+
+import flask_smorest
+from flask import Flask
+from flask_smorest.spec.plugins import integerconverter2paramschema
+from werkzeug.routing import IntegerConverter
+
+from service.config import load_config
+from service.web import auth, observability, problems
+from service.web.extensions import init_database
+from service.web.schemas.views import ProblemSchema
+from service.web.views import jobs, models, ops, predictions, records, versions
+
+# Registered in this order; a blueprint is one resource (service/web/views/*.py).
+BLUEPRINTS = [
+    ops.blueprint,
+    models.blueprint,
+    records.blueprint,
+    versions.blueprint,
+    predictions.blueprint,
+    jobs.blueprint,
+]
+
+SECURITY_HEADERS = {
+    "X-Content-Type-Options": "nosniff",
+    "X-Frame-Options": "DENY",
+    "Referrer-Policy": "no-referrer",
+    "Content-Security-Policy": "default-src 'none'; frame-ancestors 'none'",
+    "Cache-Control": "no-store",
+}
+# The largest id or number a path can name: job ids and version numbers are
+# 32-bit INTEGER columns (PostgreSQL refuses a larger parameter: it was a 500).
+MAX_PATH_INTEGER = 2**31 - 1
+_CONVERTER = re.compile(r"<(?:[^:<>]+:)?([^<>]+)>")
+
+
+class BoundedIntegerConverter(IntegerConverter):
+    """``<int:...>`` path segments beyond what the database can hold match no
+    route (404), instead of overflowing the database or its driver (500)."""
+
+    def __init__(self, map: Any, fixed_digits: int = 0, min: int | None = None,
+                 max: int | None = MAX_PATH_INTEGER, signed: bool = False) -> None:
+        super().__init__(map, fixed_digits, min, max, signed)
+
+
+class Api(flask_smorest.Api):  # type: ignore[misc]  # flask-smorest ships no types
+    """flask-smorest's Api documenting errors as RFC 9457 problem details."""
+
+    ERROR_SCHEMA = ProblemSchema
+
+    def _register_responses(self) -> None:
+        # Errors are answered as application/problem+json (service.web.problems):
+        # document them so, or clients validating against the document reject them.
+        self.DEFAULT_RESPONSE_CONTENT_TYPE = problems.PROBLEM_MIMETYPE
+        try:
+            super()._register_responses()
+        finally:
+            del self.DEFAULT_RESPONSE_CONTENT_TYPE
+
+
+def create_app(config: Mapping[str, Any] | None = None) -> Flask:
+    """Build the API app; ``config`` overrides the environment (tests pass one)."""
+    app = Flask("keelson", static_folder=None)
+    app.url_map.converters["int"] = BoundedIntegerConverter
+    settings = load_config(config)
+    app.config.update(settings)
+    app.config.update(
+        MAX_CONTENT_LENGTH=settings["KEELSON_MAX_BODY_BYTES"],
+        API_TITLE="Keelson",
+        API_VERSION="1",
+        OPENAPI_VERSION="3.0.3",
+        JSON_SORT_KEYS=False,
+    )
+    app.json.sort_keys = False  # type: ignore[attr-defined]
+    init_database(app)
+    auth.init_app(app)
+    observability.init_app(app)
+    api = Api(app, spec_kwargs={"info": {"description": "Keelson HTTP API (v1)."}})
+    api.register_converter(BoundedIntegerConverter, integerconverter2paramschema)
+    api.spec.components.security_scheme("bearer", {"type": "http", "scheme": "bearer"})
+    for blueprint in BLUEPRINTS:
+        api.register_blueprint(blueprint)
+    problems.init_app(app)
+    app.extensions["keelson.openapi"] = _openapi_document(app, api)
+    app.wsgi_app = SecurityHeaders(app.wsgi_app)  # type: ignore[method-assign]
+    return app
+
+
+class SecurityHeaders:
+    """WSGI middleware: every answer carries ``SECURITY_HEADERS``, unless the
+    app gave one of them a value of its own.
+
+    Added to the plain list given to ``start_response``, in front of Flask:
+    werkzeug's header object lower-cases and scans its list on each
+    ``setdefault``, five times per request; this is one pass. Answers made
+    outside Flask's hooks are covered too.
+    """
+
+    _HEADERS = [(name, value) for name, value in SECURITY_HEADERS.items()]
+    _LOWERED = frozenset(name.lower() for name in SECURITY_HEADERS)
+
+    def __init__(self, app: Any) -> None:
+        self.app = app
+
+    def __call__(self, environ: dict[str, Any], start_response: Any) -> Any:
+        def start_secured(status: str, headers: list[tuple[str, str]],
+                          exc_info: Any = None) -> Any:
+            given = {name.lower() for name, _ in headers} & self._LOWERED
+            if given:
+                headers.extend(h for h in self._HEADERS if h[0].lower() not in given)
+            else:
+                headers.extend(self._HEADERS)
+            return start_response(status, headers, exc_info)
+
+        return self.app(environ, start_secured)
+
+
+def _openapi_document(app: Flask, api: Api) -> Any:
+    """A function returning the OpenAPI document, built once on first use, with
+    each operation's security taken from the scope its view declares."""
+    built: list[dict[str, Any]] = []
+
+    def document() -> dict[str, Any]:
+        if built:
+            return built[0]
+        spec: dict[str, Any] = copy.deepcopy(api.spec.to_dict())
+        for rule in app.url_map.iter_rules():
+            scope = auth.declared_scope(app.view_functions.get(rule.endpoint))
+            path = spec.get("paths", {}).get(_CONVERTER.sub(r"{\1}", rule.rule), {})
+            for method in rule.methods or ():
+                operation = path.get(method.lower())
+                if operation is None or scope is None:
+                    continue
+                if scope == auth.PUBLIC:
+                    operation["security"] = []
+                else:
+                    operation["security"] = [{"bearer": []}]
+                    operation["x-scope"] = scope
+        built.append(spec)
+        return spec
+
+    return document

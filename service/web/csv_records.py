@@ -1,0 +1,105 @@
+"""Records from CSV text (RFC 4180), typed from the model's spec.
+
+The header names the columns: every feature, the target, and optionally
+``key``; order is free. Cells are typed with the model's generated schema in
+its text form, so a CSV cell obeys exactly the rules a JSON value does, and
+an error names ``records.<row>.features.<column>`` (row 0 is the first line
+after the header) or ``columns.<name>`` for the header.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+from collections.abc import Mapping
+from typing import Any
+
+from marshmallow import ValidationError
+
+from service.errors import InvalidInputError, MalformedError, TooLargeError
+from service.web.problems import flatten_messages
+from service.web.schemas.records import record_schema
+
+KEY_COLUMN = "key"
+
+
+def parse_csv_records(
+    text: str, spec: Mapping[str, Any], *, max_records: int | None = None
+) -> list[dict[str, Any]]:
+    """``[{"key"?, "features": {...}, "label": ...}, ...]`` from CSV text.
+
+    Raises MalformedError (the text is not CSV), TooLargeError (more than
+    ``max_records`` rows) or InvalidInputError (a header or cell breaks a rule).
+    """
+    # Spreadsheets often start UTF-8 files with a byte order mark; it is not
+    # part of the first column's name (common practice, no source).
+    text = text.removeprefix("\ufeff")
+    # RFC 4180 quoting; strict makes a stray quote an error instead of data.
+    reader = csv.reader(io.StringIO(text, newline=""), strict=True)
+    try:
+        header = next(reader, None)
+        if header is None or header == [] or header == [""]:
+            raise MalformedError("The CSV is empty; the first line must name the columns.")
+        features = [f["name"] for f in spec["features"]]
+        _check_header(header, features, spec["target"])
+        width = len(header)
+        columns = {name: i for i, name in enumerate(header)}
+        feature_columns = [(name, columns[name]) for name in features]
+        label_column = columns[spec["target"]]
+        key_column = columns.get(KEY_COLUMN)
+        raw: list[dict[str, Any]] = []
+        errors: dict[str, list[str]] = {}
+        for row in reader:
+            if not row:
+                continue  # a blank line carries no record
+            index = len(raw)
+            if max_records is not None and index >= max_records:
+                raise TooLargeError(f"At most {max_records} records per request.")
+            if len(row) != width:
+                errors[f"records.{index}"] = [
+                    f"Line {reader.line_num}: expected {width} fields, found {len(row)}."
+                ]
+                raw.append({})
+                continue
+            record: dict[str, Any] = {
+                "features": {name: row[i] for name, i in feature_columns},
+                "label": row[label_column],
+            }
+            if key_column is not None and row[key_column] != "":
+                record["key"] = row[key_column]
+            raw.append(record)
+    except csv.Error as exc:
+        raise MalformedError(
+            f"The CSV is broken at line {reader.line_num}: {exc}.",
+            errors={f"records.{max(reader.line_num - 2, 0)}": [str(exc)]},
+        ) from exc
+    if errors:
+        raise InvalidInputError("Some CSV rows have the wrong number of fields.", errors=errors)
+    if not raw:
+        raise InvalidInputError(
+            "The CSV holds no records.", errors={"records": ["At least one record is required."]}
+        )
+    try:
+        typed: list[dict[str, Any]] = record_schema(spec, text=True).load(raw, many=True)
+    except ValidationError as exc:
+        raise InvalidInputError(
+            "Some records are invalid.", errors=flatten_messages(exc.messages, "records")
+        ) from exc
+    return typed
+
+
+def _check_header(header: list[str], features: list[str], target: str) -> None:
+    errors: dict[str, list[str]] = {}
+    seen: set[str] = set()
+    allowed = {*features, target, KEY_COLUMN}
+    for name in header:
+        if name in seen:
+            errors[f"columns.{name}"] = ["This column appears twice."]
+        elif name not in allowed:
+            errors[f"columns.{name}"] = ["Unknown column."]
+        seen.add(name)
+    for name in [*features, target]:
+        if name not in seen:
+            errors[f"columns.{name}"] = ["Missing column."]
+    if errors:
+        raise InvalidInputError("The CSV header does not match the model.", errors=errors)

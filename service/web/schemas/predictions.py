@@ -1,0 +1,314 @@
+"""Prediction requests: the optional parameters, and each model's request readers.
+
+The optional parameters (``explain``, ``version``, ``output``, ``steps`` and the
+SmoothGrad knobs) are one marshmallow schema in two spellings: JSON values in a
+POST body, text in a query string. Feature values are checked by the model's
+own generated schema (``service.web.schemas.records.feature_schema``), so a record
+and a prediction accept exactly the same values. Everything a model needs is
+built once per model (see ``prediction_readers``) and reused by every request.
+"""
+
+from __future__ import annotations
+
+import re
+from collections.abc import Mapping
+from dataclasses import dataclass
+from typing import Any
+
+from marshmallow import RAISE, Schema, ValidationError, fields, validate
+from werkzeug.datastructures import MultiDict
+
+from service.errors import InvalidInputError, TooLargeError
+from service.usecases.predictions import (
+    DEFAULT_EXPLAIN,
+    DEFAULT_NOISE,
+    DEFAULT_SAMPLES,
+    DEFAULT_STEPS,
+    EXPLAIN_METHODS,
+    MAX_NOISE,
+    MAX_SAMPLES,
+    MAX_STEPS,
+    MIN_STEPS,
+    PredictionOptions,
+)
+from service.web.schemas.fields import (
+    Choice,
+    ChoiceFromText,
+    NumberFromText,
+    StrictInteger,
+    StrictNumber,
+)
+from service.web.schemas.records import feature_schema
+
+OPTION_NAMES = ("explain", "version", "output", "steps", "samples", "noise", "seed")
+MAX_SEED = 2**32 - 1
+_DIGITS = re.compile(r"[0-9]{1,10}")
+
+
+class IntegerFromText(StrictInteger):
+    """An integer spelled in decimal digits (``7``; not ``7.0``, ``+7`` or ``0x7``)."""
+
+    def _deserialize(self, value: Any, attr: str | None, data: Any, **kwargs: Any) -> Any:
+        if isinstance(value, str):
+            if not _DIGITS.fullmatch(value):
+                raise ValidationError("Not an integer.")
+            value = int(value)
+        return super()._deserialize(value, attr, data, **kwargs)
+
+
+def _options_fields(text: bool) -> dict[str, fields.Field[Any]]:
+    integer = IntegerFromText if text else StrictInteger
+    number = NumberFromText if text else StrictNumber
+    return {
+        "explain": fields.String(
+            validate=validate.OneOf(EXPLAIN_METHODS),
+            metadata={"description": f"Attribution method; default {DEFAULT_EXPLAIN}. "
+                      "`none`: no explanation (`explanation` is null)."},
+        ),
+        # versions.number is a 32-bit INTEGER column: beyond it PostgreSQL
+        # refuses the parameter (it was a 500).
+        "version": integer(minimum=1, maximum=2**31 - 1, metadata={
+            "description": "A version number; default the active version."}),
+        "output": fields.Raw(metadata={
+            "description": "The class whose probability is explained; default the "
+            "predicted class. Booleans are spelled true/false."}),
+        "steps": integer(minimum=MIN_STEPS, maximum=MAX_STEPS, metadata={
+            "description": f"Integrated gradients: trapezoid intervals; default {DEFAULT_STEPS}."}),
+        "samples": integer(minimum=1, maximum=MAX_SAMPLES, metadata={
+            "description": f"SmoothGrad: noisy samples; default {DEFAULT_SAMPLES}."}),
+        "noise": number(minimum=0, maximum=MAX_NOISE, as_float=True, metadata={
+            "description": "SmoothGrad: noise standard deviation in standardised units; "
+            f"default {DEFAULT_NOISE}."}),
+        "seed": integer(minimum=0, maximum=MAX_SEED, metadata={
+            "description": "SmoothGrad: seed of the noise; default 0."}),
+    }
+
+
+PredictionQuerySchema = Schema.from_dict(_options_fields(text=True), name="PredictionQuery")
+PredictionOptionsSchema = Schema.from_dict(_options_fields(text=False), name="PredictionOptions")
+
+
+class PredictionRecordSchema(Schema):
+    features = fields.Dict(keys=fields.String(), required=True, metadata={
+        "description": "One value per declared feature, nothing else."})
+
+
+class PredictionRequestSchema(PredictionOptionsSchema):  # type: ignore[misc,valid-type]
+    """The POST body: records to score, and the optional parameters (also
+    accepted as query parameters; given in both places they must agree)."""
+
+    records = fields.List(fields.Nested(PredictionRecordSchema), required=True,
+                          validate=validate.Length(min=1))  # an empty batch is refused
+
+
+@dataclass(frozen=True, slots=True)
+class PredictionReaders:
+    """One model's request readers: built from its spec once, used per request."""
+
+    query_options: Schema
+    body_options: Schema
+    query_features: Schema
+    body_features: Schema
+    output_text: ChoiceFromText | None
+    output_json: Choice | None
+
+    def read_query(self, args: MultiDict[str, str]) -> tuple[dict[str, Any], PredictionOptions]:
+        """GET: features and options from the query string; errors keyed by parameter."""
+        errors: dict[str, list[str]] = {}
+        features: dict[str, Any] = {}
+        options: dict[str, Any] = {}
+        for key, values in args.lists():
+            if len(values) > 1:
+                errors[key] = ["Given more than once."]
+            (options if key in OPTION_NAMES else features)[key] = values[0]
+        try:
+            loaded = self.query_features.load(features)
+        except ValidationError as exc:
+            _merge(errors, exc.messages, "")
+            loaded = {}
+        chosen = self._options(options, text=True, errors=errors)
+        if errors:
+            raise InvalidInputError("The query has invalid parameters.", errors=errors)
+        return loaded, PredictionOptions(**chosen)
+
+    def read_body(
+        self, body: Any, args: MultiDict[str, str], max_records: int
+    ) -> tuple[list[dict[str, Any]], PredictionOptions]:
+        """POST: records from the JSON body, options from the body and the query."""
+        if not isinstance(body, dict):
+            raise InvalidInputError("The body must be an object.",
+                                    errors={"body": ['Expected {"records": [...]}.']})
+        records = body.get("records")
+        if isinstance(records, list) and len(records) > max_records:
+            raise TooLargeError(
+                f"At most {max_records} records per prediction request.",
+                errors={"records": [f"{len(records)} records; at most {max_records}."]},
+            )
+        errors: dict[str, list[str]] = {}
+        in_body = {key: value for key, value in body.items() if key != "records"}
+        in_query: dict[str, Any] = {}
+        for key, values in args.lists():
+            if key not in OPTION_NAMES:
+                errors[key] = ["Unknown query parameter; features go in the body."]
+            elif len(values) > 1:
+                errors[key] = ["Given more than once."]
+            else:
+                in_query[key] = values[0]
+        rows = self._records(records, errors)
+        from_body = self._options(in_body, text=False, errors=errors)
+        from_query = self._options(in_query, text=True, errors=errors)
+        for key in from_body.keys() & from_query.keys():
+            if from_body[key] != from_query[key]:
+                errors[key] = ["Given in the body and the query with different values."]
+        if errors:
+            raise InvalidInputError("The request is invalid.", errors=errors)
+        return rows, PredictionOptions(**from_query, **{
+            key: value for key, value in from_body.items() if key not in from_query})
+
+    def _records(self, records: Any, errors: dict[str, list[str]]) -> list[dict[str, Any]]:
+        if records is None:
+            errors["records"] = ["Missing data for required field."]
+            return []
+        if not isinstance(records, list):
+            errors["records"] = ["Not a valid list."]
+            return []
+        if not records:
+            errors["records"] = ["At least one record is needed."]
+            return []
+        rows = []
+        for index, item in enumerate(records):
+            path = f"records.{index}"
+            if not isinstance(item, dict):
+                errors[path] = ['Expected {"features": {...}}.']
+                continue
+            for key in item:
+                if key != "features":
+                    errors[f"{path}.{key}"] = ["Unknown field."]
+            if "features" not in item:
+                errors[f"{path}.features"] = ["Missing data for required field."]
+                continue
+            if not isinstance(item["features"], dict):
+                errors[f"{path}.features"] = ["Not a valid mapping."]
+                continue
+            try:
+                rows.append(self.body_features.load(item["features"]))
+            except ValidationError as exc:
+                _merge(errors, exc.messages, f"{path}.features")
+        return rows
+
+    def _options(self, given: dict[str, Any], *, text: bool,
+                 errors: dict[str, list[str]]) -> dict[str, Any]:
+        """Each given option through its field of the options schema.
+
+        Field by field rather than ``schema.load``: a request names one or two
+        options, and a whole-schema pass per request costs more than the rest
+        of the parsing. Every bad option is reported, and the good ones are kept
+        so a conflict between body and query can be named too.
+        """
+        if not given:
+            return {}  # the common request: every default
+        declared = (self.query_options if text else self.body_options).fields
+        loaded: dict[str, Any] = {}
+        for key, value in given.items():
+            if key == "output":  # checked against the model's own classes
+                loaded[key] = self._output(value, text, errors)
+                continue
+            field = declared.get(key)
+            if field is None:
+                errors[key] = ["Unknown field."]
+                continue
+            try:
+                loaded[key] = field.deserialize(value)
+            except ValidationError as exc:
+                _merge(errors, exc.messages, key)
+        return loaded
+
+    def _output(self, value: Any, text: bool, errors: dict[str, list[str]]) -> Any:
+        field = self.output_text if text else self.output_json
+        if field is None:
+            errors["output"] = ["A regression model has one output; omit output."]
+            return None
+        try:
+            return field.deserialize(value)
+        except ValidationError as exc:
+            errors["output"] = list(exc.messages) if isinstance(exc.messages, list) else [
+                str(exc.messages)]
+            return None
+
+
+def _merge(errors: dict[str, list[str]], messages: Any, prefix: str) -> None:
+    """marshmallow's (possibly nested) messages as flat field paths under ``prefix``."""
+    if isinstance(messages, Mapping):
+        for key, value in messages.items():
+            path = prefix if key == "_schema" else (f"{prefix}.{key}" if prefix else str(key))
+            _merge(errors, value, path)
+    elif isinstance(messages, list) and all(isinstance(m, str) for m in messages):
+        errors.setdefault(prefix or "body", []).extend(messages)
+    else:
+        errors.setdefault(prefix or "body", []).append(str(messages))
+
+
+def build_readers(spec: Mapping[str, Any]) -> PredictionReaders:
+    """Everything needed to read a prediction request for a model with ``spec``."""
+    classes: list[Any] = list(spec.get("classes") or [])
+    if spec["task"] == "binary" and not classes:
+        classes = [False, True]
+    regression = spec["task"] == "regression"
+    return PredictionReaders(
+        query_options=PredictionQuerySchema(unknown=RAISE),
+        body_options=PredictionOptionsSchema(unknown=RAISE),
+        query_features=feature_schema(spec, text=True),
+        body_features=feature_schema(spec),
+        output_text=None if regression else ChoiceFromText(classes, what="class"),
+        output_json=None if regression else Choice(classes, what="class"),
+    )
+
+
+def prediction_readers(entry: Any) -> PredictionReaders:
+    """The readers of a cached model entry, built on first use and kept with it."""
+    readers: PredictionReaders | None = entry.derived.get("prediction_readers")
+    if readers is None:
+        readers = build_readers(entry.spec)
+        entry.derived["prediction_readers"] = readers
+    return readers
+
+
+# -- answers (they document what the views send; tests hold the two together) --
+class PredictionResultSchema(Schema):
+    label = fields.Raw(metadata={"description": "Classification: the predicted class."})
+    probabilities = fields.Dict(keys=fields.String(), values=fields.Float(), metadata={
+        "description": "Classification: class -> probability (booleans spelled false/true)."})
+    value = fields.Float(metadata={"description": "Regression: the predicted value."})
+
+
+class ExplanationSchema(Schema):
+    method = fields.String(required=True, validate=validate.OneOf(EXPLAIN_METHODS[:-1]))
+    output = fields.Raw(required=True, allow_none=True, metadata={
+        "description": "The explained class; null for regression."})
+    attributions = fields.Dict(keys=fields.String(), values=fields.Float(), required=True,
+                               metadata={"description": "Declared feature -> attribution, "
+                                         "in output units."})
+    baseline = fields.Dict(keys=fields.String(), values=fields.Raw(), required=True, metadata={
+        "description": "The reference input: numbers in raw units, booleans as the share "
+        "of true, categorical fields as {level: share}."})
+    completeness_gap = fields.Float(required=True, allow_none=True, metadata={
+        "description": "Integrated gradients: |sum(attributions) - (value - baseline_value)|."})
+    value = fields.Float(required=True, metadata={"description": "f(input) explained."})
+    baseline_value = fields.Float(required=True, metadata={"description": "f(baseline)."})
+
+
+class ScoredRecordSchema(Schema):
+    result = fields.Nested(PredictionResultSchema, required=True)
+    explanation = fields.Nested(ExplanationSchema, required=True, allow_none=True, metadata={
+        "description": "null when explain=none."})
+
+
+class PredictionSchema(ScoredRecordSchema):
+    model = fields.String(required=True)
+    version = fields.Integer(required=True)
+
+
+class PredictionBatchSchema(Schema):
+    model = fields.String(required=True)
+    version = fields.Integer(required=True)
+    results = fields.List(fields.Nested(ScoredRecordSchema), required=True)

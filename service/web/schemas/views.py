@@ -1,0 +1,121 @@
+"""Schemas of what the API answers, and of the bodies it documents generically.
+
+These document the answers in the OpenAPI document and shape them on the way
+out (flask-smorest dumps each view's return value through its schema).
+"""
+
+from __future__ import annotations
+
+from marshmallow import RAISE, Schema, fields, validate
+
+from service.web.schemas.fields import StrictBoolean
+from service.web.schemas.spec import ModelSpecSchema
+
+
+class RecordCountsSchema(Schema):
+    total = fields.Integer(required=True)
+    train = fields.Integer(required=True)
+    holdout = fields.Integer(required=True)
+
+
+class TrainerStateSchema(Schema):
+    cursor = fields.Integer(required=True, metadata={"description": "Last applied sequence."})
+    lag = fields.Integer(required=True, metadata={"description": "Records not yet applied."})
+    error = fields.String(metadata={
+        "description": "Present when the online lineage stopped (e.g. a non-finite loss): "
+        "why. Records then wait; the active version keeps serving."})
+
+
+class ModelSchema(ModelSpecSchema):
+    """A stored model: its full spec (defaults filled) and its state."""
+
+    classes = fields.Raw(allow_none=True)  # type: ignore[assignment]  # null for regression
+    active_version = fields.Integer(allow_none=True, required=True)
+    records = fields.Nested(RecordCountsSchema, required=True)
+    trainer = fields.Nested(TrainerStateSchema, required=True)
+    created_at = fields.DateTime(required=True)
+
+
+class ModelListSchema(Schema):
+    models = fields.List(fields.Nested(ModelSchema), required=True)
+
+
+class RecordDocSchema(Schema):
+    """The generic record shape; each model validates its own fields."""
+
+    key = fields.String(metadata={"description": "Optional, unique per model."})
+    features = fields.Dict(
+        keys=fields.String(), required=True,
+        metadata={"description": "One value per declared feature, nothing else."},
+    )
+    label = fields.Raw(required=True, metadata={"description": "A class, or a number."})
+
+
+class RecordBatchDocSchema(Schema):
+    records = fields.List(fields.Nested(RecordDocSchema), required=True,
+                          validate=validate.Length(min=1))  # an empty batch is refused
+
+
+class IngestResultSchema(Schema):
+    accepted = fields.Integer(required=True)
+    duplicates = fields.Integer(required=True)
+
+
+class VersionSchema(Schema):
+    number = fields.Integer(required=True)
+    origin = fields.String(required=True, metadata={"enum": ["online", "retrain"]})
+    status = fields.String(required=True, metadata={"enum": ["active", "candidate", "retired"]})
+    records_seen = fields.Integer(required=True)
+    cursor = fields.Integer(required=True)
+    metrics = fields.Dict(required=True)
+    created_at = fields.DateTime(required=True)
+    promoted_at = fields.DateTime(allow_none=True, required=True)
+    parent = fields.Integer(allow_none=True, required=True,
+                            metadata={"description": "Number of the version it grew from."})
+
+
+class VersionListSchema(Schema):
+    versions = fields.List(fields.Nested(VersionSchema), required=True)
+
+
+class RetrainRequestSchema(Schema):
+    class Meta:
+        unknown = RAISE
+
+    warm_start = StrictBoolean(load_default=False)
+
+
+class JobSchema(Schema):
+    id = fields.Integer(required=True)
+    model = fields.String(required=True)
+    kind = fields.String(required=True)
+    status = fields.String(
+        required=True, metadata={"enum": ["queued", "running", "succeeded", "failed"]}
+    )
+    progress = fields.Dict(allow_none=True, required=True)
+    version = fields.Integer(allow_none=True, required=True)
+    error = fields.String(allow_none=True, required=True)
+    created_at = fields.DateTime(required=True)
+    started_at = fields.DateTime(allow_none=True, required=True)
+    finished_at = fields.DateTime(allow_none=True, required=True)
+
+
+class JobEnvelopeSchema(Schema):
+    job = fields.Nested(JobSchema, required=True)
+
+
+class StatusSchema(Schema):
+    status = fields.String(required=True)
+
+
+class ProblemSchema(Schema):
+    """RFC 9457 problem details."""
+
+    type = fields.String(required=True)
+    title = fields.String(required=True)
+    status = fields.Integer(required=True)
+    detail = fields.String(required=True)
+    errors = fields.Dict(
+        keys=fields.String(), values=fields.List(fields.String()),
+        metadata={"description": "Field path -> messages, for invalid input."},
+    )

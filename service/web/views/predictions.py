@@ -1,0 +1,104 @@
+"""GET and POST /v1/models/{name}/predictions (predict): scored and explained.
+
+The hot path of the service: a warm GET reads no database (the version cache
+holds the model and its network), builds no schema (each model's readers are
+built once) and dumps its answer straight to JSON.
+"""
+
+from __future__ import annotations
+
+from typing import Any, cast
+
+import orjson
+from flask import Flask, Response, current_app, request
+from flask.blueprints import BlueprintSetupState
+
+from service.usecases.predictions import find_model, predict
+from service.versions.cache import VersionCache
+from service.web.auth import requires
+from service.web.extensions import get_database
+from service.web.schemas.predictions import (
+    PredictionBatchSchema,
+    PredictionQuerySchema,
+    PredictionRequestSchema,
+    PredictionSchema,
+    prediction_readers,
+)
+from service.web.views.base import Blueprint, read_json_body
+
+blueprint = Blueprint(
+    "predictions", __name__, url_prefix="/v1/models", description="Predictions."
+)
+
+CACHE_KEY = "keelson.version_cache"
+
+
+FEATURE_PARAMETERS = {
+    "in": "query",
+    "name": "features",
+    "description": "One parameter per declared feature of the model, typed by its spec "
+    "(numbers as decimals, booleans as true/false, categorical as a level). Unknown "
+    "parameters are refused.",
+    "schema": {"type": "object", "additionalProperties": {"type": "string"}},
+    "style": "form",
+    "explode": True,
+}
+BATCH_BODY = {
+    "required": True,
+    "content": {"application/json": {"schema": PredictionRequestSchema}},
+}
+
+
+@blueprint.record_once
+def _make_cache(state: BlueprintSetupState) -> None:
+    # Made with the app, so a bad setting fails create_app, not the first request.
+    app = cast(Flask, state.app)
+    app.extensions[CACHE_KEY] = VersionCache(
+        get_database(app).read,
+        max_age=float(app.config["KEELSON_ACTIVE_STALENESS_SECONDS"]),
+        capacity=int(app.config["KEELSON_VERSION_CACHE_SIZE"]),
+    )
+
+
+def version_cache(app: Flask | None = None) -> VersionCache:
+    """The app's version cache (one per app, shared by its threads)."""
+    cache: VersionCache = (app if app is not None else current_app).extensions[CACHE_KEY]
+    return cache
+
+
+def _json(body: dict[str, Any]) -> Response:
+    # Dumped here rather than through the answer schema (the schema documents
+    # this exact shape; tests/service/test_predictions_api.py holds the two
+    # together), and by orjson: the standard encoder's float repr cost more per
+    # answer than parsing the whole request. Every number is finite by now
+    # (usecases.predictions checks), so orjson's NaN-as-null never applies.
+    return Response(orjson.dumps(body), mimetype="application/json")
+
+
+@blueprint.route("/<name>/predictions", methods=["GET"])
+@requires("predict")
+@blueprint.doc(parameters=[FEATURE_PARAMETERS, {"in": "query", "schema": PredictionQuerySchema}])
+@blueprint.response(200, PredictionSchema)
+def get_prediction(name: str) -> Response:
+    """Score one record given as query parameters, and explain the score."""
+    cache = version_cache()
+    entry = find_model(cache, name)
+    features, options = prediction_readers(entry).read_query(request.args)
+    number, (answer,) = predict(cache, entry, (features,), options)
+    return _json({"model": entry.name, "version": number, **answer})
+
+
+@blueprint.route("/<name>/predictions", methods=["POST"])
+@requires("predict")
+@blueprint.doc(requestBody=BATCH_BODY,
+               parameters=[{"in": "query", "schema": PredictionQuerySchema}])
+@blueprint.response(200, PredictionBatchSchema)
+def post_predictions(name: str) -> Response:
+    """Score a batch of records, in input order, each with its explanation."""
+    cache = version_cache()
+    entry = find_model(cache, name)
+    body = read_json_body(request)
+    limit = int(current_app.config["KEELSON_MAX_PREDICTION_BATCH"])
+    rows, options = prediction_readers(entry).read_body(body, request.args, limit)
+    number, answers = predict(cache, entry, rows, options)
+    return _json({"model": entry.name, "version": number, "results": answers})

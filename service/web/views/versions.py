@@ -1,0 +1,37 @@
+"""/v1/models/{name}/versions: list, show (predict), promote (admin)."""
+
+from __future__ import annotations
+
+from typing import Any
+
+from service.usecases import versions
+from service.web.auth import requires
+from service.web.extensions import get_database
+from service.web.schemas.views import VersionListSchema, VersionSchema
+from service.web.views.base import Blueprint
+
+blueprint = Blueprint("versions", __name__, url_prefix="/v1/models", description="Versions.")
+
+
+@blueprint.route("/<name>/versions", methods=["GET"])
+@requires("predict")
+@blueprint.response(200, VersionListSchema)
+def list_versions(name: str) -> dict[str, Any]:
+    """Every version of a model, oldest first."""
+    return {"versions": versions.list_versions(get_database(), name)}
+
+
+@blueprint.route("/<name>/versions/<int:number>", methods=["GET"])
+@requires("predict")
+@blueprint.response(200, VersionSchema)
+def get_version(name: str, number: int) -> dict[str, Any]:
+    """One version."""
+    return versions.get_version(get_database(), name, number)
+
+
+@blueprint.route("/<name>/versions/<int:number>/promote", methods=["POST"])
+@requires("admin")
+@blueprint.response(200, VersionSchema)
+def promote_version(name: str, number: int) -> dict[str, Any]:
+    """Make this version the active one: also the way to roll back."""
+    return versions.promote_version(get_database(), name, number)
