@@ -191,8 +191,8 @@ SETTINGS: tuple[Setting, ...] = (
             "and the gunicorn settings make a fresh one)",
             shown="a fresh temporary folder"),
     Setting("FORWARDED_ALLOW_IPS", SERVER, "127.0.0.1", text,
-            "proxies whose `X-Forwarded-*` headers gunicorn trusts (comma-separated, "
-            "`*` for any)"),
+            "front ends (addresses or networks, comma-separated; `*` for any) whose "
+            "scheme headers (`X-Forwarded-Proto` and the like) gunicorn trusts"),
     Setting("KEELSON_WORKER_LEASE_SECONDS", WORKER, 30.0, number,
             "how long a model stays with a worker that stopped renewing its lease "
             "(renewed every third of it)"),
