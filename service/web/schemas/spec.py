@@ -20,6 +20,7 @@ from marshmallow import (
     validates_schema,
 )
 
+import engine
 from service.usecases.common import MODEL_NAME_PATTERN
 from service.web.schemas.fields import StrictBoolean, StrictInteger, StrictNumber
 
@@ -31,9 +32,6 @@ FIELD_NAME_PATTERN = r"[A-Za-z_][A-Za-z0-9_]{0,63}"
 RESERVED_FIELD_NAMES = frozenset(
     {"key", "explain", "version", "output", "steps", "samples", "noise", "seed", "baseline"}
 )
-TASKS = ("binary", "multiclass", "regression")
-FEATURE_TYPES = ("numeric", "categorical", "boolean")
-ACTIVATIONS = ("tanh", "logistic", "relu")
 MAX_FEATURES = 1000
 MAX_LEVELS = 1000
 MAX_CLASSES = 1000
@@ -57,7 +55,7 @@ class FeatureSchema(Schema):
         unknown = RAISE
 
     name = _field_name(required=True)
-    type = fields.String(required=True, validate=validate.OneOf(FEATURE_TYPES))
+    type = fields.String(required=True, validate=validate.OneOf(engine.FEATURE_TYPES))
     min = StrictNumber()
     max = StrictNumber()
     unit = fields.String(validate=validate.Length(max=32))
@@ -92,14 +90,16 @@ class TrainingSchema(Schema):
     class Meta:
         unknown = RAISE
 
-    optimizer = fields.String(validate=validate.OneOf(("sgd", "adam")))
+    optimizer = fields.String(validate=validate.OneOf(engine.OPTIMIZERS))
     learning_rate = StrictNumber(minimum=0, exclusive_minimum=True, maximum=10)
     momentum = StrictNumber(minimum=0, maximum=0.999999)
     nesterov = StrictBoolean()
     l2 = StrictNumber(minimum=0, maximum=10)
     clip_norm = StrictNumber(minimum=0, exclusive_minimum=True, allow_none=True)
-    lr_schedule = fields.String(validate=validate.OneOf(("constant", "invscaling")))
-    power_t = StrictNumber(minimum=0, maximum=10)
+    lr_schedule = fields.String(validate=validate.OneOf(engine.LR_SCHEDULES), metadata={
+        "description": "`inverse_power`: the rate at step t = 1, 2, ... is "
+        "learning_rate / t ** decay_exponent."})
+    decay_exponent = StrictNumber(minimum=0, maximum=10)
     batch_size = StrictInteger(minimum=1, maximum=65_536)
     max_epochs = StrictInteger(minimum=1, maximum=100_000)
     patience = StrictInteger(minimum=1, maximum=100_000)
@@ -108,6 +108,21 @@ class TrainingSchema(Schema):
     warmup_records = StrictInteger(minimum=0, maximum=10_000_000)
     holdout_fraction = StrictNumber(minimum=0, maximum=0.9)
     checkpoint_every = StrictInteger(minimum=1, maximum=100_000_000)
+
+    def handle_error(self, error: ValidationError, data: Any, **kwargs: Any) -> None:
+        """Name the new spelling when a request uses an option's old one."""
+        messages = error.messages
+        if not isinstance(data, dict) or not isinstance(messages, dict):
+            raise error
+        renamed = dict(messages)
+        for old, new in engine.LEGACY_TRAINING_KEYS.items():
+            if old in data and old in renamed:
+                renamed[old] = [f"Spelled {new} now."]
+        schedule = data.get("lr_schedule")
+        if isinstance(schedule, str) and schedule in engine.LEGACY_LR_SCHEDULES:
+            renamed["lr_schedule"] = [
+                f"Spelled {engine.LEGACY_LR_SCHEDULES[schedule]!r} now."]
+        raise ValidationError(renamed, data=error.data, valid_data=error.valid_data)
 
 
 class ClassLabel(fields.Field[Any]):
@@ -133,7 +148,7 @@ class ModelSpecSchema(Schema):
             "at most 64 characters.",
         ),
     )
-    task = fields.String(required=True, validate=validate.OneOf(TASKS))
+    task = fields.String(required=True, validate=validate.OneOf(engine.TASKS))
     target = _field_name(required=True)
     classes = fields.List(
         ClassLabel(), allow_none=True, validate=validate.Length(min=2, max=MAX_CLASSES)
@@ -146,10 +161,10 @@ class ModelSpecSchema(Schema):
     hidden_layers = fields.List(
         StrictInteger(minimum=1, maximum=MAX_WIDTH), validate=validate.Length(max=MAX_LAYERS)
     )
-    activation = fields.String(validate=validate.OneOf(ACTIVATIONS))
-    loss = fields.String(validate=validate.OneOf(("cross_entropy", "squared_error")))
+    activation = fields.String(validate=validate.OneOf(engine.ACTIVATIONS))
+    loss = fields.String(validate=validate.OneOf(engine.LOSSES["binary"]))
     training = fields.Nested(TrainingSchema)
-    promotion = fields.String(validate=validate.OneOf(("auto", "manual")))
+    promotion = fields.String(validate=validate.OneOf(engine.PROMOTIONS))
 
     @validates_schema
     def _consistent(self, data: dict[str, Any], **kwargs: Any) -> None:
@@ -168,9 +183,7 @@ class ModelSpecSchema(Schema):
                 errors.setdefault("classes", []).append("Classes must all be of one type.")
             elif len(set(classes)) != len(classes):
                 errors.setdefault("classes", []).append("Classes must be distinct.")
-        if "loss" in data and task != "binary" and data["loss"] != (
-            "squared_error" if task == "regression" else "cross_entropy"
-        ):
+        if "loss" in data and task in engine.LOSSES and data["loss"] not in engine.LOSSES[task]:
             errors["loss"] = ["Only a binary model chooses its loss."]
         names = [f.get("name") for f in data.get("features", [])]
         duplicates = sorted(n for n, count in Counter(names).items() if count > 1)
