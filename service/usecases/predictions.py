@@ -12,6 +12,7 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
+import engine
 from service.errors import ConflictError, KeelsonError, NotFoundError
 from service.usecases.common import is_model_name
 from service.versions.cache import (
@@ -24,8 +25,8 @@ from service.versions.cache import (
     VersionNotFound,
 )
 
-EXPLAIN_METHODS = ("integrated_gradients", "gradient", "gradient_times_input", "smoothgrad",
-                   "none")
+# The engine's attribution methods, and "none": score without explaining.
+EXPLAIN_METHODS = (*engine.EXPLANATION_METHODS, "none")
 DEFAULT_EXPLAIN = "integrated_gradients"
 DEFAULT_STEPS, MIN_STEPS, MAX_STEPS = 64, 2, 1024
 DEFAULT_SAMPLES, MAX_SAMPLES = 32, 1024

@@ -193,6 +193,10 @@ class VersionCache:
             self._numbers.put((model_id, number), version_id)
         return entry
 
+    def forget(self, name: str) -> None:
+        """Re-read model ``name`` at its next use (it was found to have changed)."""
+        self._models.pop(name, None)
+
     # -- versions -----------------------------------------------------------
     def version(self, entry: ModelEntry, number: int | None = None) -> LoadedVersion:
         """The active version of ``entry`` (``number=None``) or the pinned one."""

@@ -14,7 +14,7 @@ from werkzeug.routing import IntegerConverter
 
 from service.config import load_config
 from service.web import auth, observability, problems
-from service.web.extensions import init_database
+from service.web.extensions import init_database, init_version_cache
 from service.web.schemas.views import ProblemSchema
 from service.web.views import jobs, models, ops, predictions, records, versions
 
@@ -80,6 +80,7 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     )
     app.json.sort_keys = False  # type: ignore[attr-defined]
     init_database(app)
+    init_version_cache(app)
     auth.init_app(app)
     observability.init_app(app)
     api = Api(app, spec_kwargs={"info": {"description": "Keelson HTTP API (v1)."}})

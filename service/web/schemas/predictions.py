@@ -3,9 +3,9 @@
 The optional parameters (``explain``, ``version``, ``output``, ``steps`` and the
 SmoothGrad knobs) are one marshmallow schema in two spellings: JSON values in a
 POST body, text in a query string. Feature values are checked by the model's
-own generated schema (``service.web.schemas.records.feature_schema``), so a record
-and a prediction accept exactly the same values. Everything a model needs is
-built once per model (see ``prediction_readers``) and reused by every request.
+compiled rules (``service.web.schemas.rules``), so a record and a prediction
+accept exactly the same values. Everything a model needs is built once per
+model (see ``prediction_readers``) and reused by every request.
 """
 
 from __future__ import annotations
@@ -38,7 +38,7 @@ from service.web.schemas.fields import (
     StrictInteger,
     StrictNumber,
 )
-from service.web.schemas.records import feature_schema
+from service.web.schemas.rules import RecordRules, rules_of
 
 OPTION_NAMES = ("explain", "version", "output", "steps", "samples", "noise", "seed")
 MAX_SEED = 2**32 - 1
@@ -56,7 +56,8 @@ class IntegerFromText(StrictInteger):
         return super()._deserialize(value, attr, data, **kwargs)
 
 
-def _options_fields(text: bool) -> dict[str, fields.Field[Any]]:
+def options_fields(text: bool) -> dict[str, fields.Field[Any]]:
+    """The optional parameters, as JSON values (``text=False``) or as text."""
     integer = IntegerFromText if text else StrictInteger
     number = NumberFromText if text else StrictNumber
     return {
@@ -84,8 +85,8 @@ def _options_fields(text: bool) -> dict[str, fields.Field[Any]]:
     }
 
 
-PredictionQuerySchema = Schema.from_dict(_options_fields(text=True), name="PredictionQuery")
-PredictionOptionsSchema = Schema.from_dict(_options_fields(text=False), name="PredictionOptions")
+PredictionQuerySchema = Schema.from_dict(options_fields(text=True), name="PredictionQuery")
+PredictionOptionsSchema = Schema.from_dict(options_fields(text=False), name="PredictionOptions")
 
 
 class PredictionRecordSchema(Schema):
@@ -248,19 +249,16 @@ def _merge(errors: dict[str, list[str]], messages: Any, prefix: str) -> None:
         errors.setdefault(prefix or "body", []).append(str(messages))
 
 
-def build_readers(spec: Mapping[str, Any]) -> PredictionReaders:
-    """Everything needed to read a prediction request for a model with ``spec``."""
-    classes: list[Any] = list(spec.get("classes") or [])
-    if spec["task"] == "binary" and not classes:
-        classes = [False, True]
-    regression = spec["task"] == "regression"
+def build_readers(rules: RecordRules) -> PredictionReaders:
+    """Everything needed to read a prediction request for a model with these rules."""
+    classes = rules.classes
     return PredictionReaders(
         query_options=PredictionQuerySchema(unknown=RAISE),
         body_options=PredictionOptionsSchema(unknown=RAISE),
-        query_features=feature_schema(spec, text=True),
-        body_features=feature_schema(spec),
-        output_text=None if regression else ChoiceFromText(classes, what="class"),
-        output_json=None if regression else Choice(classes, what="class"),
+        query_features=rules.feature_schema(text=True),
+        body_features=rules.feature_schema(),
+        output_text=None if classes is None else ChoiceFromText(classes, what="class"),
+        output_json=None if classes is None else Choice(classes, what="class"),
     )
 
 
@@ -268,7 +266,7 @@ def prediction_readers(entry: Any) -> PredictionReaders:
     """The readers of a cached model entry, built on first use and kept with it."""
     readers: PredictionReaders | None = entry.derived.get("prediction_readers")
     if readers is None:
-        readers = build_readers(entry.spec)
+        readers = build_readers(rules_of(entry))
         entry.derived["prediction_readers"] = readers
     return readers
 

@@ -32,6 +32,8 @@ FIELD_NAME_PATTERN = r"[A-Za-z_][A-Za-z0-9_]{0,63}"
 RESERVED_FIELD_NAMES = frozenset(
     {"key", "explain", "version", "output", "steps", "samples", "noise", "seed", "baseline"}
 )
+# The longest level or class (a string): what a record's value may then be.
+MAX_VALUE_LENGTH = 200
 MAX_FEATURES = 1000
 MAX_LEVELS = 1000
 MAX_CLASSES = 1000
@@ -60,7 +62,7 @@ class FeatureSchema(Schema):
     max = StrictNumber()
     unit = fields.String(validate=validate.Length(max=32))
     levels = fields.List(
-        fields.String(validate=validate.Length(min=1, max=200)),
+        fields.String(validate=validate.Length(min=1, max=MAX_VALUE_LENGTH)),
         validate=validate.Length(min=1, max=MAX_LEVELS),
     )
 
