@@ -123,6 +123,19 @@ class SecurityHeaders:
         return self.app(environ, start_secured)
 
 
+# Request bodies whose ``records`` are bounded by a setting (413 beyond it).
+_LIMITED_BATCHES = {"RecordBatch": "KEELSON_MAX_RECORDS_PER_REQUEST",
+                    "PredictionRequest": "KEELSON_MAX_PREDICTION_BATCH"}
+
+
+def _state_limits(spec: dict[str, Any], config: Mapping[str, Any]) -> None:
+    """Write this app's batch limits into the document (they are settings, so
+    the schemas, made at import, cannot carry them)."""
+    schemas = spec.get("components", {}).get("schemas", {})
+    for name, setting in _LIMITED_BATCHES.items():
+        schemas[name]["properties"]["records"]["maxItems"] = int(config[setting])
+
+
 def _openapi_document(app: Flask, api: Api) -> Any:
     """A function returning the OpenAPI document, built once on first use, with
     each operation's security taken from the scope its view declares."""
@@ -132,6 +145,7 @@ def _openapi_document(app: Flask, api: Api) -> Any:
         if built:
             return built[0]
         spec: dict[str, Any] = copy.deepcopy(api.spec.to_dict())
+        _state_limits(spec, app.config)
         for rule in app.url_map.iter_rules():
             scope = auth.declared_scope(app.view_functions.get(rule.endpoint))
             path = spec.get("paths", {}).get(_CONVERTER.sub(r"{\1}", rule.rule), {})

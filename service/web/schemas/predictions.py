@@ -40,6 +40,9 @@ from service.web.schemas.fields import (
 )
 from service.web.schemas.rules import RecordRules, rules_of
 
+# What every model's records share, for the generic document.
+_ANY_MODEL = RecordRules.any_model()
+
 OPTION_NAMES = ("explain", "version", "output", "steps", "samples", "noise", "seed")
 MAX_SEED = 2**32 - 1
 _DIGITS = re.compile(r"[0-9]{1,10}")
@@ -90,8 +93,7 @@ PredictionOptionsSchema = Schema.from_dict(options_fields(text=False), name="Pre
 
 
 class PredictionRecordSchema(Schema):
-    features = fields.Dict(keys=fields.String(), required=True, metadata={
-        "description": "One value per declared feature, nothing else."})
+    features = _ANY_MODEL.features_field()
 
 
 class PredictionRequestSchema(PredictionOptionsSchema):  # type: ignore[misc,valid-type]

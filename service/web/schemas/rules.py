@@ -79,7 +79,7 @@ def key_field(**kwargs: Any) -> fields.String:
         # PostgreSQL text cannot hold U+0000 (it was a 500 there); refused on
         # every backend so both store the same keys.
         validate.Regexp(r"^[^\x00]*$", error="A key cannot contain U+0000 (NUL)."),
-    ], metadata={"description": f"Optional case key, unique per model: 1 to {MAX_KEY_LENGTH} "
+    ], metadata={"description": f"The case key, unique per model: 1 to {MAX_KEY_LENGTH} "
                  "characters, no U+0000."}, **kwargs)
 
 

@@ -46,6 +46,18 @@ class ModelListSchema(Schema):
 RecordBatchSchema = batch_schema_class(fields.Nested(RecordRules.any_model().record_schema()))
 
 
+class ModelDocumentsSchema(Schema):
+    """GET /v1/models/{name}/schema: one model's own JSON Schema documents."""
+
+    model = fields.String(required=True)
+    record = fields.Dict(required=True, metadata={
+        "description": "JSON Schema 2020-12 of one labelled record of this model."})
+    prediction_request = fields.Dict(required=True, metadata={
+        "description": "JSON Schema 2020-12 of the body of POST .../predictions."})
+    outcome = fields.Dict(required=True, metadata={
+        "description": "JSON Schema 2020-12 of an outcome: a case key and its label."})
+
+
 class IngestResultSchema(Schema):
     accepted = fields.Integer(required=True)
     duplicates = fields.Integer(required=True)
