@@ -18,6 +18,7 @@ from typing import Any
 from marshmallow import ValidationError, fields
 
 _JSON_NUMBER = re.compile(r"-?(?:0|[1-9][0-9]*)(?:\.[0-9]+)?(?:[eE][+-]?[0-9]+)?")
+_DIGITS = re.compile(r"-?[0-9]{1,20}")  # read exactly as an integer
 NON_FINITE = "NaN and Infinity are not numbers JSON allows (RFC 8259 section 6)."
 TRUE_TEXT = frozenset({"true", "1"})
 FALSE_TEXT = frozenset({"false", "0"})
@@ -28,8 +29,9 @@ LARGEST_INT = int(LARGEST)
 
 
 def _document(field: fields.Field[Any], **values: Any) -> None:
-    """Add OpenAPI keywords to a field's metadata (what apispec documents),
-    keeping any the caller passed; ``None`` values are left out."""
+    """Add JSON Schema 2020-12 keywords (the dialect of OpenAPI 3.1) to a field's
+    metadata (what apispec documents), keeping any the caller passed; ``None``
+    values are left out."""
     field.metadata = {**{k: v for k, v in values.items() if v is not None}, **field.metadata}
 
 
@@ -65,10 +67,11 @@ class StrictNumber(fields.Field[Any]):
         self.maximum = maximum
         self.exclusive_minimum = exclusive_minimum
         self.as_float = as_float
+        exclusive = minimum is not None and exclusive_minimum
         _document(self, type="number",
-                  minimum=-LARGEST if minimum is None else minimum,
-                  maximum=LARGEST if maximum is None else maximum,
-                  exclusiveMinimum=True if minimum is not None and exclusive_minimum else None)
+                  minimum=None if exclusive else -LARGEST if minimum is None else minimum,
+                  exclusiveMinimum=minimum if exclusive else None,
+                  maximum=LARGEST if maximum is None else maximum)
 
     def _deserialize(self, value: Any, attr: str | None, data: Any, **kwargs: Any) -> Any:
         if isinstance(value, bool) or not isinstance(value, int | float):
@@ -104,7 +107,12 @@ class NumberFromText(StrictNumber):
 
 
 class StrictInteger(fields.Field[Any]):
-    """A JSON integer (not a bool, not 2.0), optionally bounded."""
+    """A JSON integer (not a bool, not a string), optionally bounded.
+
+    ``2.0`` is the integer 2: JSON has one number type (RFC 8259 section 6) and
+    JSON Schema counts a number with a zero fractional part as an integer, so
+    the published documents call it valid. ``2.5`` is refused.
+    """
 
     def __init__(
         self, *, minimum: int | None = None, maximum: int | None = None, **kwargs: Any
@@ -115,13 +123,34 @@ class StrictInteger(fields.Field[Any]):
         _document(self, type="integer", minimum=minimum, maximum=maximum)
 
     def _deserialize(self, value: Any, attr: str | None, data: Any, **kwargs: Any) -> Any:
-        if isinstance(value, bool) or not isinstance(value, int):
+        if isinstance(value, float) and value.is_integer():
+            value = int(value)
+        elif isinstance(value, bool) or not isinstance(value, int):
             raise ValidationError("Not an integer.")
         if self.minimum is not None and value < self.minimum:
             raise ValidationError(f"Must be at least {self.minimum}.")
         if self.maximum is not None and value > self.maximum:
             raise ValidationError(f"Must be at most {self.maximum}.")
         return value
+
+
+class IntegerFromText(StrictInteger):
+    """An integer spelled as JSON spells a number with no fraction (``7``,
+    ``7.0``, ``7e2``; not ``7.5``, ``+7`` or ``0x7``): the same integers as the
+    JSON form."""
+
+    def _deserialize(self, value: Any, attr: str | None, data: Any, **kwargs: Any) -> Any:
+        if isinstance(value, str):
+            if _DIGITS.fullmatch(value):
+                value = int(value)
+            elif _JSON_NUMBER.fullmatch(value):
+                number = float(value)
+                if not math.isfinite(number) or not number.is_integer():
+                    raise ValidationError("Not an integer.")
+                value = int(number)
+            else:
+                raise ValidationError("Not an integer.")
+        return super()._deserialize(value, attr, data, **kwargs)
 
 
 class StrictBoolean(fields.Field[Any]):

@@ -24,12 +24,8 @@ _COMPONENTS = "#/components/schemas/"
 
 
 def json_schema(schema: Schema, *, title: str, description: str) -> dict[str, Any]:
-    """A self-contained JSON Schema 2020-12 document of what ``schema`` loads.
-
-    Nested schemas become ``$defs``. OpenAPI 3.0's boolean
-    ``exclusiveMinimum`` (what the strict fields document for the OpenAPI
-    document) is spelled as 2020-12 spells it, a number.
-    """
+    """A self-contained JSON Schema 2020-12 document of what ``schema`` loads
+    (nested schemas become ``$defs``)."""
     spec = APISpec(title=title, version="1", openapi_version="3.1.0",
                    plugins=[MarshmallowPlugin()])
     spec.components.schema(title, schema=schema)
@@ -39,18 +35,16 @@ def json_schema(schema: Schema, *, title: str, description: str) -> dict[str, An
                                 "description": description, **root}
     if definitions:
         document["$defs"] = definitions
-    converted: dict[str, Any] = _dialect(document)
+    converted: dict[str, Any] = _local_refs(document)
     return converted
 
 
-def _dialect(value: Any) -> Any:
+def _local_refs(value: Any) -> Any:
     if isinstance(value, list):
-        return [_dialect(item) for item in value]
+        return [_local_refs(item) for item in value]
     if not isinstance(value, dict):
         return value
-    out = {key: _dialect(item) for key, item in value.items()}
-    if out.get("exclusiveMinimum") is True:
-        out["exclusiveMinimum"] = out.pop("minimum")
+    out = {key: _local_refs(item) for key, item in value.items()}
     if isinstance(out.get("$ref"), str) and out["$ref"].startswith(_COMPONENTS):
         out["$ref"] = "#/$defs/" + out["$ref"][len(_COMPONENTS):]
     return out

@@ -10,7 +10,6 @@ model (see ``prediction_readers``) and reused by every request.
 
 from __future__ import annotations
 
-import re
 from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import Any
@@ -34,6 +33,7 @@ from service.usecases.predictions import (
 from service.web.schemas.fields import (
     Choice,
     ChoiceFromText,
+    IntegerFromText,
     NumberFromText,
     StrictInteger,
     StrictNumber,
@@ -45,18 +45,6 @@ _ANY_MODEL = RecordRules.any_model()
 
 OPTION_NAMES = ("explain", "version", "output", "steps", "samples", "noise", "seed")
 MAX_SEED = 2**32 - 1
-_DIGITS = re.compile(r"[0-9]{1,10}")
-
-
-class IntegerFromText(StrictInteger):
-    """An integer spelled in decimal digits (``7``; not ``7.0``, ``+7`` or ``0x7``)."""
-
-    def _deserialize(self, value: Any, attr: str | None, data: Any, **kwargs: Any) -> Any:
-        if isinstance(value, str):
-            if not _DIGITS.fullmatch(value):
-                raise ValidationError("Not an integer.")
-            value = int(value)
-        return super()._deserialize(value, attr, data, **kwargs)
 
 
 def options_fields(text: bool) -> dict[str, fields.Field[Any]]:

@@ -42,19 +42,43 @@ MAX_WIDTH = 4096
 
 
 def _field_name(**kwargs: Any) -> fields.String:
+    reserved = sorted(RESERVED_FIELD_NAMES)
     return fields.String(
         validate=[
             validate.Regexp(f"^{FIELD_NAME_PATTERN}$", error="Use letters, digits and _ "
                             "(not starting with a digit), at most 64 characters."),
-            validate.NoneOf(sorted(RESERVED_FIELD_NAMES), error="This name is reserved."),
+            validate.NoneOf(reserved, error="This name is reserved."),
         ],
+        metadata={"not": {"enum": reserved}},
         **kwargs,
     )
+
+
+def _only(kind: str, *, requires: tuple[str, ...] = (), refuses: tuple[str, ...] = ()
+          ) -> dict[str, Any]:
+    """JSON Schema: a feature of type ``kind`` has ``requires`` and none of ``refuses``."""
+    variant: dict[str, Any] = {"properties": {"type": {"enum": [kind]}}}
+    if requires:
+        variant["required"] = list(requires)
+    if refuses:
+        variant["not"] = {"anyOf": [{"required": [key]} for key in refuses]}
+    return variant
 
 
 class FeatureSchema(Schema):
     class Meta:
         unknown = RAISE
+
+    # What ``_fits_type`` checks, as the document states it (min < max it cannot state).
+    DOCUMENTED_RULES = {
+        "description": "A declared feature. A numeric one may give min < max and a unit; a "
+        "categorical one lists its distinct levels.",
+        "oneOf": [
+            _only("numeric", refuses=("levels",)),
+            _only("categorical", requires=("levels",), refuses=("min", "max", "unit")),
+            _only("boolean", refuses=("levels", "min", "max", "unit")),
+        ],
+    }
 
     name = _field_name(required=True)
     type = fields.String(required=True, validate=validate.OneOf(engine.FEATURE_TYPES))
@@ -63,7 +87,7 @@ class FeatureSchema(Schema):
     unit = fields.String(validate=validate.Length(max=32))
     levels = fields.List(
         fields.String(validate=validate.Length(min=1, max=MAX_VALUE_LENGTH)),
-        validate=validate.Length(min=1, max=MAX_LEVELS),
+        validate=validate.Length(min=1, max=MAX_LEVELS), metadata={"uniqueItems": True},
     )
 
     @validates_schema
@@ -127,13 +151,39 @@ class TrainingSchema(Schema):
         raise ValidationError(renamed, data=error.data, valid_data=error.valid_data)
 
 
+# A class is a string, an integer or a boolean; all classes of a model are of
+# one of these types. As JSON Schema: the ``items`` of one of these arrays.
+CLASS_TYPES: list[dict[str, Any]] = [
+    {"type": "string", "minLength": 1, "maxLength": MAX_VALUE_LENGTH},
+    {"type": "integer"},
+    {"type": "boolean"},
+]
+
+
 class ClassLabel(fields.Field[Any]):
-    """A class: a string, an integer or a boolean."""
+    """A class: a string, an integer (``2.0`` is the integer 2: JSON has one
+    number type) or a boolean."""
+
+    def __init__(self, **kwargs: Any) -> None:
+        super().__init__(**kwargs)
+        self.metadata = {"oneOf": CLASS_TYPES, **self.metadata}
 
     def _deserialize(self, value: Any, attr: str | None, data: Any, **kwargs: Any) -> Any:
-        if isinstance(value, str) and 1 <= len(value) <= 200 or isinstance(value, bool | int):
+        if isinstance(value, float) and value.is_integer():
+            return int(value)
+        if (isinstance(value, str) and 1 <= len(value) <= MAX_VALUE_LENGTH
+                or isinstance(value, bool | int)):
             return value
-        raise ValidationError("A class is a string (1 to 200 characters), integer or boolean.")
+        raise ValidationError(
+            f"A class is a string (1 to {MAX_VALUE_LENGTH} characters), integer or boolean.")
+
+
+def _task(task: str, **properties: Any) -> dict[str, Any]:
+    """JSON Schema: what a spec of ``task`` may say of ``properties``."""
+    variant: dict[str, Any] = {"properties": {"task": {"enum": [task]}, **properties}}
+    if task == "multiclass":
+        variant["required"] = ["classes"]
+    return variant
 
 
 class ModelSpecSchema(Schema):
@@ -141,6 +191,22 @@ class ModelSpecSchema(Schema):
 
     class Meta:
         unknown = RAISE
+
+    # What ``_consistent`` checks, as the document states it; feature names that
+    # differ and a target that is not one of them it can only say in words.
+    DOCUMENTED_RULES = {
+        "description": "A model spec. Feature names are distinct and the target is none "
+        "of them. Classes: a binary model has two (default [false, true]), a multiclass "
+        "model lists them, a regression model has none; only a binary model chooses its "
+        "loss.",
+        "oneOf": [
+            _task("binary", classes={"maxItems": 2}),
+            _task("multiclass", classes={"type": "array"},
+                  loss={"enum": list(engine.LOSSES["multiclass"])}),
+            _task("regression", classes={"type": ["array", "null"], "maxItems": 0},
+                  loss={"enum": list(engine.LOSSES["regression"])}),
+        ],
+    }
 
     name = fields.String(
         required=True,
@@ -153,7 +219,8 @@ class ModelSpecSchema(Schema):
     task = fields.String(required=True, validate=validate.OneOf(engine.TASKS))
     target = _field_name(required=True)
     classes = fields.List(
-        ClassLabel(), allow_none=True, validate=validate.Length(min=2, max=MAX_CLASSES)
+        ClassLabel(), allow_none=True, validate=validate.Length(min=2, max=MAX_CLASSES),
+        metadata={"uniqueItems": True, "anyOf": [{"items": kind} for kind in CLASS_TYPES]},
     )
     features = fields.List(
         fields.Nested(FeatureSchema),
