@@ -201,6 +201,10 @@ class VersionCache:
     def version(self, entry: ModelEntry, number: int | None = None) -> LoadedVersion:
         """The active version of ``entry`` (``number=None``) or the pinned one."""
         if number is None:
+            if entry.active_version_id is None:
+                # "No active version" is re-read before it is answered, so it is
+                # never stale: one query, and only while a model has none.
+                entry = self._refresh(entry.name, entry)
             if entry.active_version_id is None or entry.active_version_number is None:
                 raise NoActiveVersion(entry.name)
             version_id: int | None = entry.active_version_id
