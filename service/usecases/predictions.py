@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, fields
 from typing import Any
 
 import engine
@@ -48,6 +48,10 @@ class PredictionOptions:
     samples: int = DEFAULT_SAMPLES
     noise: float = DEFAULT_NOISE
     seed: int = 0
+
+
+# The options' names: query parameters of GET predictions beside the features.
+OPTION_NAMES = tuple(option.name for option in fields(PredictionOptions))
 
 
 class VersionUnavailableError(KeelsonError):

@@ -28,6 +28,7 @@ from service.usecases.predictions import (
     MAX_SAMPLES,
     MAX_STEPS,
     MIN_STEPS,
+    OPTION_NAMES,
     PredictionOptions,
 )
 from service.web.schemas.fields import (
@@ -43,7 +44,6 @@ from service.web.schemas.rules import RecordRules, rules_of
 # What every model's records share, for the generic document.
 _ANY_MODEL = RecordRules.any_model()
 
-OPTION_NAMES = ("explain", "version", "output", "steps", "samples", "noise", "seed")
 MAX_SEED = 2**32 - 1
 
 

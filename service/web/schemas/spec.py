@@ -22,16 +22,16 @@ from marshmallow import (
 
 import engine
 from service.usecases.common import MODEL_NAME_PATTERN
+from service.usecases.predictions import OPTION_NAMES
 from service.web.schemas.fields import StrictBoolean, StrictInteger, StrictNumber
 
 # Feature and target names become JSON keys, CSV headers, query parameters and
 # parts of error paths (``records.3.features.x``): no dots, no spaces.
 FIELD_NAME_PATTERN = r"[A-Za-z_][A-Za-z0-9_]{0,63}"
-# Query parameters of GET predictions and the CSV key column: a feature may
-# not take these names or it could not be sent.
-RESERVED_FIELD_NAMES = frozenset(
-    {"key", "explain", "version", "output", "steps", "samples", "noise", "seed", "baseline"}
-)
+# Query parameters of GET predictions and the CSV key column (and "baseline",
+# reserved with them from the start): a feature may not take these names or it
+# could not be sent.
+RESERVED_FIELD_NAMES = frozenset({"key", "baseline", *OPTION_NAMES})
 # The longest level or class (a string): what a record's value may then be.
 MAX_VALUE_LENGTH = 200
 MAX_FEATURES = 1000
