@@ -35,9 +35,10 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
+from .activations import HEADS
 from .encoding import Encoder
 from .errors import InvalidInputError
-from .input_gradients import gradient_at, output_and_input_gradient
+from .kernel import Workspace, backward, forward, hidden_preactivations
 from .network import Network
 
 METHODS = ("integrated_gradients", "gradient", "gradient_times_input", "smoothgrad")
@@ -69,30 +70,81 @@ def _relu_pieces(network: Network, baseline: NDArray[np.float64], delta: NDArray
     before the head), and the midpoint rule is exact for an identity head.
     """
     alphas = np.linspace(0.0, 1.0, steps + 1)
-    weights, biases = network.weights, network.biases
-    for layer in range(len(weights) - 1):
-        a = baseline + alphas[:, None] * delta
-        for i in range(layer + 1):
-            z = np.dot(a, weights[i])
-            z += biases[i]
-            a = np.maximum(z, 0.0)
-        left, unit = np.nonzero(z[:-1] * z[1:] < 0.0)
-        if left.size:
-            share = z[left, unit] / (z[left, unit] - z[left + 1, unit])
-            crossings = alphas[left] + share * (alphas[left + 1] - alphas[left])
-            alphas = np.unique(np.concatenate((alphas, crossings)))
+    for layer in range(len(network.sizes) - 2):
+        work = network.workspace(alphas.size)
+        try:
+            _fill_path(work, baseline, delta, alphas)
+            z = hidden_preactivations(work, work.inputs, layer).T  # (nodes, units)
+            left, unit = np.nonzero(z[:-1] * z[1:] < 0.0)
+            if left.size:
+                share = z[left, unit] / (z[left, unit] - z[left + 1, unit])
+                crossings = alphas[left] + share * (alphas[left + 1] - alphas[left])
+                alphas = np.unique(np.concatenate((alphas, crossings)))
+        finally:
+            network.release(work)
     widths = np.diff(alphas)
     middles = alphas[:-1] + 0.5 * widths
     return np.concatenate((middles, [1.0, 0.0])), widths
+
+
+def _fill_path(work: Workspace, baseline: NDArray[np.float64], delta: NDArray[np.float64],
+               alphas: NDArray[np.float64]) -> None:
+    """The workspace's examples: the points baseline + alpha * delta, one per alpha."""
+    points = work.examples
+    np.multiply(delta[:, None], alphas, points)
+    points += baseline[:, None]
 
 
 def path_rule(network: Network, baseline: NDArray[np.float64], delta: NDArray[np.float64],
               steps: int) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
     """Quadrature for integrated gradients: positions alpha on the path (the m
     nodes, then 1 and 0 for f(x) and f(baseline)) and the nodes' weights (m,)."""
-    if network.activation == "relu" and len(network.weights) > 1:
+    if network.activation == "relu" and len(network.sizes) > 2:
         return _relu_pieces(network, baseline, delta, steps)
     return _trapezoid(steps)
+
+
+def _explained_pass(network: Network, work: Workspace, unit: int | None,
+                    row_weights: NDArray[np.float64] | None = None,
+                    ) -> tuple[int, float, float, NDArray[np.float64]]:
+    """One forward and one backward pass of the workspace's examples: the points to
+    differentiate (its grad_rows), then x, then the baseline (a single point is x
+    itself). Returns the head unit explained (None: the most probable at x), its
+    value at x and at the baseline, and its gradient with respect to the inputs at
+    the point, or the `row_weights`-weighted sum of the gradients at the points."""
+    forward(work, work.inputs)
+    head = HEADS[network.output]
+    if head.value is not None and head.slope is not None:  # one output unit
+        unit = 0
+        if work.grad_rows == 1:  # one point: the scalar forms
+            ((value, baseline_value),) = work.logits.tolist()
+            value, baseline_value = head.value(value), head.value(baseline_value)
+            work.delta[0, 0] = head.slope(value)
+            gradient = backward(work, work.inputs, 0, False, row_weights)
+            assert gradient is not None  # an attributing workspace returns it
+            return unit, value, baseline_value, gradient
+    p = head.activate_(work.outputs)  # (rows, k)
+    if unit is None:
+        unit = int(p[-2].argmax())
+    value, baseline_value = p[-2:, unit].tolist()
+    head.jacobian_row(p[: work.grad_rows], unit, work.delta.T)
+    gradient = backward(work, work.inputs, 0, False, row_weights)
+    assert gradient is not None
+    return unit, value, baseline_value, gradient
+
+
+def gradient_at(network: Network, x: NDArray[np.float64], baseline: NDArray[np.float64],
+                unit: int | None) -> tuple[int, float, float, NDArray[np.float64]]:
+    """The head unit explained (None: the most probable at x), its value at x and at
+    the baseline, and its gradient with respect to the inputs at x (n_inputs,)."""
+    work = network.workspace(2, 1)  # x, differentiated, and the baseline
+    try:
+        x_column, baseline_column = work.columns
+        x_column[...] = x
+        baseline_column[...] = baseline
+        return _explained_pass(network, work, unit)
+    finally:
+        network.release(work)
 
 
 @dataclass(frozen=True)
@@ -190,26 +242,31 @@ def explain(
         _check_count("steps", steps, MAX_STEPS)
         delta = x - baseline
         alphas, rule = path_rule(network, baseline, delta, steps)
-        path = baseline + alphas[:, None] * delta  # quadrature nodes, then x, then baseline
-        unit, values, gradient = output_and_input_gradient(
-            network, path, unit, rule.size, rule, choose_row=-2)
-        value, baseline_value = values[-2:].tolist()
+        # Quadrature nodes, then x, then the baseline (alphas ends with 1 and 0).
+        work = network.workspace(alphas.size, rule.size)
+        try:
+            _fill_path(work, baseline, delta, alphas)
+            unit, value, baseline_value, gradient = _explained_pass(network, work, unit, rule)
+        finally:
+            network.release(work)
         columns = gradient * delta
     else:
         if method == "smoothgrad":
             _check_count("samples", samples, MAX_SAMPLES)
             if not math.isfinite(noise) or noise < 0.0:
                 raise InvalidInputError("noise must be a finite number >= 0", field="noise")
-            rng = np.random.default_rng(seed)
-            rows = np.empty((samples + 2, n_inputs))
-            rng.standard_normal(out=rows[:samples])
-            rows[:samples] *= noise
-            rows[:samples] += x
-            rows[-2], rows[-1] = x, baseline
-            mean = np.full(samples, 1.0 / samples)
-            unit, values, gradient = output_and_input_gradient(
-                network, rows, unit, samples, mean, choose_row=-2)
-            value, baseline_value = values[-2:].tolist()
+            noisy = np.random.default_rng(seed).standard_normal((samples, n_inputs))
+            noisy *= noise
+            noisy += x
+            work = network.workspace(samples + 2, samples)
+            try:
+                points = work.examples
+                points[:, :samples] = noisy.T
+                points[:, -2], points[:, -1] = x, baseline
+                unit, value, baseline_value, gradient = _explained_pass(
+                    network, work, unit, np.full(samples, 1.0 / samples))
+            finally:
+                network.release(work)
         else:
             unit, value, baseline_value, gradient = gradient_at(network, x, baseline, unit)
         if method == "gradient_times_input":

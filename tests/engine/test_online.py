@@ -97,7 +97,7 @@ def test_xor_is_learnt_online_by_a_small_hidden_layer():
 @pytest.mark.parametrize("nesterov", [False, True])
 @pytest.mark.parametrize("schedule", ["constant", "invscaling"])
 def test_weights_do_not_depend_on_how_the_stream_is_cut_into_calls(nesterov, schedule):
-    """SGD moves the weights between two rows at every step (step_swapping_); calls of
+    """SGD moves the weights between two rows at every step of a run (begin_run); calls of
     odd and even lengths, and a resume from the optimizer state at an odd step
     count, must still give the weights of one uninterrupted call, bit for bit."""
     X, y = problem("logistic", 1, 120, seed=6)

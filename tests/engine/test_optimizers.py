@@ -162,17 +162,17 @@ def test_large_but_finite_weights_still_step_exactly():
 
 
 def swapping_steps(opt, grads):
-    """Steps the online trainer's way (the weights move between two rows); returns
-    the weights after each step."""
-    row = opt.begin_swapping()
+    """Steps the online trainer's way, in a run (SGD moves the weights between two
+    rows); returns the weights after each step."""
+    step, row = opt.begin_run()
     seen = []
     try:
         for g in grads:
             opt.grad[:] = g
-            row = opt.step_swapping_()
+            row = step(1.0)
             seen.append(opt.weight_rows[row].copy())
     finally:
-        opt.end_swapping()
+        opt.end_run()
     return seen
 
 
