@@ -44,6 +44,8 @@ from .network import Network
 METHODS = ("integrated_gradients", "gradient", "gradient_times_input", "smoothgrad")
 MAX_STEPS = 4096
 MAX_SAMPLES = 4096
+# An explained pass: (head unit, its value at x, at the baseline, the input gradient).
+Explained = tuple[int, float, float, NDArray[np.float64]]
 
 
 @functools.lru_cache(maxsize=32)
@@ -104,47 +106,58 @@ def path_rule(network: Network, baseline: NDArray[np.float64], delta: NDArray[np
     return _trapezoid(steps)
 
 
-def _explained_pass(network: Network, work: Workspace, unit: int | None,
-                    row_weights: NDArray[np.float64] | None = None,
-                    ) -> tuple[int, float, float, NDArray[np.float64]]:
-    """One forward and one backward pass of the workspace's examples: the points to
-    differentiate (its grad_rows), then x, then the baseline (a single point is x
-    itself). Returns the head unit explained (None: the most probable at x), its
-    value at x and at the baseline, and its gradient with respect to the inputs at
-    the point, or the `row_weights`-weighted sum of the gradients at the points."""
-    forward(work, work.inputs)
-    head = HEADS[network.output]
-    if head.value is not None and head.slope is not None:  # one output unit
-        unit = 0
-        if work.grad_rows == 1:  # one point: the scalar forms
-            ((value, baseline_value),) = work.logits.tolist()
-            value, baseline_value = head.value(value), head.value(baseline_value)
-            work.delta[0, 0] = head.slope(value)
-            gradient = backward(work, work.inputs, 0, False, row_weights)
-            assert gradient is not None  # an attributing workspace returns it
-            return unit, value, baseline_value, gradient
-    p = head.activate_(work.outputs)  # (rows, k)
-    if unit is None:
-        unit = int(p[-2].argmax())
-    value, baseline_value = p[-2:, unit].tolist()
-    head.jacobian_row(p[: work.grad_rows], unit, work.delta.T)
-    gradient = backward(work, work.inputs, 0, False, row_weights)
-    assert gradient is not None
-    return unit, value, baseline_value, gradient
-
-
 def gradient_at(network: Network, x: NDArray[np.float64], baseline: NDArray[np.float64],
-                unit: int | None) -> tuple[int, float, float, NDArray[np.float64]]:
+                unit: int | None) -> Explained:
     """The head unit explained (None: the most probable at x), its value at x and at
-    the baseline, and its gradient with respect to the inputs at x (n_inputs,)."""
-    work = network.workspace(2, 1)  # x, differentiated, and the baseline
+    the baseline, and its gradient with respect to the inputs at x (n_inputs,).
+
+    x and the baseline go forward together, x alone backward. This is the latency
+    path of an explained prediction: a single-output head runs in its scalar forms.
+    """
+    work = network.workspace(2, 1)
     try:
         x_column, baseline_column = work.columns
         x_column[...] = x
         baseline_column[...] = baseline
-        return _explained_pass(network, work, unit)
+        forward(work, work.inputs)
+        head = HEADS[network.output]
+        value_of, slope = head.value, head.slope
+        if value_of is None or slope is None:  # softmax: the array forms
+            return _explained(network, work, unit, None)
+        ((value, baseline_value),) = work.logits.tolist()
+        value, baseline_value = value_of(value), value_of(baseline_value)
+        gradient = backward(work, work.inputs, 0, slope(value))
+        assert gradient is not None  # an attributing workspace returns it
+        return 0, value, baseline_value, gradient
     finally:
         network.release(work)
+
+
+def _explained(network: Network, work: Workspace, unit: int | None,
+               row_weights: NDArray[np.float64] | None) -> Explained:
+    """The rest of an explained pass after `forward`, in the heads' array forms. The
+    workspace's examples are the points to differentiate (its grad_rows), then x,
+    then the baseline (a single point is x itself). Returns the head unit explained
+    (None: the most probable at x), its value at x and at the baseline, and its
+    gradient with respect to the inputs at the point, or the `row_weights`-weighted
+    sum of the gradients at the points."""
+    head = HEADS[network.output]
+    p = head.activate_(work.outputs)  # (rows, k)
+    if unit is None:
+        unit = int(p[-2].argmax()) if p.shape[1] > 1 else 0
+    value, baseline_value = p[-2:, unit].tolist()
+    head.jacobian_row(p[: work.grad_rows], unit, work.delta.T)
+    gradient = backward(work, work.inputs, 0, None, row_weights)
+    assert gradient is not None  # an attributing workspace returns it
+    return unit, value, baseline_value, gradient
+
+
+def explained_pass(network: Network, work: Workspace, unit: int | None,
+                   row_weights: NDArray[np.float64] | None = None) -> Explained:
+    """`_explained` after a forward pass of the workspace's examples (integrated
+    gradients, smoothgrad: many points, their gradients summed)."""
+    forward(work, work.inputs)
+    return _explained(network, work, unit, row_weights)
 
 
 @dataclass(frozen=True)
@@ -246,7 +259,7 @@ def explain(
         work = network.workspace(alphas.size, rule.size)
         try:
             _fill_path(work, baseline, delta, alphas)
-            unit, value, baseline_value, gradient = _explained_pass(network, work, unit, rule)
+            unit, value, baseline_value, gradient = explained_pass(network, work, unit, rule)
         finally:
             network.release(work)
         columns = gradient * delta
@@ -263,7 +276,7 @@ def explain(
                 points = work.examples
                 points[:, :samples] = noisy.T
                 points[:, -2], points[:, -1] = x, baseline
-                unit, value, baseline_value, gradient = _explained_pass(
+                unit, value, baseline_value, gradient = explained_pass(
                     network, work, unit, np.full(samples, 1.0 / samples))
             finally:
                 network.release(work)

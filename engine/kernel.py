@@ -48,50 +48,50 @@ ForwardPlan = tuple[Dot, Array, tuple[UpperStep, ...], Callable[[Array, Array], 
 # feeding the layer, the layer's delta transposed, its gradient block, bound dot of its
 # weights, its delta, the delta below, the slopes below).
 BackStep = tuple[Dot, Array, Array | None, Dot, Array, Array, Array]
-# One example, one output, learning: (the top layer's input block, its gradient block,
-# its weight column, the delta below, the slopes below).
-UnitTop = tuple[Array, Array, Array, Array, Array]
+# One example backward through one output: (the top layer's input block, its gradient
+# block, its weight column, the delta below, the slopes below).
+UnitTop = tuple[Array, Array | None, Array, Array, Array]
 # The first layer: (its delta transposed, its gradient block, bound dot of its weights,
 # its delta, that delta as a vector when one example goes backward).
 Bottom = tuple[Array, Array | None, Dot, Array, Array]
-BackwardPlan = tuple[Callable[[Array, Array, Array], object], Array, Array, Array, bool, bool,
+BackwardPlan = tuple[Callable[[Array, Array, Array], object], Array, Array, Array, bool,
                      tuple[BackStep, ...], UnitTop | None, tuple[BackStep, ...], Bottom]
 
 
-class _Pass:
-    """The steps of both passes over one copy of the weights, packed in tuples that
-    a pass unpacks at once (one attribute lookup costs about as much as a small
-    NumPy call's Python overhead, and a per-record pass would make a dozen)."""
-
-    __slots__ = ("forward", "backward")
-
-    def __init__(self, work: Workspace, layers: list[Array], grads: list[Array] | None,
-                 blocks: list[Array], cores: list[Array], deltas: list[Array],
-                 slopes: list[Array]) -> None:
-        last = len(layers) - 1
-        outs = [*cores, work.logits]
-        upper = tuple((cores[i - 1], layers[i].T.dot, blocks[i - 1], outs[i])
-                      for i in range(1, last + 1))
-        self.forward: ForwardPlan = (layers[0].T.dot, outs[0], upper, work.apply, work.logits)
-        g = work.grad_rows
-        back = [b if g == work.rows else b[:, :g] for b in blocks]
-        # Layers with a hidden layer below, top first.
-        steps: tuple[BackStep, ...] = tuple(
-            (back[i - 1].dot, deltas[i].T, None if grads is None else grads[i],
-             layers[i][:-1].dot, deltas[i], deltas[i - 1], slopes[i - 1])
-            for i in range(last, 0, -1))
-        # One example, one output, learning: the top delta is dz/dz = 1, so the top
-        # gradient is the block below it and the delta below is the weight column.
-        unit_top: UnitTop | None = None
-        if last > 0 and grads is not None and work.rows == 1 and work.logits.shape[0] == 1:
-            unit_top = (blocks[last - 1], grads[last], layers[last][:-1], deltas[last - 1],
-                        slopes[last - 1])
-        # (The delta of one example as a vector: d/dinputs comes back as one.)
-        bottom: Bottom = (deltas[0].T, None if grads is None else grads[0], layers[0][:-1].dot,
-                  deltas[0], deltas[0][:, 0] if g == 1 else deltas[0])
-        self.backward: BackwardPlan = (work.slope, work.hidden_back, work.slopes, work.ones,
-                                       work.learning, g == work.rows, steps, unit_top,
-                                       steps[1:], bottom)
+def _plans(work: Workspace, layers: list[Array], grads: list[Array] | None,
+           blocks: list[Array], cores: list[Array], deltas: list[Array],
+           slopes: list[Array]) -> tuple[ForwardPlan, BackwardPlan]:
+    """The steps of both passes over one copy of the weights (`layers`), packed in
+    tuples that a pass unpacks at once: one attribute lookup costs about as much
+    as a small NumPy call's Python overhead, and one record's pass makes a dozen."""
+    last = len(layers) - 1
+    outs = [*cores, work.logits]
+    upper = tuple((cores[i - 1], layers[i].T.dot, blocks[i - 1], outs[i])
+                  for i in range(1, last + 1))
+    forward_plan = (layers[0].T.dot, outs[0], upper, work.apply, work.logits)
+    g = work.grad_rows
+    back = [b if g == work.rows else b[:, :g] for b in blocks]
+    # A delta as examples x units, for the products with the blocks (a vector
+    # delta, of one example, as a (1, units) row).
+    rows_of = [d[None, :] if d.ndim == 1 else d.T for d in deltas]
+    # Layers with a hidden layer below, top first.
+    steps: tuple[BackStep, ...] = tuple(
+        (back[i - 1].dot, rows_of[i], None if grads is None else grads[i],
+         layers[i][:-1].dot, deltas[i], deltas[i - 1], slopes[i - 1])
+        for i in range(last, 0, -1))
+    # One example backward through one output: its delta is a float, and the delta
+    # below is the weight column times it (see `backward`).
+    unit_top: UnitTop | None = None
+    if last > 0 and g == 1 and work.logits.shape[0] == 1:
+        unit_top = (back[last - 1], None if grads is None else grads[last],
+                    layers[last][:-1, 0], deltas[last - 1], slopes[last - 1])
+    # (The delta as units x examples, for the row-weighted sum, and as it is: of one
+    # example a vector, so d/dinputs comes back as one.)
+    bottom: Bottom = (rows_of[0], None if grads is None else grads[0], layers[0][:-1].dot,
+                      rows_of[0].T, deltas[0])
+    backward_plan = (work.slope, work.hidden_back, work.slopes, work.ones, work.learning,
+                     steps, unit_top, steps[1:], bottom)
+    return forward_plan, backward_plan
 
 
 class Workspace:
@@ -110,14 +110,14 @@ class Workspace:
     __slots__ = ("params", "rows", "grad_rows", "shape", "inputs", "examples", "columns",
                  "hidden", "hidden_back", "slopes",
                  "ones", "logits", "outputs", "delta", "grad", "learning", "apply",
-                 "slope", "passes")
+                 "slope", "forward_plans", "backward_plans")
 
     def __init__(self, network: Network, rows: int, grad_rows: int | None = None, *,
                  grad: Array | None = None, weight_rows: Sequence[Array] | None = None
                  ) -> None:
         g = rows if grad_rows is None else grad_rows
-        if not 1 <= g <= rows:
-            raise ValueError(f"grad_rows must be in 1..{rows}, not {g}")
+        if not 1 <= g <= rows or (grad is not None and g != rows):
+            raise ValueError(f"grad_rows must be in 1..{rows} (all of them to learn), not {g}")
         sizes = network.sizes
         hidden_sizes = sizes[1:-1]
         self.params = network.params
@@ -126,12 +126,16 @@ class Workspace:
         self.examples = self.inputs[:-1]
         self.columns = tuple(self.examples[:, j] for j in range(min(rows, 2)))
         self.hidden = np.ones((sum(h + 1 for h in hidden_sizes), rows))
-        self.hidden_back = self.hidden if g == rows else self.hidden[:, :g]
-        self.slopes = np.empty((self.hidden.shape[0], g))
-        self.ones = np.ones_like(self.slopes)
         self.logits = np.empty((sizes[-1], rows))
         self.outputs = self.logits.T
         self.delta = np.empty((sizes[-1], g))
+        # With one example backward its slopes and deltas are vectors: a ufunc or a
+        # matrix-vector product costs less on a vector than on an (n, 1) array.
+        vector = g == 1
+        self.hidden_back = self.hidden[:, 0] if vector else \
+            self.hidden if g == rows else self.hidden[:, :g]
+        self.slopes = np.empty(self.hidden_back.shape)
+        self.ones = np.ones_like(self.slopes)
         blocks, cores, slopes, start = [], [], [], 0
         for h in hidden_sizes:
             blocks.append(self.hidden[start : start + h + 1])
@@ -139,22 +143,24 @@ class Workspace:
             slopes.append(self.slopes[start : start + h])
             start += h + 1
         # The delta of each layer's pre-activations: hidden layers, then the logits.
-        deltas = [*(np.empty((h, g)) for h in hidden_sizes), self.delta]
+        deltas = [*(np.empty(h if vector else (h, g)) for h in hidden_sizes),
+                  self.delta[:, 0] if vector else self.delta]
         activation = ACTIVATIONS[network.activation]
         self.apply, self.slope = activation.apply, activation.slope
         self.grad, self.learning = grad, grad is not None
         grads = None if grad is None else network.layer_views(grad)
         storages = (network.params,) if weight_rows is None else tuple(weight_rows)
-        self.passes = tuple(
-            _Pass(self, network.layers if storage is network.params
-                  else network.layer_views(storage), grads, blocks, cores, deltas, slopes)
-            for storage in storages)
+        plans = [_plans(self, network.layers if storage is network.params
+                        else network.layer_views(storage), grads, blocks, cores, deltas, slopes)
+                 for storage in storages]
+        self.forward_plans = tuple(forward for forward, _ in plans)
+        self.backward_plans = tuple(backward for _, backward in plans)
 
 
 def forward(work: Workspace, inputs: Array, live: int = 0) -> Array:
     """Run `inputs` (n_inputs + 1, rows; last row ones) through the network with the
     weights in row `live`: fills the hidden blocks; returns the logits (k, rows)."""
-    dot, out, upper, apply, logits = work.passes[live].forward
+    dot, out, upper, apply, logits = work.forward_plans[live]
     dot(inputs, out)
     for core, dot, block, out in upper:
         apply(core, core)
@@ -165,7 +171,7 @@ def forward(work: Workspace, inputs: Array, live: int = 0) -> Array:
 def hidden_preactivations(work: Workspace, inputs: Array, layer: int) -> Array:
     """Pre-activations (size, rows) of hidden layer `layer` (0: the first): the
     forward pass stopped before that layer's activation."""
-    dot, out, upper, apply, _ = work.passes[0].forward
+    dot, out, upper, apply, _ = work.forward_plans[0]
     dot(inputs, out)
     for core, dot, block, out in upper[:layer]:
         apply(core, core)
@@ -173,42 +179,57 @@ def hidden_preactivations(work: Workspace, inputs: Array, layer: int) -> Array:
     return out
 
 
-def backward(work: Workspace, inputs: Array, live: int = 0, unit: bool = False,
+def backward(work: Workspace, inputs: Array, live: int = 0, top: float | None = None,
              row_weights: Array | None = None) -> Array | None:
-    """Backpropagate `work.delta` (k, grad_rows) after a `forward` of `inputs`.
+    """Backpropagate the delta of the logits after a `forward` of `inputs`: `top`
+    for one example backward through a single output (a float: no array is
+    written per record), else `work.delta` (k, grad_rows).
 
     Learning (the workspace has a gradient): writes dLoss/dparams summed over the
-    first grad_rows examples into it and returns None. `unit` instead takes the
-    delta to be 1 (one example, one output): the gradient is then dz/dparams, which
-    the caller scales by dLoss/dz. Attributing: returns d/dinputs, (n_inputs,
-    grad_rows) or for one example (n_inputs,), or its `row_weights`-weighted sum
-    over the examples (n_inputs,), taken before the last product.
+    first grad_rows examples into it and returns None. One record with one output
+    passes top=1.0: the gradient is then dz/dparams, which the caller scales by
+    dLoss/dz. Attributing: returns d/dinputs, (n_inputs, grad_rows) or for one
+    example (n_inputs,), or its `row_weights`-weighted sum over the examples
+    (n_inputs,), taken before the last product.
     """
-    (slope, hidden, slopes_all, ones, learning, all_rows, steps, unit_top, after_top,
-     bottom) = work.passes[live].backward
+    (slope, hidden, slopes_all, ones, learning, steps, unit_top, after_top,
+     bottom) = work.backward_plans[live]
     multiply = np.multiply
     if steps:
         slope(hidden, slopes_all, ones)  # every hidden layer at once
-        if unit:
-            assert unit_top is not None  # a one-example, one-output learning workspace
+        if top is not None:
+            assert unit_top is not None  # one example backward, one output
             block, top_grad, column, below, slopes = unit_top
-            np.copyto(top_grad, block)
-            multiply(column, slopes, below)
+            if top == 1.0:
+                multiply(column, slopes, below)
+            else:
+                multiply(column, top, below)
+                multiply(below, slopes, below)
+            if top_grad is not None:  # learning
+                np.copyto(top_grad, block)
+                if top != 1.0:
+                    multiply(top_grad, top, top_grad)
             steps = after_top
-        for block_dot, delta_t, grad, weights_dot, delta, below, slopes in steps:
-            if learning:
+        if learning:
+            for block_dot, delta_t, grad, weights_dot, delta, below, slopes in steps:
                 block_dot(delta_t, grad)  # dL/dW = input x delta, summed over examples
-            weights_dot(delta, below)  # the delta one layer down, before its slopes
-            multiply(below, slopes, below)
-    elif unit:  # no hidden layer: dz/dW is the input itself
-        np.copyto(bottom[1], inputs)  # type: ignore[arg-type]  # (learning: a gradient)
-        return None
-    delta_t, first_grad, weights_dot, delta, delta_vector = bottom
+                weights_dot(delta, below)  # the delta one layer down, before its slopes
+                multiply(below, slopes, below)
+        else:
+            for _, _, _, weights_dot, delta, below, slopes in steps:
+                weights_dot(delta, below)
+                multiply(below, slopes, below)
+    elif top is not None:  # no hidden layer
+        if learning and top == 1.0:
+            np.copyto(bottom[1], inputs)  # type: ignore[arg-type]  # dz/dW is the input
+            return None
+        work.delta[0, 0] = top
+    delta_t, first_grad, weights_dot, delta_columns, delta = bottom
     if learning:
-        (inputs if all_rows else inputs[:, : work.grad_rows]).dot(delta_t, first_grad)
+        inputs.dot(delta_t, first_grad)
         return None
     if row_weights is not None:
-        summed: Array = weights_dot(delta.dot(row_weights))
+        summed: Array = weights_dot(delta_columns.dot(row_weights))
         return summed
-    gradient: Array = weights_dot(delta_vector)
+    gradient: Array = weights_dot(delta)
     return gradient

@@ -122,7 +122,7 @@ class OnlineTrainer:
                 if not isfinite(z):
                     raise NonFiniteError("the network output is not finite")
                 result = value(z)
-                backward(work, x, live, True)  # dz/dparams (the unit delta)
+                backward(work, x, live, 1.0)  # dz/dparams
                 live = step(scalar_delta(result, targets[i]))  # scaled by dLoss/dz
                 if identity:
                     result = result * target_scale + target_center

@@ -6,7 +6,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from engine.attribution import _explained_pass, gradient_at
+from engine.attribution import explained_pass, gradient_at
 from engine.network import Network
 
 HEAD = {"binary": ("logistic", 1), "multiclass": ("softmax", 3), "regression": ("identity", 1)}
@@ -26,7 +26,7 @@ def many_points(network: Network, rows: np.ndarray, unit: int | None,
     work = network.workspace(rows.shape[0], rows.shape[0] - 2)
     try:
         work.examples[...] = rows.T
-        return _explained_pass(network, work, unit, weights)
+        return explained_pass(network, work, unit, weights)
     finally:
         network.release(work)
 
