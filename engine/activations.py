@@ -32,7 +32,8 @@ Array = NDArray[np.float64]
 # ------------------------------------------------------------ the logistic function
 def logistic_(z: Array, out: Array) -> Array:
     """Logistic of z into out (may be z), as (1 + tanh(z / 2)) / 2: never overflows,
-    no branch, four in-place passes."""
+    no branch, four in-place passes. Accurate to 1.2e-16 absolutely (not
+    relatively: far below 0 it is exactly 0, where 1 / (1 + e^-z) is tiny)."""
     np.multiply(z, 0.5, out)
     np.tanh(out, out)
     np.multiply(out, 0.5, out)
@@ -44,8 +45,8 @@ def logistic(z: float) -> float:
 
     On a float a branch costs nothing; this form is the one the per-record path
     has always used, which keeps weights learnt online bit-identical across
-    releases. It agrees with `logistic_` to within two units in the last place
-    (NumPy's vectorised tanh and the C library's exp round differently).
+    releases. It agrees with `logistic_` to within 2^-52 (4.4e-16): the two round
+    differently, and NumPy's vectorised tanh is not the C library's.
     """
     if z >= 0.0:
         return 1.0 / (1.0 + math.exp(-z))

@@ -8,9 +8,9 @@ so `layer.T @ block` gives the next pre-activations, bias included, in one
 product. With one example the blocks are columns and every product is a
 matrix-vector product; the same code runs a batch.
 
-`forward` fills the hidden blocks and the logits. `backward` starts from
-`work.delta` (k, grad_rows), which the caller fills: dLoss/dlogits to learn
-(the parameter gradient, summed over the examples, goes into the gradient the
+`forward` fills the hidden blocks and the logits. `backward` starts from the
+delta of the logits, which the caller gives: dLoss/dlogits to learn (the
+parameter gradient, summed over the examples, goes into the gradient the
 workspace was built with), or a row of the head's Jacobian, d output /
 dlogits, to attribute (the input gradient comes back). Only the first
 `grad_rows` examples go backward: attribution sends x and the baseline forward
@@ -51,8 +51,8 @@ BackStep = tuple[Dot, Array, Array | None, Dot, Array, Array, Array]
 # One example backward through one output: (the top layer's input block, its gradient
 # block, its weight column, the delta below, the slopes below).
 UnitTop = tuple[Array, Array | None, Array, Array, Array]
-# The first layer: (its delta transposed, its gradient block, bound dot of its weights,
-# its delta, that delta as a vector when one example goes backward).
+# The first layer: (its delta as examples x units, its gradient block, bound dot of its
+# weights, its delta as units x examples, its delta as it is: a vector for one example).
 Bottom = tuple[Array, Array | None, Dot, Array, Array]
 BackwardPlan = tuple[Callable[[Array, Array, Array], object], Array, Array, Array, bool,
                      tuple[BackStep, ...], UnitTop | None, tuple[BackStep, ...], Bottom]
@@ -85,8 +85,7 @@ def _plans(work: Workspace, layers: list[Array], grads: list[Array] | None,
     if last > 0 and g == 1 and work.logits.shape[0] == 1:
         unit_top = (back[last - 1], None if grads is None else grads[last],
                     layers[last][:-1, 0], deltas[last - 1], slopes[last - 1])
-    # (The delta as units x examples, for the row-weighted sum, and as it is: of one
-    # example a vector, so d/dinputs comes back as one.)
+    # (Of one example the delta is a vector, so d/dinputs comes back as one.)
     bottom: Bottom = (rows_of[0], None if grads is None else grads[0], layers[0][:-1].dot,
                       rows_of[0].T, deltas[0])
     backward_plan = (work.slope, work.hidden_back, work.slopes, work.ones, work.learning,
@@ -95,22 +94,23 @@ def _plans(work: Workspace, layers: list[Array], grads: list[Array] | None,
 
 
 class Workspace:
-    """Buffers and views for passes of `rows` examples through one network.
+    """Buffers and views for passes of `rows` examples through one network, the
+    first `grad_rows` of them backward. Serves one pass at a time.
 
-    `inputs`: (n_inputs + 1, rows), last row ones; callers write their examples into
-    `examples` (its first n_inputs rows; `columns` are the first two examples, the
-    one-record passes' x and baseline) or pass their own block of that shape.
-    `logits`: (k, rows), with `outputs` its (rows, k) view. `delta`: (k, grad_rows),
-    the start of `backward`.
-    `grad`: a flat vector laid out like the parameters, to learn into (None: the
-    workspace attributes). `weight_rows`: the vectors the weights may live in
-    (default: the network's parameters). Serves one pass at a time.
+    `grad`: a flat vector laid out like the parameters to learn into (every row
+    goes backward), or None to attribute. `weight_rows`: the vectors the weights
+    may live in (default: the network's parameters).
+
+    `inputs` (n_inputs + 1, rows), last row ones: callers write their examples into
+    `examples`, its first n_inputs rows (`columns`: the first two examples, a
+    one-point explanation's x and baseline), or pass their own block of that shape.
+    `logits` (k, rows) and `outputs`, its (rows, k) view; `delta` (k, grad_rows),
+    the delta of the logits that `backward` starts from.
     """
 
     __slots__ = ("params", "rows", "grad_rows", "shape", "inputs", "examples", "columns",
-                 "hidden", "hidden_back", "slopes",
-                 "ones", "logits", "outputs", "delta", "grad", "learning", "apply",
-                 "slope", "forward_plans", "backward_plans")
+                 "hidden", "hidden_back", "slopes", "ones", "logits", "outputs", "delta",
+                 "grad", "learning", "apply", "slope", "forward_plans", "backward_plans")
 
     def __init__(self, network: Network, rows: int, grad_rows: int | None = None, *,
                  grad: Array | None = None, weight_rows: Sequence[Array] | None = None

@@ -148,7 +148,6 @@ class Network:
             raise InvalidInputError("inputs must be finite", field=None)
         return X
 
-
     # ------------------------------------------------------------------ passes
     def workspace(self, rows: int, grad_rows: int = 0) -> Workspace:
         """A kernel workspace for attributing passes over `rows` examples (the first
@@ -182,6 +181,8 @@ class Network:
     def logits(self, X: Array) -> Array:
         """Output pre-activations (n, n_outputs)."""
         X = self.check_inputs(X)
+        if X.shape[0] == 0:
+            return np.empty((0, self.sizes[-1]))
         work = self.workspace(X.shape[0])
         try:
             np.copyto(work.examples, X.T)
@@ -221,6 +222,8 @@ class Network:
         if of not in ("output", "logit"):
             raise InvalidInputError(f"of must be 'output' or 'logit', not {of!r}", field="of")
         X = self.check_inputs(X)
+        if X.shape[0] == 0:
+            return np.empty((0, self.sizes[0]))
         work = self.workspace(X.shape[0])
         try:
             np.copyto(work.examples, X.T)
