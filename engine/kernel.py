@@ -110,7 +110,8 @@ class Workspace:
 
     __slots__ = ("params", "rows", "grad_rows", "shape", "inputs", "examples", "columns",
                  "hidden", "hidden_back", "slopes", "ones", "logits", "outputs", "delta",
-                 "grad", "learning", "apply", "slope", "forward_plans", "backward_plans")
+                 "grad", "learning", "apply", "slope", "forward_plans", "backward_plans",
+                 "nbytes")
 
     def __init__(self, network: Network, rows: int, grad_rows: int | None = None, *,
                  grad: Array | None = None, weight_rows: Sequence[Array] | None = None
@@ -155,6 +156,8 @@ class Workspace:
                  for storage in storages]
         self.forward_plans = tuple(forward for forward, _ in plans)
         self.backward_plans = tuple(backward for _, backward in plans)
+        self.nbytes = sum(a.nbytes for a in (self.inputs, self.hidden, self.logits,
+                                             self.delta, self.slopes, self.ones, *deltas[:-1]))
 
 
 def forward(work: Workspace, inputs: Array, live: int = 0) -> Array:

@@ -25,9 +25,10 @@ from engine.errors import InvalidInputError
 from engine.kernel import Workspace, backward, forward
 
 Array = NDArray[np.float64]
-# Pooled workspaces: shapes of at most this many examples, this many shapes (the
-# oldest goes first), this many workspaces of a shape (one per concurrent caller).
-POOL_ROWS, POOL_SHAPES, POOL_DEPTH = 512, 8, 4
+# Pooled workspaces: of at most this many bytes each, this many shapes (the oldest
+# goes first), this many of a shape (one per concurrent caller): at most 4 MiB a
+# network, about 150 KiB for 20-32-16-1 with one-row predictions and explanations.
+POOL_BYTES, POOL_SHAPES, POOL_DEPTH = 256 * 1024, 8, 2
 
 
 class Network:
@@ -167,7 +168,7 @@ class Network:
         """Give a workspace from `workspace` back to the pool (if it is worth keeping)."""
         kept = self._pool.get(work.shape)
         if kept is None:
-            if work.rows > POOL_ROWS:
+            if work.nbytes > POOL_BYTES:
                 return
             pool = self._pool
             if len(pool) >= POOL_SHAPES:

@@ -1,4 +1,4 @@
-"""The attribution passes (engine.attribution on the kernel) agree with the network's
+"""The attribution passes (engine.input_gradients, on the kernel) agree with the network's
 own forward pass and input gradient, and their pooled workspaces follow the weights."""
 
 from __future__ import annotations
@@ -6,7 +6,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from engine.attribution import explained_pass, gradient_at
+from engine.input_gradients import explained_pass, gradient_at
 from engine.network import Network
 
 HEAD = {"binary": ("logistic", 1), "multiclass": ("softmax", 3), "regression": ("identity", 1)}
@@ -119,12 +119,13 @@ def test_pooled_workspaces_follow_the_weights_and_serve_concurrent_callers() -> 
 
 
 def test_the_pool_keeps_a_bounded_number_of_shapes() -> None:
-    from engine.network import POOL_DEPTH, POOL_ROWS, POOL_SHAPES
+    from engine.network import POOL_BYTES, POOL_DEPTH, POOL_SHAPES
 
     network, rows = setup("multiclass", (8,), "tanh")
     for n in range(1, POOL_SHAPES + 5):
         network.forward(np.resize(rows, (n, 6)))
     kept = network._pool
-    assert len(kept) <= POOL_SHAPES and all(len(v) <= POOL_DEPTH for v in kept.values())
-    network.forward(np.zeros((POOL_ROWS + 1, 6)))
-    assert all(rows_ <= POOL_ROWS for rows_, _ in kept)
+    assert len(kept) == POOL_SHAPES and all(len(v) <= POOL_DEPTH for v in kept.values())
+    assert (POOL_SHAPES + 4, POOL_SHAPES + 4) in kept and (1, 1) not in kept  # oldest out
+    network.forward(np.zeros((POOL_BYTES // 8, 6)))
+    assert all(w.nbytes <= POOL_BYTES for v in kept.values() for w in v)
