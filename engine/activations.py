@@ -54,7 +54,7 @@ def logistic(z: float) -> float:
     return e / (1.0 + e)
 
 
-def logistic_slope(y: Array, out: Array, ones: Array) -> Array:
+def logistic_slope(y: Array, out: Array, ones: Array | float) -> Array:
     """d logistic/dz = y (1 - y)."""
     np.subtract(ones, y, out)
     return np.multiply(out, y, out)
@@ -66,13 +66,13 @@ def relu_(z: Array, out: Array) -> Array:
     return np.maximum(z, 0.0, out=out)  # a positional out is deprecated for maximum
 
 
-def tanh_slope(y: Array, out: Array, ones: Array) -> Array:
+def tanh_slope(y: Array, out: Array, ones: Array | float) -> Array:
     """d tanh/dz = 1 - y^2."""
     np.multiply(y, y, out)
     return np.subtract(ones, out, out)
 
 
-def relu_slope(y: Array, out: Array, ones: Array) -> Array:
+def relu_slope(y: Array, out: Array, ones: Array | float) -> Array:
     """d relu/dz = 1 where y > 0, else 0 (0 at the kink, as PyTorch)."""
     # y >= 0 always, so sign(y) is exactly the indicator [y > 0].
     return np.sign(y, out)
@@ -115,9 +115,8 @@ def _identity_(z: Array) -> Array:
 
 
 def _logistic_jacobian_row(p: Array, unit: int, out: Array) -> Array:
-    """d p / d z = p (1 - p) (one unit)."""
-    np.subtract(1.0, p, out)
-    return np.multiply(out, p, out)
+    """d p / d z = p (1 - p) (one unit): the hidden activation's slope."""
+    return logistic_slope(p, out, 1.0)
 
 
 def _softmax_jacobian_row(p: Array, unit: int, out: Array) -> Array:
