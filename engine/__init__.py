@@ -3,6 +3,13 @@
 No I/O, no globals, no environment: everything comes in as arguments (random
 state as a seed) and goes out as arrays or bytes. It imports neither Flask nor
 SQLAlchemy and is usable and testable on its own; service/ decides where bytes live.
+
+Reading order: `activations` (the one table of element-wise functions) and
+`heads` (the losses on them); `network` (parameters and layout) and `kernel`
+(the one forward and one backward pass, over a workspace); then the callers:
+`online` (one record per step), `batch` (mini-batch epochs), `input_gradients`
+and `attribution` (explanations); `optimizers` (SGD, Adam) step the gradient
+the kernel writes. `learner` ties them to `encoding`, `metrics` and `snapshot`.
 """
 
 from engine.attribution import METHODS as EXPLANATION_METHODS

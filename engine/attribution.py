@@ -37,7 +37,8 @@ from numpy.typing import NDArray
 
 from .encoding import Encoder
 from .errors import InvalidInputError
-from .input_gradients import gradient_at, output_and_input_gradient
+from .input_gradients import explained_pass, gradient_at
+from .kernel import Workspace, hidden_preactivations
 from .network import Network
 
 METHODS = ("integrated_gradients", "gradient", "gradient_times_input", "smoothgrad")
@@ -69,28 +70,36 @@ def _relu_pieces(network: Network, baseline: NDArray[np.float64], delta: NDArray
     before the head), and the midpoint rule is exact for an identity head.
     """
     alphas = np.linspace(0.0, 1.0, steps + 1)
-    weights, biases = network.weights, network.biases
-    for layer in range(len(weights) - 1):
-        a = baseline + alphas[:, None] * delta
-        for i in range(layer + 1):
-            z = np.dot(a, weights[i])
-            z += biases[i]
-            a = np.maximum(z, 0.0)
-        left, unit = np.nonzero(z[:-1] * z[1:] < 0.0)
-        if left.size:
-            share = z[left, unit] / (z[left, unit] - z[left + 1, unit])
-            crossings = alphas[left] + share * (alphas[left + 1] - alphas[left])
-            alphas = np.unique(np.concatenate((alphas, crossings)))
+    for layer in range(len(network.sizes) - 2):
+        work = network.workspace(alphas.size)
+        try:
+            _fill_path(work, baseline, delta, alphas)
+            z = hidden_preactivations(work, work.inputs, layer).T  # (nodes, units)
+            left, unit = np.nonzero(z[:-1] * z[1:] < 0.0)
+            if left.size:
+                share = z[left, unit] / (z[left, unit] - z[left + 1, unit])
+                crossings = alphas[left] + share * (alphas[left + 1] - alphas[left])
+                alphas = np.unique(np.concatenate((alphas, crossings)))
+        finally:
+            network.release(work)
     widths = np.diff(alphas)
     middles = alphas[:-1] + 0.5 * widths
     return np.concatenate((middles, [1.0, 0.0])), widths
+
+
+def _fill_path(work: Workspace, baseline: NDArray[np.float64], delta: NDArray[np.float64],
+               alphas: NDArray[np.float64]) -> None:
+    """The workspace's examples: the points baseline + alpha * delta, one per alpha."""
+    points = work.examples
+    np.multiply(delta[:, None], alphas, points)
+    points += baseline[:, None]
 
 
 def path_rule(network: Network, baseline: NDArray[np.float64], delta: NDArray[np.float64],
               steps: int) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
     """Quadrature for integrated gradients: positions alpha on the path (the m
     nodes, then 1 and 0 for f(x) and f(baseline)) and the nodes' weights (m,)."""
-    if network.activation == "relu" and len(network.weights) > 1:
+    if network.activation == "relu" and len(network.sizes) > 2:
         return _relu_pieces(network, baseline, delta, steps)
     return _trapezoid(steps)
 
@@ -190,26 +199,31 @@ def explain(
         _check_count("steps", steps, MAX_STEPS)
         delta = x - baseline
         alphas, rule = path_rule(network, baseline, delta, steps)
-        path = baseline + alphas[:, None] * delta  # quadrature nodes, then x, then baseline
-        unit, values, gradient = output_and_input_gradient(
-            network, path, unit, rule.size, rule, choose_row=-2)
-        value, baseline_value = values[-2:].tolist()
+        # Quadrature nodes, then x, then the baseline (alphas ends with 1 and 0).
+        work = network.workspace(alphas.size, rule.size)
+        try:
+            _fill_path(work, baseline, delta, alphas)
+            unit, value, baseline_value, gradient = explained_pass(network, work, unit, rule)
+        finally:
+            network.release(work)
         columns = gradient * delta
     else:
         if method == "smoothgrad":
             _check_count("samples", samples, MAX_SAMPLES)
             if not math.isfinite(noise) or noise < 0.0:
                 raise InvalidInputError("noise must be a finite number >= 0", field="noise")
-            rng = np.random.default_rng(seed)
-            rows = np.empty((samples + 2, n_inputs))
-            rng.standard_normal(out=rows[:samples])
-            rows[:samples] *= noise
-            rows[:samples] += x
-            rows[-2], rows[-1] = x, baseline
-            mean = np.full(samples, 1.0 / samples)
-            unit, values, gradient = output_and_input_gradient(
-                network, rows, unit, samples, mean, choose_row=-2)
-            value, baseline_value = values[-2:].tolist()
+            noisy = np.random.default_rng(seed).standard_normal((samples, n_inputs))
+            noisy *= noise
+            noisy += x
+            work = network.workspace(samples + 2, samples)
+            try:
+                points = work.examples
+                points[:, :samples] = noisy.T
+                points[:, -2], points[:, -1] = x, baseline
+                unit, value, baseline_value, gradient = explained_pass(
+                    network, work, unit, np.full(samples, 1.0 / samples))
+            finally:
+                network.release(work)
         else:
             unit, value, baseline_value, gradient = gradient_at(network, x, baseline, unit)
         if method == "gradient_times_input":

@@ -18,7 +18,8 @@ from numpy.typing import NDArray
 
 from engine import heads
 from engine.errors import NonFiniteError, TrainingCancelled
-from engine.network import Network
+from engine.kernel import Workspace
+from engine.network import Network, mean_loss_gradient
 from engine.optimizers import Optimizer
 
 Array = NDArray[np.float64]
@@ -55,8 +56,7 @@ def split_validation(n: int, fraction: float,
 
 def mean_loss(network: Network, loss: str, X: Array, y: NDArray[Any]) -> float:
     """Mean per-example loss of the network on (X, y)."""
-    z = network.hidden_and_logits(X)[-1]
-    return float(heads.losses(network.output, loss, z, y).mean())
+    return float(heads.losses(network.output, loss, network.logits(X), y).mean())
 
 
 def fit(network: Network, optimizer: Optimizer, loss: str, X: Array, y: NDArray[Any],
@@ -75,6 +75,13 @@ def fit(network: Network, optimizer: Optimizer, loss: str, X: Array, y: NDArray[
     batch_size = int(training["batch_size"])
     patience = int(training["patience"])
     n = X_train.shape[0]
+    # Examples are columns for the kernel: the training rows, transposed, with a
+    # row of ones (the bias input) below them.
+    inputs = np.ones((X.shape[1] + 1, n))
+    inputs[:-1] = X_train.T
+    # One workspace per batch shape (the last batch of an epoch may be shorter).
+    work = {size: Workspace(network, size, grad=optimizer.grad)
+            for size in {min(batch_size, n), n % batch_size or min(batch_size, n)}}
     best = math.inf
     best_epoch = 0
     best_params = network.params.copy()
@@ -88,14 +95,14 @@ def fit(network: Network, optimizer: Optimizer, loss: str, X: Array, y: NDArray[
             raise TrainingCancelled(f"cancelled before epoch {epoch}")
         order = rng.permutation(n)
         # One shuffled copy per epoch; the batches are then views of it.
-        X_epoch, y_epoch = X_train[order], y_train[order]
+        inputs_epoch, y_epoch = inputs[:, order], y_train[order]
         total = 0.0
         with np.errstate(over="ignore", invalid="ignore"):  # non-finite: raised below
             for start in range(0, n, batch_size):
                 stop = min(start + batch_size, n)
-                batch_loss, _ = network.loss_gradient(X_epoch[start:stop],
-                                                      y_epoch[start:stop], loss,
-                                                      out=optimizer.grad)
+                batch_loss = mean_loss_gradient(work[stop - start],
+                                                inputs_epoch[:, start:stop],
+                                                y_epoch[start:stop], network.output, loss)
                 if not math.isfinite(batch_loss):
                     raise NonFiniteError(f"epoch {epoch}: the loss is not finite")
                 optimizer.step_()

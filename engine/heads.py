@@ -1,21 +1,24 @@
-"""Output heads and their losses, batched.
+"""The losses defined on each output head, and their deltas dLoss/dlogits.
 
-Heads: `logistic` (binary: one unit, p(class 1)), `softmax` (multiclass), `identity`
-(regression). Losses: `cross_entropy` (logistic or softmax) and `squared_error`
-(identity, or logistic as an option), each the mean over examples of the
-per-example loss; squared error is 0.5 (y - t)^2 so its delta is (y - t).
-Class targets are indices (n,) int64; regression targets values (n,) float64.
+Losses: `cross_entropy` (logistic or softmax head) and `squared_error` (identity,
+or logistic as an option), each the mean over examples of the per-example loss;
+squared error is 0.5 (y - t)^2 so its delta is (y - t). Class targets are
+indices (n,) int64; regression targets values (n,) float64. The heads
+themselves (their outputs and slopes) are in engine.activations.
 """
 
 from __future__ import annotations
 
+from collections.abc import Callable
+from typing import Any
+
 import numpy as np
 from numpy.typing import NDArray
 
+from engine.activations import HEADS, logistic_
 from engine.errors import InvalidInputError
 
 Array = NDArray[np.float64]
-HEADS = ("logistic", "softmax", "identity")
 LOSS_OF_HEAD = {
     "logistic": ("cross_entropy", "squared_error"),
     "softmax": ("cross_entropy",),
@@ -32,39 +35,6 @@ def check_head(output: str, loss: str) -> None:
                                 field="loss")
 
 
-def sigmoid(z: Array) -> Array:
-    """Logistic function, stable for any z: exp is only taken of -|z|."""
-    e = np.exp(-np.abs(z))
-    return np.where(z >= 0.0, 1.0 / (1.0 + e), e / (1.0 + e))
-
-
-def activate_(output: str, z: Array) -> Array:
-    """Head outputs (n, k) from logits (n, k), computed in place over z (mutates z)."""
-    if output == "logistic":
-        # (1 + tanh(z / 2)) / 2 is the logistic function: no overflow, four passes.
-        np.multiply(z, 0.5, out=z)
-        np.tanh(z, out=z)
-        np.multiply(z, 0.5, out=z)
-        return np.add(z, 0.5, out=z)
-    if output == "softmax":
-        z -= z.max(axis=1, keepdims=True)  # exp never overflows
-        np.exp(z, out=z)
-        z /= z.sum(axis=1, keepdims=True)
-    return z
-
-
-def activate(output: str, z: Array) -> Array:
-    """Head outputs (n, k) from logits (n, k): probabilities or values."""
-    if output == "logistic":
-        return sigmoid(z)
-    if output == "softmax":
-        shifted = z - z.max(axis=1, keepdims=True)  # exp never overflows
-        e: Array = np.exp(shifted)
-        e /= e.sum(axis=1, keepdims=True)
-        return e
-    return z.copy()
-
-
 def losses(output: str, loss: str, z: Array, y: NDArray[np.generic]) -> Array:
     """Per-example loss (n,) from logits `z` (n, k) and targets `y` (n,)."""
     if output == "logistic" and loss == "cross_entropy":
@@ -73,7 +43,8 @@ def losses(output: str, loss: str, z: Array, y: NDArray[np.generic]) -> Array:
         # -[t log p + (1-t) log(1-p)] = softplus(z) - t z, stable through log1p(exp(-|z|)).
         return np.maximum(zc, 0.0) - t * zc + np.log1p(np.exp(-np.abs(zc)))
     if output == "logistic":
-        diff = sigmoid(z[:, 0]) - y.astype(np.float64)
+        p = logistic_(z[:, 0], np.empty(z.shape[0]))
+        diff = p - y.astype(np.float64)
         return 0.5 * diff * diff
     if output == "softmax":
         peak = z.max(axis=1)
@@ -83,26 +54,33 @@ def losses(output: str, loss: str, z: Array, y: NDArray[np.generic]) -> Array:
     return 0.5 * diff * diff
 
 
-def delta(output: str, loss: str, p: Array, y: NDArray[np.generic]) -> Array:
-    """dLoss/dz per example (n, k) from head outputs `p` (n, k) and targets `y` (n,)."""
+def delta_(output: str, loss: str, p: Array, y: NDArray[np.generic], out: Array) -> Array:
+    """dLoss/dz per example into out (n, k), from head outputs `p` (n, k) and targets
+    `y` (n,)."""
     if output == "softmax":
         # softmax + cross-entropy: dL/dz = p - onehot(y).
-        d = p.copy()
-        d[np.arange(p.shape[0]), y.astype(np.intp)] -= 1.0
-        return d
-    d = p - y.astype(np.float64)[:, None]  # logistic + CE and identity + SE: p - t
+        np.copyto(out, p)
+        out[np.arange(p.shape[0]), y.astype(np.intp)] -= 1.0
+        return out
+    np.subtract(p, y.astype(np.float64)[:, None], out)  # logistic + CE, identity + SE: p - t
     if output == "logistic" and loss == "squared_error":
-        d *= p * (1.0 - p)  # chain through dp/dz = p (1 - p)
+        out *= p * (1.0 - p)  # chain through dp/dz = p (1 - p)
+    return out
+
+
+# Scalar forms for a single-output head: dLoss/dz from the output p and the target t.
+def _output_minus_target(p: float, t: Any) -> float:
+    d: float = p - t  # logistic + cross-entropy and identity + squared error: p - t
     return d
 
 
-def jacobian_row(output: str, p: Array, index: int) -> Array:
-    """d p[:, index] / dz (n, k): the start of a backward pass from one output."""
-    if output == "softmax":
-        # dp_i/dz_j = p_i (delta_ij - p_j)
-        d = -p[:, index : index + 1] * p
-        d[:, index] += p[:, index]
-        return d
-    if output == "logistic":
-        return p * (1.0 - p)
-    return np.ones_like(p)
+def _squared_error_on_logistic(p: float, t: Any) -> float:
+    d: float = p - t
+    return d * (p * (1.0 - p))  # chain through dp/dz = p (1 - p)
+
+
+SCALAR_DELTA: dict[tuple[str, str], Callable[[float, Any], float]] = {
+    ("logistic", "cross_entropy"): _output_minus_target,
+    ("logistic", "squared_error"): _squared_error_on_logistic,
+    ("identity", "squared_error"): _output_minus_target,
+}

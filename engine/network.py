@@ -5,22 +5,30 @@ sizes[i] rows are `weights[i]` (scikit-learn's coefs_ layout) and its last row i
 `biases[i]`. All three are views into `params`, so an optimizer updates the whole
 network with a few whole-vector operations, and a row `[a, 1]` times `layers[i]`
 gives the next pre-activation, bias included, in one product.
+
+The passes (outputs, loss gradients, input gradients) run on engine.kernel; the
+network keeps a small pool of its workspaces so that a one-row call builds none.
 """
 
 from __future__ import annotations
 
+import contextlib
 import math
 from collections.abc import Sequence
-from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
 
 from engine import heads
-from engine.activations import ACTIVATE, DERIVATIVE
+from engine.activations import ACTIVATIONS, HEADS
 from engine.errors import InvalidInputError
+from engine.kernel import Workspace, backward, forward
 
 Array = NDArray[np.float64]
+# Pooled workspaces: of at most this many bytes each, this many shapes (the oldest
+# goes first), this many of a shape (one per concurrent caller): at most 4 MiB a
+# network, about 150 KiB for 20-32-16-1 with one-row predictions and explanations.
+POOL_BYTES, POOL_SHAPES, POOL_DEPTH = 256 * 1024, 8, 2
 
 
 class Network:
@@ -40,9 +48,9 @@ class Network:
         if len(sizes) < 2 or min(sizes) < 1:
             raise InvalidInputError("a network needs at least an input and an output size",
                                     field="sizes")
-        if activation not in ACTIVATE:
+        if activation not in ACTIVATIONS:
             raise InvalidInputError(f"unknown activation {activation!r}", field="activation")
-        if output not in heads.HEADS:
+        if output not in HEADS:
             raise InvalidInputError(f"unknown output head {output!r}", field="output")
         if output == "logistic" and sizes[-1] != 1:
             raise InvalidInputError("a logistic head has one output", field="output")
@@ -57,12 +65,7 @@ class Network:
                 raise InvalidInputError(f"expected {n} parameters, got shape {params.shape}",
                                         field="params")
             self.params = np.array(params, dtype=np.float64)  # own copy, contiguous
-        self.layers = self._views(self.params)
-        self.weights = [layer[:-1] for layer in self.layers]
-        self.biases = [layer[-1] for layer in self.layers]
-        # Reusable scratch of passes that keep views of the parameters (one-record
-        # explanations, engine.input_gradients); each entry serves one caller at a time.
-        self.workspaces: list[Any] = []
+        self._set_views()
 
     def bind_(self, storage: Array) -> None:
         """Move the parameters into `storage` (1-D float64, right size) and rebuild the views.
@@ -76,10 +79,23 @@ class Network:
                                     "parameter count", field="params")
         storage[...] = self.params
         self.params = storage
-        self.layers = self._views(storage)
+        self._set_views()
+
+    def _set_views(self) -> None:
+        self.layers = self.layer_views(self.params)
         self.weights = [layer[:-1] for layer in self.layers]
         self.biases = [layer[-1] for layer in self.layers]
-        self.workspaces = []  # their views are of the old storage
+        # Pooled kernel workspaces by (rows, grad_rows); their views are of `params`.
+        self._pool: dict[tuple[int, int], list[Workspace]] = {}
+
+    def layer_views(self, flat: Array) -> list[Array]:
+        """Per-layer (fan_in + 1, fan_out) views of a flat vector laid out like params."""
+        views, offset = [], 0
+        for fan_in, fan_out in zip(self.sizes[:-1], self.sizes[1:], strict=True):
+            size = (fan_in + 1) * fan_out
+            views.append(flat[offset : offset + size].reshape(fan_in + 1, fan_out))
+            offset += size
+        return views
 
     @staticmethod
     def parameter_count(sizes: Sequence[int]) -> int:
@@ -133,66 +149,52 @@ class Network:
             raise InvalidInputError("inputs must be finite", field=None)
         return X
 
-    def hidden_and_logits(self, X: Array) -> list[Array]:
-        """Activations of every layer: [X, h1, ..., h_L, logits], each (n, size)."""
-        outs = [X]
-        a = X
-        activate = ACTIVATE[self.activation]
-        for i, (w, b) in enumerate(zip(self.weights, self.biases, strict=True)):
-            z = a @ w
-            z += b
-            if i < len(self.weights) - 1:
-                activate(z)
-            outs.append(z)
-            a = z
-        return outs
+    # ------------------------------------------------------------------ passes
+    def workspace(self, rows: int, grad_rows: int = 0) -> Workspace:
+        """A kernel workspace for attributing passes over `rows` examples (the first
+        `grad_rows` of them backward; 0: all), from the pool if one is free; hand it
+        back with `release`. list.pop and list.append are atomic, so concurrent
+        callers (API threads) never share one."""
+        grad_rows = grad_rows or rows
+        try:
+            work = self._pool[rows, grad_rows].pop()
+            if work.params is self.params:  # (else the parameters moved meanwhile)
+                return work
+        except (KeyError, IndexError):
+            pass
+        return Workspace(self, rows, grad_rows)
+
+    def release(self, work: Workspace) -> None:
+        """Give a workspace from `workspace` back to the pool (if it is worth keeping)."""
+        kept = self._pool.get(work.shape)
+        if kept is None:
+            if work.nbytes > POOL_BYTES:
+                return
+            pool = self._pool
+            if len(pool) >= POOL_SHAPES:
+                # The oldest shape goes (unless another thread is changing the pool).
+                with contextlib.suppress(KeyError, RuntimeError, StopIteration):
+                    del pool[next(iter(pool))]
+            kept = pool.setdefault(work.shape, [])
+        if len(kept) < POOL_DEPTH and work.params is self.params:
+            kept.append(work)
 
     def logits(self, X: Array) -> Array:
         """Output pre-activations (n, n_outputs)."""
-        a = self.check_inputs(X)
-        activate = ACTIVATE[self.activation]
-        last = len(self.weights) - 1
-        for i, (w, b) in enumerate(zip(self.weights, self.biases, strict=True)):
-            z = np.dot(a, w)
-            z += b
-            if i < last:
-                activate(z)
-            a = z
-        return a
+        X = self.check_inputs(X)
+        if X.shape[0] == 0:
+            return np.empty((0, self.sizes[-1]))
+        work = self.workspace(X.shape[0])
+        try:
+            np.copyto(work.examples, X.T)
+            z: Array = forward(work, work.inputs).T.copy()
+        finally:
+            self.release(work)
+        return z
 
     def forward(self, X: Array) -> Array:
         """Head outputs (n, n_outputs): probabilities (logistic/softmax) or values."""
-        return heads.activate_(self.output, self.logits(X))
-
-    def _backward(self, outs: list[Array], d: Array, grad: Array | None,
-                  scale: float) -> Array:
-        """Backpropagate dL/dlogits `d` (n, k); returns dL/dX (n, n_inputs).
-
-        With `grad` given, writes scale * sum over rows of dL/dparams into it.
-        dL/dW_ij = a_i * dL/dz_j (the published rule), summed over the batch.
-        """
-        derivative = DERIVATIVE[self.activation]
-        grad_layers = None if grad is None else self._views(grad)
-        for i in range(len(self.weights) - 1, -1, -1):
-            a = outs[i]
-            if grad_layers is not None:
-                np.matmul(a.T, d, out=grad_layers[i][:-1])
-                np.sum(d, axis=0, out=grad_layers[i][-1])
-            d = d @ self.weights[i].T
-            if i > 0:
-                d *= derivative(a, np.empty_like(a))
-        if grad is not None and scale != 1.0:
-            grad *= scale
-        return d
-
-    def _views(self, flat: Array) -> list[Array]:
-        """Per-layer (fan_in + 1, fan_out) views of a flat vector laid out like params."""
-        views, offset = [], 0
-        for fan_in, fan_out in zip(self.sizes[:-1], self.sizes[1:], strict=True):
-            size = (fan_in + 1) * fan_out
-            views.append(flat[offset : offset + size].reshape(fan_in + 1, fan_out))
-            offset += size
-        return views
+        return HEADS[self.output].activate_(self.logits(X))
 
     def loss_gradient(self, X: Array, y: NDArray[np.generic], loss: str,
                       out: Array | None = None) -> tuple[float, Array]:
@@ -205,13 +207,10 @@ class Network:
         y = np.asarray(y)
         if y.shape != (X.shape[0],):
             raise InvalidInputError(f"expected {X.shape[0]} targets, got shape {y.shape}")
-        outs = self.hidden_and_logits(X)
-        z = outs[-1]
-        p = heads.activate(self.output, z)
         grad = np.empty_like(self.params) if out is None else out
-        n = X.shape[0]
-        self._backward(outs, heads.delta(self.output, loss, p, y), grad, 1.0 / n)
-        return float(heads.losses(self.output, loss, z, y).mean()), grad
+        work = Workspace(self, X.shape[0], grad=grad)
+        np.copyto(work.examples, X.T)
+        return mean_loss_gradient(work, work.inputs, y, self.output, loss), grad
 
     def input_gradient(self, X: Array, output_index: int, *, of: str = "output") -> Array:
         """d forward(X)[:, output_index] / dX (n, n_inputs), by backpropagation.
@@ -221,14 +220,40 @@ class Network:
         if not 0 <= output_index < self.sizes[-1]:
             raise InvalidInputError(f"output index {output_index} out of range",
                                     field="output")
-        X = self.check_inputs(X)
-        outs = self.hidden_and_logits(X)
-        z = outs[-1]
-        if of == "logit":
-            d = np.zeros_like(z)
-            d[:, output_index] = 1.0
-        elif of == "output":
-            d = heads.jacobian_row(self.output, heads.activate(self.output, z), output_index)
-        else:
+        if of not in ("output", "logit"):
             raise InvalidInputError(f"of must be 'output' or 'logit', not {of!r}", field="of")
-        return self._backward(outs, d, None, 1.0)
+        X = self.check_inputs(X)
+        if X.shape[0] == 0:
+            return np.empty((0, self.sizes[0]))
+        work = self.workspace(X.shape[0])
+        try:
+            np.copyto(work.examples, X.T)
+            forward(work, work.inputs)
+            start = work.delta.T  # (n, k)
+            if of == "logit":
+                start[...] = 0.0
+                start[:, output_index] = 1.0
+            else:
+                head = HEADS[self.output]
+                head.jacobian_row(head.activate_(work.outputs), output_index, start)
+            gradient = backward(work, work.inputs)
+        finally:
+            self.release(work)
+        assert gradient is not None  # an attributing workspace returns it
+        return gradient.reshape(self.sizes[0], -1).T
+
+
+def mean_loss_gradient(work: Workspace, inputs: Array, y: NDArray[np.generic],
+                       output: str, loss: str) -> float:
+    """The mean loss of the examples in `inputs` (a block for `work`, targets `y`)
+    and, into the workspace's gradient, its gradient: one forward and one backward
+    pass. The logits are turned into head outputs in place."""
+    forward(work, inputs)
+    z = work.outputs  # (rows, k)
+    value = float(heads.losses(output, loss, z, y).mean())
+    heads.delta_(output, loss, HEADS[output].activate_(z), y, work.delta.T)
+    backward(work, inputs)
+    if work.rows != 1:
+        assert work.grad is not None  # a learning workspace
+        np.multiply(work.grad, 1.0 / work.rows, work.grad)
+    return value

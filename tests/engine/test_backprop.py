@@ -83,13 +83,14 @@ def test_one_example_gradient_is_the_batch_gradient_of_one_row():
 
 def test_logistic_and_tanh_derivatives_follow_the_published_rules():
     """dy/dz = y(1 - y) for the logistic unit, 1 - y^2 for tanh (standard calculus)."""
-    from engine.activations import DERIVATIVE
+    from engine.activations import ACTIVATIONS
     z = np.linspace(-4, 4, 17)
+    ones = np.ones_like(z)
     y = 1 / (1 + np.exp(-z))
-    np.testing.assert_allclose(DERIVATIVE["logistic"](y, np.empty_like(y)),
+    np.testing.assert_allclose(ACTIVATIONS["logistic"].slope(y, np.empty_like(y), ones),
                                np.exp(-z) / (1 + np.exp(-z)) ** 2, rtol=1e-12)
     t = np.tanh(z)
-    np.testing.assert_allclose(DERIVATIVE["tanh"](t, np.empty_like(t)),
+    np.testing.assert_allclose(ACTIVATIONS["tanh"].slope(t, np.empty_like(t), ones),
                                1 / np.cosh(z) ** 2, rtol=1e-12)
 
 

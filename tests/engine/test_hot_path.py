@@ -31,16 +31,15 @@ def test_online_records_allocate_only_a_small_constant(task, output, loss, k, op
     settings = {**TRAINING_DEFAULTS, "optimizer": optimizer, "nesterov": True}
     trainer = OnlineTrainer(net, make_optimizer(net.params.size, settings), loss)
     metrics = Prequential(task, k)
-    Xa = augment(X)
-    columns = Xa[:, :, None]
+    columns = augment(X)[:, :, None]
     targets = y.tolist()
     scores = np.empty((n, k)).reshape(-1) if k == 1 else np.empty((n, k))
-    trainer._run(Xa[:10], columns[:10], targets, targets, scores, metrics, 0.0, 1.0)  # warm
+    trainer.run(columns[:10], targets, targets, scores, metrics)  # warm
     tracemalloc.start()
     try:
         before, _ = tracemalloc.get_traced_memory()
         tracemalloc.reset_peak()
-        trainer._run(Xa, columns, targets, targets, scores, metrics, 0.0, 1.0)
+        trainer.run(columns, targets, targets, scores, metrics)
         after, peak = tracemalloc.get_traced_memory()
     finally:
         tracemalloc.stop()

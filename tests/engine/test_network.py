@@ -80,3 +80,10 @@ def test_bad_shapes_and_names_are_refused():
         Network((3, 1), "tanh", "softmax")
     with pytest.raises(InvalidInputError):
         Network((3, 1), "tanh", "identity", params=np.zeros(3))
+
+
+def test_no_rows_give_no_outputs():
+    net = Network.create((3, 4, 2), "tanh", "softmax", np.random.default_rng(0))
+    assert net.forward(np.zeros((0, 3))).shape == (0, 2)
+    assert net.logits(np.zeros((0, 3))).shape == (0, 2)
+    assert net.input_gradient(np.zeros((0, 3)), 1).shape == (0, 3)

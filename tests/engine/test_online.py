@@ -97,7 +97,7 @@ def test_xor_is_learnt_online_by_a_small_hidden_layer():
 @pytest.mark.parametrize("nesterov", [False, True])
 @pytest.mark.parametrize("schedule", ["constant", "inverse_power"])
 def test_weights_do_not_depend_on_how_the_stream_is_cut_into_calls(nesterov, schedule):
-    """SGD moves the weights between two rows at every step (step_swapping_); calls of
+    """SGD moves the weights between two rows at every step of a run (begin_run); calls of
     odd and even lengths, and a resume from the optimizer state at an odd step
     count, must still give the weights of one uninterrupted call, bit for bit."""
     X, y = problem("logistic", 1, 120, seed=6)
@@ -122,3 +122,28 @@ def test_weights_do_not_depend_on_how_the_stream_is_cut_into_calls(nesterov, sch
     pieces.learn(X[57:], y[57:], np.empty((63, 1)))
     assert np.array_equal(cut.params, whole.params)
     assert np.array_equal(resumed.params, whole.params)
+
+
+@pytest.mark.parametrize("optimizer", ["sgd", "adam"])
+@pytest.mark.parametrize(("output", "loss", "k"), [("softmax", "cross_entropy", 3),
+                                                   ("logistic", "cross_entropy", 1)])
+def test_a_record_whose_output_overflows_raises_and_changes_nothing(optimizer, output, loss, k):
+    """Logits of +inf make the softmax NaN and the step refuses the gradient; a single
+    output checks its logit. Either way the records before it stay applied."""
+    from engine.errors import NonFiniteError
+
+    net = Network((4, k), "tanh", output, np.ones(5 * k))  # no hidden layer: x W unbounded
+    settings = {**TRAINING_DEFAULTS, "optimizer": optimizer}
+    trainer = OnlineTrainer(net, make_optimizer(net.params.size, settings), loss)
+    X, y = problem("softmax", 3, 6, seed=3)
+    y = y % k if k > 1 else y % 2
+    X[4] = 1e308  # 4e308 overflows
+    reference = Network((4, k), "tanh", output, np.ones(5 * k))
+    OnlineTrainer(reference, make_optimizer(net.params.size, settings), loss).learn(
+        X[:4], y[:4], np.empty((4, k)))
+    metrics = Prequential("multiclass" if k > 1 else "binary", max(k, 2))
+    with np.errstate(over="ignore"), pytest.raises(NonFiniteError) as caught:
+        trainer.learn(X, y, np.empty((6, k)), metrics)
+    assert caught.value.applied == 4
+    assert np.array_equal(net.params, reference.params)
+    assert metrics.result()["n"] == 4

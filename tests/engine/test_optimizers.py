@@ -162,17 +162,17 @@ def test_large_but_finite_weights_still_step_exactly():
 
 
 def swapping_steps(opt, grads):
-    """Steps the online trainer's way (the weights move between two rows); returns
-    the weights after each step."""
-    row = opt.begin_swapping()
+    """Steps the online trainer's way, in a run (SGD moves the weights between two
+    rows); returns the weights after each step."""
+    step, row = opt.begin_run()
     seen = []
     try:
         for g in grads:
             opt.grad[:] = g
-            row = opt.step_swapping_()
+            row = step(1.0)
             seen.append(opt.weight_rows[row].copy())
     finally:
-        opt.end_swapping()
+        opt.end_run()
     return seen
 
 
@@ -240,3 +240,24 @@ def test_a_non_finite_swapping_step_raises_and_changes_nothing(nesterov, bad):
         swapping_steps(opt, [np.array([0.3, 0.1, 0.2, 0.0])])
         swapping_steps(reference, [np.array([0.3, 0.1, 0.2, 0.0])])
         assert np.array_equal(opt.params, reference.params)
+
+
+@pytest.mark.parametrize("kind", ["sgd", "adam"])
+def test_a_run_of_steps_leaves_the_weights_in_params_and_continues_plain_steps(kind):
+    """Whatever rows an optimizer uses during a run, end_run puts the weights back in
+    `params`, and plain steps and runs interleave (Adam's run is its plain step)."""
+    rng = np.random.default_rng(5)
+    grads = rng.normal(size=(9, 6))
+    settings = training(optimizer=kind, nesterov=True)
+    runs, plain = make_optimizer(6, settings), make_optimizer(6, settings)
+    runs.params[:] = plain.params[:] = rng.normal(size=6)
+    for start, stop in ((0, 3), (3, 4), (4, 9)):
+        seen = swapping_steps(runs, grads[start:stop])
+        for g in grads[start:stop]:
+            plain.grad[:] = g
+            assert plain.step_() == 0
+        np.testing.assert_allclose(runs.params, plain.params, rtol=1e-13, atol=1e-15)
+        assert np.array_equal(seen[-1], runs.params)
+    if kind == "adam":
+        assert np.array_equal(runs.params, plain.params)
+        assert len(runs.weight_rows) == 1 and runs.weight_rows[0] is runs.params

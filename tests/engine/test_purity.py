@@ -28,7 +28,7 @@ def test_importing_engine_loads_neither_flask_nor_sqlalchemy():
 
 
 def test_engine_modules_import_only_numpy_and_side_effect_free_standard_modules():
-    for path in ENGINE.glob("*.py"):
+    for path in ENGINE.rglob("*.py"):
         tree = ast.parse(path.read_text())
         for node in ast.walk(tree):
             if isinstance(node, ast.Import):
@@ -45,7 +45,7 @@ def test_engine_modules_import_only_numpy_and_side_effect_free_standard_modules(
 
 
 def test_engine_reads_no_environment_and_opens_no_files():
-    for path in ENGINE.glob("*.py"):
+    for path in ENGINE.rglob("*.py"):
         source = path.read_text()
         for forbidden in ("os.environ", "getenv", "open(", "np.random.seed",
                           "np.random.rand", "default_rng()"):
