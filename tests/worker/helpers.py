@@ -1,5 +1,10 @@
 """Helpers for worker tests: models and records through the service's own use
-cases, a worker on a thread, and waiting for the database to say something."""
+cases, a worker on a thread or in its own process, and waiting for the
+database or a log to say something.
+
+Waiting is always for an observable event; the time-outs are failure bounds
+only, generous enough for a busy 2-core machine, and cost nothing when the
+event comes."""
 
 from __future__ import annotations
 
@@ -88,7 +93,9 @@ def worker_thread(url: str, worker_id: str = "test-worker", **settings: Any) -> 
         raise failure[0]
 
 
-def wait_until(check: Callable[[], Any], timeout: float = 30.0, every: float = 0.05) -> Any:
+def wait_until(check: Callable[[], Any], timeout: float = 60.0, every: float = 0.05) -> Any:
+    """Poll ``check`` until it returns something true, and return that; fail
+    after ``timeout`` seconds (a bound on failure, never a schedule)."""
     deadline = time.monotonic() + timeout
     while True:
         value = check()
@@ -131,20 +138,70 @@ def model_row(db: Database, model_id: int) -> ModelRow:
 ROOT = Path(__file__).resolve().parents[2]
 
 
-def start_worker_process(url: str, worker_id: str, log: Path,
+def start_worker_process(url: str, worker_id: str, log: Path, *, ready: bool = True,
                          **settings: str) -> subprocess.Popen[bytes]:
-    """``python -m service.worker ID`` (what ``keelson worker --id`` runs)."""
+    """``python -m service.worker ID`` (what ``keelson worker --id`` runs), its
+    output appended to ``log``; with ``ready`` (the default), returned once it
+    is running (see ``wait_until_running``)."""
     env = {**os.environ, "KEELSON_DATABASE_URL": url, "PYTHONPATH": str(ROOT),
            **{key: str(value) for key, value in FAST.items()}, **settings}
+    since = log.stat().st_size if log.exists() else 0
     with log.open("ab") as out:
-        return subprocess.Popen([sys.executable, "-m", "service.worker", worker_id],
-                                cwd=ROOT, env=env, stdout=out, stderr=subprocess.STDOUT)
+        process = subprocess.Popen([sys.executable, "-m", "service.worker", worker_id],
+                                   cwd=ROOT, env=env, stdout=out, stderr=subprocess.STDOUT)
+    if ready:
+        try:
+            wait_until_running(process, worker_id, log, since)
+        except BaseException:
+            process.kill()
+            process.wait()
+            raise
+    return process
+
+
+def wait_until_running(process: subprocess.Popen[bytes], worker_id: str, log: Path,
+                       since: int = 0, timeout: float = 120.0) -> None:
+    """Wait for the worker's start line, ``worker <id> started``, in ``log``
+    past byte ``since`` (the log's size when the process was started).
+
+    The line is written when the worker's loop starts, after its SIGTERM
+    handler is in place: from then on SIGTERM is a clean stop (status 0, a
+    version for what was applied). Before it, the product still stops cleanly
+    once our code runs (service/process.py), but the interpreter's own first
+    ~40 ms (site, the editable-install finder) run before any code of ours,
+    and a SIGTERM that lands there ends the process with -15. So a test that
+    means "stop a running worker" waits for this line first, and never races
+    the worker's start-up.
+    """
+    wait_for_line(process, log, f"worker {worker_id} started", since, timeout)
+
+
+def wait_for_line(process: subprocess.Popen[bytes], log: Path, text: str, since: int = 0,
+                  timeout: float = 120.0) -> None:
+    """Wait until ``text`` is in ``log`` past byte ``since``; fail at once
+    (with the log's tail) if ``process`` exits first."""
+    needle = text.encode()
+
+    def written() -> bool:
+        with log.open("rb") as sink:
+            sink.seek(since)
+            if needle in sink.read():
+                return True
+        if process.poll() is not None:
+            tail = log.read_bytes()[since:][-3000:].decode("utf-8", "replace")
+            raise AssertionError(f"exited with status {process.returncode} before "
+                                 f"writing {text!r}:\n{tail}")
+        return False
+
+    wait_until(written, timeout=timeout)
 
 
 def stop_process(process: subprocess.Popen[bytes], signum: int = signal.SIGTERM) -> int:
+    """Signal ``process`` and return its exit status (a minute's bound: a
+    clean stop writes a version first)."""
     if process.poll() is None:
         process.send_signal(signum)
-    return process.wait(30)
+    return process.wait(60)
 
 
 def uninterrupted(db: Database, model_id: int) -> Learner:
