@@ -63,13 +63,13 @@ def test_serve_upgrades_a_new_database_and_its_worker_turns_records_into_version
     base = f"http://127.0.0.1:{port}"
     server = _start(tmp_path, port)
     try:
-        wait_until_answering(f"{base}/readyz", server, timeout=60)  # schema is current
+        wait_until_answering(f"{base}/readyz", server, timeout=120)  # schema is current
         _call("POST", f"{base}/v1/models", SPEC)
         records = [{"features": {"a": bool(i & 1), "b": bool(i & 2)},
                     "label": bool(i & 1) != bool(i & 2)} for i in range(200)]
         assert _call("POST", f"{base}/v1/models/xor-gate/records",
                      {"records": records}) == {"accepted": 200, "duplicates": 0}
-        deadline = time.monotonic() + 60
+        deadline = time.monotonic() + 120
         while True:  # no call asks for training: the worker beside the API does it
             model = _call("GET", f"{base}/v1/models/xor-gate")
             if model["active_version"] is not None and model["trainer"]["lag"] == 0:
@@ -85,21 +85,37 @@ def test_serve_upgrades_a_new_database_and_its_worker_turns_records_into_version
     assert "Shutting down: Master" in log  # gunicorn's graceful stop ran
 
 
+def child_commands(pid: int) -> list[str]:
+    """The command lines of ``pid``'s child processes (Linux /proc)."""
+    children = []
+    for task in Path(f"/proc/{pid}/task").iterdir():
+        children += (task / "children").read_text().split()
+    return [Path(f"/proc/{child}/cmdline").read_bytes().replace(b"\0", b" ").decode()
+            for child in children]
+
+
 def test_serve_without_worker_trains_nothing(tmp_path: Path) -> None:
     port = free_port()
     base = f"http://127.0.0.1:{port}"
     server = _start(tmp_path, port, "--no-worker")
     try:
-        wait_until_answering(f"{base}/readyz", server, timeout=60)
+        wait_until_answering(f"{base}/readyz", server, timeout=120)
+        # Both children are started before the API can answer: there is one,
+        # gunicorn, and no worker to train anything (the observable fact,
+        # rather than a pause after which nothing happened).
+        children = child_commands(server.pid)
+        assert len(children) == 1 and "gunicorn" in children[0], children
         _call("POST", f"{base}/v1/models", SPEC)
         _call("POST", f"{base}/v1/models/xor-gate/records",
               {"records": [{"features": {"a": True, "b": False}, "label": True}] * 20})
-        time.sleep(2)
         model = _call("GET", f"{base}/v1/models/xor-gate")
         assert model["active_version"] is None
         assert model["trainer"]["lag"] == 20
     finally:
-        assert _stop(server, signal.SIGINT) == 0
+        status = _stop(server, signal.SIGINT)
+    assert status == 0, (tmp_path / "serve.log").read_text()[-3000:]
+    log = (tmp_path / "serve.log").read_text()
+    assert f"API on {base}; Ctrl-C stops" in log
 
 
 def test_serve_fails_with_a_non_zero_status_when_the_api_cannot_start(tmp_path: Path) -> None:
