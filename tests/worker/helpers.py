@@ -19,7 +19,7 @@ from collections.abc import Callable, Iterator, Sequence
 from pathlib import Path
 from typing import Any
 
-from sqlalchemy import select
+from sqlalchemy import func, select
 
 from engine import Learner
 from service.store.database import Database, make_engine, make_sessionmaker
@@ -204,21 +204,65 @@ def stop_process(process: subprocess.Popen[bytes], signum: int = signal.SIGTERM)
     return process.wait(60)
 
 
-def uninterrupted(db: Database, model_id: int) -> Learner:
+def uninterrupted(db: Database, model_id: int, upto: int | None = None) -> Learner:
     """One pass of the engine alone over the model's train records in sequence
-    order, from the same spec and warm-up records a worker starts from."""
+    order (up to record ``upto``), from the same spec and warm-up records a
+    worker starts from."""
     with db.read() as session:
         spec = session.get(ModelRow, model_id).spec  # type: ignore[union-attr]
-        rows = session.execute(
-            select(RecordRow.features, RecordRow.label)
-            .where(RecordRow.model_id == model_id, RecordRow.split == "train")
-            .order_by(RecordRow.seq)
-        ).all()
-    features, labels = [r[0] for r in rows], [r[1] for r in rows]
+    features, labels = train_records(db, model_id, after=0, upto=upto)
     warmup = spec["training"]["warmup_records"]
     learner = Learner.create(spec, warmup=features[:warmup], warmup_labels=labels[:warmup])
     learner.learn(learner.encode(features), learner.encode_labels(labels))
     return learner
+
+
+def train_records(db: Database, model_id: int, after: int, upto: int | None = None
+                  ) -> tuple[list[Any], list[Any]]:
+    """(features, labels) of the model's train records with ``after < seq <=
+    upto``, in sequence order."""
+    query = (select(RecordRow.features, RecordRow.label)
+             .where(RecordRow.model_id == model_id, RecordRow.split == "train",
+                    RecordRow.seq > after)
+             .order_by(RecordRow.seq))
+    if upto is not None:
+        query = query.where(RecordRow.seq <= upto)
+    with db.read() as session:
+        rows = session.execute(query).all()
+    return [r[0] for r in rows], [r[1] for r in rows]
+
+
+def assert_trained_exactly_once(db: Database, model_id: int) -> None:
+    """The trainer has passed every record of the model, and its head holds
+    what the engine alone gets from learning each train record of the head's
+    lineage once, in sequence order: from the promoted retrain the lineage
+    continues (its snapshot), or from a new network made as a worker makes
+    one. A skipped record and a doubled one cannot cancel out here, as they
+    would in a count (common practice, no source)."""
+    with db.read() as session:
+        state = session.get(TrainerRow, model_id)
+        assert state is not None and state.head_version_id is not None
+        lineage = {v.id: v for v in session.scalars(
+            select(VersionRow).where(VersionRow.model_id == model_id))}
+        top = session.scalar(select(func.max(RecordRow.seq))
+                             .where(RecordRow.model_id == model_id))
+    head = lineage[state.head_version_id]
+    assert state.cursor == top
+    # Past the head's cursor, the trainer moved over holdout records only.
+    assert train_records(db, model_id, after=head.cursor, upto=state.cursor) == ([], [])
+    if head.origin != "online":
+        return  # a retrain's version: a batch fit, not a stream
+    start = head
+    while start.origin == "online" and start.parent_id is not None:
+        start = lineage[start.parent_id]
+    if start.origin == "online":  # the lineage's root: a network made from warm-up records
+        replay = uninterrupted(db, model_id, upto=head.cursor)
+    else:
+        replay = Learner.from_bytes(start.snapshot)
+        features, labels = train_records(db, model_id, after=start.cursor, upto=head.cursor)
+        if features:
+            replay.learn(replay.encode(features), replay.encode_labels(labels))
+    assert_same_state(Learner.from_bytes(head.snapshot), replay)
 
 
 def assert_same_state(resumed: Learner, replay: Learner) -> None:
