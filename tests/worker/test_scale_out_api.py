@@ -16,8 +16,11 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from sqlalchemy import select
 
+from service.store.tables import ModelRow
 from tests.reliability.harness import Client, api_server, wait_for, worker_process
+from tests.worker.helpers import assert_trained_exactly_once, database
 
 pytestmark = pytest.mark.slow
 STALENESS_BOUND = 1.0
@@ -102,3 +105,12 @@ def test_two_api_processes_and_two_workers_share_models_and_see_promotions_in_bo
                     assert began - promoted_at <= STALENESS_BOUND, (
                         "an API process still serves the old version past the bound")
                     time.sleep(0.05)
+    # Both workers stopped: each model's head learned each of its records once.
+    db = database(postgres_url)
+    try:
+        for name in MODELS:
+            with db.read() as session:
+                model_id = session.scalars(select(ModelRow.id).where(ModelRow.name == name)).one()
+            assert_trained_exactly_once(db, model_id)
+    finally:
+        db.engine.dispose()
