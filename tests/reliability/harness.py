@@ -143,7 +143,7 @@ def api_server(database_url: str, tmp_path: Path, workers: int = 2, with_worker:
     process = start_group(command, env, tmp_path / "api.log")
     base = f"http://127.0.0.1:{port}"
     try:
-        wait_until_answering(f"{base}/healthz", process, timeout=60)
+        wait_until_answering(f"{base}/healthz", process, timeout=120)
         yield base, process
     finally:
         stop_group(process)
