@@ -42,7 +42,7 @@ def _call(method: str, url: str, body: Any = None) -> Any:
     data = None if body is None else json.dumps(body).encode()
     request = urllib.request.Request(url, data=data, method=method, headers={
         "Authorization": f"Bearer {ADMIN}", "Content-Type": "application/json"})
-    with urllib.request.urlopen(request, timeout=10) as answer:
+    with urllib.request.urlopen(request, timeout=60) as answer:
         return json.loads(answer.read())
 
 

@@ -84,7 +84,7 @@ def test_postgres_cut_off_and_restored_under_api_and_worker(
     try:
         with api_server(proxied, tmp_path) as (base, api), \
                 worker_process(proxied, tmp_path) as worker:
-            client = Client(base, timeout=20)
+            client = Client(base, timeout=60)
             assert client.request("POST", "/v1/models", SPEC)[0] == 201
             for start in range(0, 300, 100):
                 status, body, _ = client.request("POST", "/v1/models/outage/records",

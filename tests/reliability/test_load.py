@@ -104,7 +104,7 @@ def test_a_mixed_load_loses_nothing_and_answers_no_5xx(database_url: str, tmp_pa
                              records(range(0, 400), random.Random(0)))[0] == 201
         tally.accepted.update(f"k{i}" for i in range(400))
         wait_for(lambda: admin.request("GET", f"/v1/models/{MODEL}")[1]["active_version"],
-                 timeout=60)
+                 timeout=120)
         next_key = [400]
 
         def ingester(seed: int) -> None:

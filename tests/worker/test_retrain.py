@@ -108,7 +108,7 @@ def test_a_promoted_retrain_heads_the_lineage_and_online_learning_continues_afte
         online_head = trainer(db, model_id).head_version_id
         active_before = model_row(db, model_id).active_version_id
         job = request_retrain(db, "handover", warm_start=True)
-        wait_until(lambda: get_job(db, job["id"])["status"] == "succeeded", timeout=40)
+        wait_until(lambda: get_job(db, job["id"])["status"] == "succeeded", timeout=120)
         retrained = next(v for v in versions(db, model_id) if v.origin == "retrain")
         # A warm start continues from the active version.
         assert retrained.parent_id == active_before is not None
