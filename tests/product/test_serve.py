@@ -13,11 +13,13 @@ import subprocess
 import sys
 import time
 import urllib.request
+from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
 import pytest
 
+from service.process import block_stop_signals
 from tests.product.servers import ROOT, free_port, wait_until_answering
 
 pytestmark = pytest.mark.slow
@@ -28,14 +30,15 @@ SPEC = {"name": "xor-gate", "task": "binary", "target": "out",
         "hidden_layers": [4], "training": {"checkpoint_every": 100, "warmup_records": 8}}
 
 
-def _start(tmp_path: Path, port: int, *args: str) -> subprocess.Popen[bytes]:
+def _start(tmp_path: Path, port: int, *args: str,
+           preexec_fn: Callable[[], None] | None = None) -> subprocess.Popen[bytes]:
     env = {**os.environ, "KEELSON_DATABASE_URL": f"sqlite:///{tmp_path}/fresh.db",
            "KEELSON_ADMIN_TOKEN": ADMIN, "KEELSON_WEB_WORKERS": "1",
            "KEELSON_WORKER_IDLE_SECONDS": "0.5", "PROMETHEUS_MULTIPROC_DIR": str(tmp_path / "m")}
     log = (tmp_path / "serve.log").open("wb")
     return subprocess.Popen([sys.executable, "-m", "service", "serve", "--port", str(port),
                              *args], cwd=ROOT, env=env, stdout=log, stderr=subprocess.STDOUT,
-                            process_group=0)
+                            process_group=0, preexec_fn=preexec_fn)
 
 
 def _call(method: str, url: str, body: Any = None) -> Any:
@@ -131,3 +134,27 @@ def test_serve_fails_with_a_non_zero_status_when_the_api_cannot_start(tmp_path: 
                 _stop(server)
     assert status != 0
     assert "the api process exited with status" in (tmp_path / "serve.log").read_text()
+
+
+def _stop_sent_before_start() -> None:
+    """In the child, before exec: SIGTERM and SIGINT blocked and a SIGTERM sent,
+    so it is pending when the interpreter starts; ``keelson serve`` takes it
+    once its handler is in place (service/process.py)."""
+    block_stop_signals()
+    os.kill(os.getpid(), signal.SIGTERM)
+
+
+def test_serve_stopped_before_it_ran_any_code_exits_cleanly_and_starts_nothing(
+        tmp_path: Path) -> None:
+    """``keelson serve`` stops cleanly on SIGTERM at any moment, start-up
+    included: status 0, and neither the API nor a worker was started."""
+    server = _start(tmp_path, free_port(), preexec_fn=_stop_sent_before_start)
+    try:
+        status = server.wait(timeout=120)
+    finally:
+        if server.poll() is None:
+            _stop(server, signal.SIGKILL)
+    log = (tmp_path / "serve.log").read_text()
+    assert status == 0, log[-3000:]
+    assert "keelson: stopped while starting; nothing was started" in log
+    assert "API on" not in log

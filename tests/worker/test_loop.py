@@ -1,12 +1,17 @@
-"""The worker process as a whole: stopping cleanly on SIGTERM."""
+"""The worker process as a whole: stopping cleanly on SIGTERM, start-up included."""
 
 from __future__ import annotations
 
+import os
 import signal
+import subprocess
+import sys
 from pathlib import Path
 
 from engine import Learner
+from service.process import block_stop_signals
 from tests.worker.helpers import (
+    ROOT,
     assert_one_chain,
     assert_same_state,
     caught_up,
@@ -70,4 +75,34 @@ def test_sigterm_finishes_the_step_writes_what_was_applied_and_frees_the_lease(
     chain = assert_one_chain(db, model_id)
     assert chain[-1].records_seen == model_row(db, model_id).records_train
     assert_same_state(Learner.from_bytes(chain[-1].snapshot), uninterrupted(db, model_id))
+    db.engine.dispose()
+
+
+def stop_sent_before_start() -> None:
+    """In the child, before exec: SIGTERM and SIGINT blocked, as ``keelson
+    serve`` starts its worker, and a SIGTERM sent at once. It stays pending
+    across exec until the worker's handler is in place (service/process.py)."""
+    block_stop_signals()
+    os.kill(os.getpid(), signal.SIGTERM)
+
+
+def test_a_stop_sent_before_the_worker_ran_any_code_is_a_clean_exit(
+    database_url: str, tmp_path: Path
+) -> None:
+    """``keelson worker`` stops cleanly on SIGTERM at any moment, start-up
+    included: exit status 0, nothing leased, nothing written."""
+    db = database(database_url)
+    model_id = new_model(db, numeric_spec("early-stop", ["a", "b"], hidden_layers=[4],
+                                          training={"warmup_records": 16}))
+    send(db, "early-stop", xor_records(100, seed=1))
+    log = tmp_path / "worker.log"
+    env = {**os.environ, "KEELSON_DATABASE_URL": database_url, "PYTHONPATH": str(ROOT)}
+    with log.open("wb") as out:
+        process = subprocess.Popen(
+            [sys.executable, "-m", "service", "worker", "--id", "early"], cwd=ROOT, env=env,
+            stdout=out, stderr=subprocess.STDOUT, preexec_fn=stop_sent_before_start)
+    assert process.wait(120) == 0, log.read_text()[-3000:]
+    assert "worker early: stopped while starting; nothing to do" in log.read_text()
+    assert versions(db, model_id) == []
+    assert trainer(db, model_id).leased_by is None
     db.engine.dispose()
