@@ -138,24 +138,23 @@ def model_row(db: Database, model_id: int) -> ModelRow:
 ROOT = Path(__file__).resolve().parents[2]
 
 
-def start_worker_process(url: str, worker_id: str, log: Path, *, ready: bool = True,
+def start_worker_process(url: str, worker_id: str, log: Path,
                          **settings: str) -> subprocess.Popen[bytes]:
     """``python -m service.worker ID`` (what ``keelson worker --id`` runs), its
-    output appended to ``log``; with ``ready`` (the default), returned once it
-    is running (see ``wait_until_running``)."""
+    output appended to ``log``, returned once it is running (see
+    ``wait_until_running``)."""
     env = {**os.environ, "KEELSON_DATABASE_URL": url, "PYTHONPATH": str(ROOT),
            **{key: str(value) for key, value in FAST.items()}, **settings}
     since = log.stat().st_size if log.exists() else 0
     with log.open("ab") as out:
         process = subprocess.Popen([sys.executable, "-m", "service.worker", worker_id],
                                    cwd=ROOT, env=env, stdout=out, stderr=subprocess.STDOUT)
-    if ready:
-        try:
-            wait_until_running(process, worker_id, log, since)
-        except BaseException:
-            process.kill()
-            process.wait()
-            raise
+    try:
+        wait_until_running(process, worker_id, log, since)
+    except BaseException:
+        process.kill()
+        process.wait()
+        raise
     return process
 
 
