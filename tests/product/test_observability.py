@@ -50,7 +50,9 @@ def test_request_counters_add_up_across_two_gunicorn_workers(
     base = f"http://127.0.0.1:{port}"
     command = [sys.executable, "-m", "gunicorn", "--config", "python:service.web.server"]
     with running(command, env, tmp_path / "gunicorn.log") as server:
-        wait_until_answering(f"{base}/healthz", server, timeout=120)
+        # Ready when /readyz answers: a /healthz probe that timed out on the
+        # client could still be counted after ``before`` below.
+        wait_until_answering(f"{base}/readyz", server, timeout=120)
         before = _request_count(_get(f"{base}/metrics"), "/healthz")
         sent = 0
         # Concurrent clients, a new connection per request, in rounds until both
@@ -73,7 +75,7 @@ def _writers(metrics_dir: Path) -> set[str]:
 
 
 def _get(url: str) -> str:
-    with urllib.request.urlopen(url, timeout=10) as answer:
+    with urllib.request.urlopen(url, timeout=60) as answer:
         return answer.read().decode()
 
 
