@@ -159,9 +159,10 @@ def test_postgres_cut_off_and_restored_under_api_and_worker(
     worker_log = (tmp_path / "worker.log").read_text()
     assert worker_log.count("database unavailable") == 1, worker_log[-3000:]
     assert "database reachable again" in worker_log
-    # At most the one step the cut interrupted is reported with its traceback.
+    # Not a traceback per poll: at most one step per interruption (the
+    # terminated backends, then the cut) is caught mid-query and reported.
     assert "lease bookkeeping failed" not in worker_log, worker_log[-3000:]
-    assert worker_log.count("step failed") <= 1, worker_log[-3000:]
+    assert worker_log.count("step failed") <= 2, worker_log[-3000:]
 
 
 def test_an_unreachable_database_is_a_503_problem_not_a_500() -> None:
