@@ -22,7 +22,7 @@ def free_port() -> int:
         return int(sock.getsockname()[1])
 
 
-def wait_until_answering(url: str, process: subprocess.Popen[bytes], timeout: float = 30.0
+def wait_until_answering(url: str, process: subprocess.Popen[bytes], timeout: float = 120.0
                          ) -> None:
     deadline = time.monotonic() + timeout
     while time.monotonic() < deadline:

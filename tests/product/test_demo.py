@@ -113,7 +113,7 @@ def _printed_token(out: Path, port: int, process: subprocess.Popen[str], err: Pa
 
 
 def _get_when_up(url: str, token: str, process: subprocess.Popen[str]) -> dict:
-    deadline = time.monotonic() + 60
+    deadline = time.monotonic() + 120
     while True:
         assert process.poll() is None
         try:

@@ -12,6 +12,7 @@ import io
 import json
 import logging
 import sys
+import time
 import urllib.request
 from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
@@ -49,17 +50,19 @@ def test_request_counters_add_up_across_two_gunicorn_workers(
     base = f"http://127.0.0.1:{port}"
     command = [sys.executable, "-m", "gunicorn", "--config", "python:service.web.server"]
     with running(command, env, tmp_path / "gunicorn.log") as server:
-        wait_until_answering(f"{base}/healthz", server)
+        # Ready when /readyz answers: a /healthz probe that timed out on the
+        # client could still be counted after ``before`` below.
+        wait_until_answering(f"{base}/readyz", server, timeout=120)
         before = _request_count(_get(f"{base}/metrics"), "/healthz")
         sent = 0
         # Concurrent clients, a new connection per request, in rounds until both
-        # workers have answered some (the kernel decides who accepts).
-        for _ in range(30):
+        # workers have answered some (the kernel decides who accepts; the
+        # second worker may still be starting on a busy machine).
+        deadline = time.monotonic() + 120
+        while sent == 0 or (len(_writers(metrics_dir)) < 2 and time.monotonic() < deadline):
             with ThreadPoolExecutor(max_workers=8) as pool:
                 list(pool.map(lambda _: _get(f"{base}/healthz"), range(100)))
             sent += 100
-            if len(_writers(metrics_dir)) >= 2:
-                break
         scraped = [_get(f"{base}/metrics") for _ in range(4)]
     assert len(_writers(metrics_dir)) >= 2  # two worker processes counted requests
     # Every scrape, whichever worker answered it, counts every worker's requests.
@@ -72,7 +75,7 @@ def _writers(metrics_dir: Path) -> set[str]:
 
 
 def _get(url: str) -> str:
-    with urllib.request.urlopen(url, timeout=10) as answer:
+    with urllib.request.urlopen(url, timeout=60) as answer:
         return answer.read().decode()
 
 

@@ -14,11 +14,13 @@ import subprocess
 import sys
 import time
 import urllib.request
+from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
 import pytest
 
+from service.process import block_stop_signals
 from tests.product.servers import ROOT, free_port, wait_until_answering
 
 pytestmark = pytest.mark.slow
@@ -29,21 +31,22 @@ SPEC = {"name": "xor-gate", "task": "binary", "target": "out",
         "hidden_layers": [4], "training": {"checkpoint_every": 100, "warmup_records": 8}}
 
 
-def _start(tmp_path: Path, port: int, *args: str) -> subprocess.Popen[bytes]:
+def _start(tmp_path: Path, port: int, *args: str,
+           preexec_fn: Callable[[], None] | None = None) -> subprocess.Popen[bytes]:
     env = {**os.environ, "KEELSON_DATABASE_URL": f"sqlite:///{tmp_path}/fresh.db",
            "KEELSON_ADMIN_TOKEN": ADMIN, "KEELSON_WEB_WORKERS": "1",
            "KEELSON_WORKER_IDLE_SECONDS": "0.5", "PROMETHEUS_MULTIPROC_DIR": str(tmp_path / "m")}
     log = (tmp_path / "serve.log").open("wb")
     return subprocess.Popen([sys.executable, "-m", "service", "serve", "--port", str(port),
                              *args], cwd=ROOT, env=env, stdout=log, stderr=subprocess.STDOUT,
-                            process_group=0)
+                            process_group=0, preexec_fn=preexec_fn)
 
 
 def _call(method: str, url: str, body: Any = None) -> Any:
     data = None if body is None else json.dumps(body).encode()
     request = urllib.request.Request(url, data=data, method=method, headers={
         "Authorization": f"Bearer {ADMIN}", "Content-Type": "application/json"})
-    with urllib.request.urlopen(request, timeout=10) as answer:
+    with urllib.request.urlopen(request, timeout=60) as answer:
         return json.loads(answer.read())
 
 
@@ -64,13 +67,13 @@ def test_serve_upgrades_a_new_database_and_its_worker_turns_records_into_version
     base = f"http://127.0.0.1:{port}"
     server = _start(tmp_path, port)
     try:
-        wait_until_answering(f"{base}/readyz", server, timeout=60)  # schema is current
+        wait_until_answering(f"{base}/readyz", server, timeout=120)  # schema is current
         _call("POST", f"{base}/v1/models", SPEC)
         records = [{"features": {"a": bool(i & 1), "b": bool(i & 2)},
                     "label": bool(i & 1) != bool(i & 2)} for i in range(200)]
         assert _call("POST", f"{base}/v1/models/xor-gate/records",
                      {"records": records}) == {"accepted": 200, "duplicates": 0}
-        deadline = time.monotonic() + 60
+        deadline = time.monotonic() + 120
         while True:  # no call asks for training: the worker beside the API does it
             model = _call("GET", f"{base}/v1/models/xor-gate")
             if model["active_version"] is not None and model["trainer"]["lag"] == 0:
@@ -86,21 +89,37 @@ def test_serve_upgrades_a_new_database_and_its_worker_turns_records_into_version
     assert "Shutting down: Master" in log  # gunicorn's graceful stop ran
 
 
+def child_commands(pid: int) -> list[str]:
+    """The command lines of ``pid``'s child processes (Linux /proc)."""
+    children = []
+    for task in Path(f"/proc/{pid}/task").iterdir():
+        children += (task / "children").read_text().split()
+    return [Path(f"/proc/{child}/cmdline").read_bytes().replace(b"\0", b" ").decode()
+            for child in children]
+
+
 def test_serve_without_worker_trains_nothing(tmp_path: Path) -> None:
     port = free_port()
     base = f"http://127.0.0.1:{port}"
     server = _start(tmp_path, port, "--no-worker")
     try:
-        wait_until_answering(f"{base}/readyz", server, timeout=60)
+        wait_until_answering(f"{base}/readyz", server, timeout=120)
+        # Both children are started before the API can answer: there is one,
+        # gunicorn, and no worker to train anything (the observable fact,
+        # rather than a pause after which nothing happened).
+        children = child_commands(server.pid)
+        assert len(children) == 1 and "gunicorn" in children[0], children
         _call("POST", f"{base}/v1/models", SPEC)
         _call("POST", f"{base}/v1/models/xor-gate/records",
               {"records": [{"features": {"a": True, "b": False}, "label": True}] * 20})
-        time.sleep(2)
         model = _call("GET", f"{base}/v1/models/xor-gate")
         assert model["active_version"] is None
         assert model["trainer"]["lag"] == 20
     finally:
-        assert _stop(server, signal.SIGINT) == 0
+        status = _stop(server, signal.SIGINT)
+    assert status == 0, (tmp_path / "serve.log").read_text()[-3000:]
+    log = (tmp_path / "serve.log").read_text()
+    assert f"API on {base}; Ctrl-C stops" in log
 
 
 def test_serve_fails_with_a_non_zero_status_when_the_api_cannot_start(tmp_path: Path) -> None:
@@ -116,3 +135,27 @@ def test_serve_fails_with_a_non_zero_status_when_the_api_cannot_start(tmp_path: 
                 _stop(server)
     assert status != 0
     assert "the api process exited with status" in (tmp_path / "serve.log").read_text()
+
+
+def _stop_sent_before_start() -> None:
+    """In the child, before exec: SIGTERM and SIGINT blocked and a SIGTERM sent,
+    so it is pending when the interpreter starts; ``keelson serve`` takes it
+    once its handler is in place (service/process.py)."""
+    block_stop_signals()
+    os.kill(os.getpid(), signal.SIGTERM)
+
+
+def test_serve_stopped_before_it_ran_any_code_exits_cleanly_and_starts_nothing(
+        tmp_path: Path) -> None:
+    """``keelson serve`` stops cleanly on SIGTERM at any moment, start-up
+    included: status 0, and neither the API nor a worker was started."""
+    server = _start(tmp_path, free_port(), preexec_fn=_stop_sent_before_start)
+    try:
+        status = server.wait(timeout=120)
+    finally:
+        if server.poll() is None:
+            _stop(server, signal.SIGKILL)
+    log = (tmp_path / "serve.log").read_text()
+    assert status == 0, log[-3000:]
+    assert "keelson: stopped while starting; nothing was started" in log
+    assert "API on" not in log

@@ -25,6 +25,7 @@ from sqlalchemy.engine import make_url
 
 from tests.product.servers import ROOT, free_port, wait_until_answering
 from tests.worker.helpers import wait_until as wait_for  # noqa: F401 - the harness's name for it
+from tests.worker.helpers import wait_until_running
 
 ADMIN = "reliability-admin-token"
 # Worker settings that make versions appear quickly (idle version after 0.5 s).
@@ -142,7 +143,7 @@ def api_server(database_url: str, tmp_path: Path, workers: int = 2, with_worker:
     process = start_group(command, env, tmp_path / "api.log")
     base = f"http://127.0.0.1:{port}"
     try:
-        wait_until_answering(f"{base}/healthz", process, timeout=60)
+        wait_until_answering(f"{base}/healthz", process, timeout=120)
         yield base, process
     finally:
         stop_group(process)
@@ -151,11 +152,15 @@ def api_server(database_url: str, tmp_path: Path, workers: int = 2, with_worker:
 @contextlib.contextmanager
 def worker_process(database_url: str, tmp_path: Path, worker_id: str = "reliability",
                    **extra: str) -> Iterator[subprocess.Popen[bytes]]:
-    """``python -m service.worker ID`` (what ``keelson worker --id`` runs)."""
+    """``python -m service.worker ID`` (what ``keelson worker --id`` runs),
+    yielded once it is running (its start line is in ``tmp_path/worker.log``;
+    see tests/worker/helpers.py, ``wait_until_running``)."""
     env = server_env(database_url, tmp_path, **extra)
-    process = start_group([sys.executable, "-m", "service.worker", worker_id], env,
-                          tmp_path / "worker.log")
+    log = tmp_path / "worker.log"
+    since = log.stat().st_size if log.exists() else 0
+    process = start_group([sys.executable, "-m", "service.worker", worker_id], env, log)
     try:
+        wait_until_running(process, worker_id, log, since)
         yield process
     finally:
         stop_group(process)

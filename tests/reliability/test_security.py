@@ -312,7 +312,7 @@ def test_a_planted_snapshot_stops_the_worker_lineage_without_running(
                 json_body={"records": [record(i) for i in range(20)]})
     db = database(sqlite_url)
     with worker_thread(sqlite_url):
-        error = wait_until(lambda: trainer(db, model_id).error, timeout=30)
+        error = wait_until(lambda: trainer(db, model_id).error, timeout=120)
     assert "cannot be loaded" in error
     assert not marker.exists()
     db.engine.dispose()

@@ -206,6 +206,7 @@ def test_a_promotion_is_served_within_the_staleness_bound(sqlite_url: str) -> No
     bound = 1.0  # the largest allowed: the most room for a slow machine
     app = build_app(sqlite_url, KEELSON_ACTIVE_STALENESS_SECONDS=bound)
     api = ApiClient(app)
+    cache = get_version_cache(app)
     try:
         create_model(api)
         pump_version(api)
@@ -213,20 +214,28 @@ def test_a_promotion_is_served_within_the_staleness_bound(sqlite_url: str) -> No
         assert api.request("GET", f"{PATH}?{PUMP_QUERY}", 200)["version"] == 1
         activate(api.app, "pump-risk", 2)
         promoted_at = time.monotonic()
-        stale_starts = []
         while True:
             started = time.monotonic()
             if api.request("GET", f"{PATH}?{PUMP_QUERY}", 200)["version"] == 2:
                 break
-            stale_starts.append(started)
-            assert started - promoted_at < 10 * bound, "the promotion was never seen"
+            # The old version may answer only requests that began within the
+            # bound of the promotion (the pointer this process held was read
+            # before it; the cache stamps a read before it makes it).
+            assert started <= promoted_at + bound, "served the old version past the bound"
             time.sleep(0.01)
-        # The old version may answer only requests that began within the bound of
-        # the promotion (the pointer this process held was read before it).
-        assert all(start <= promoted_at + bound for start in stale_starts)
-        # Served from the cache until then: without the bound it would have been
-        # seen by the first request after the promotion.
-        assert stale_starts, "the pointer was re-read sooner than needed"
+
+        # Served from the cache until then, and not a moment longer: on the
+        # cache's own clock, held still (how long a request takes on a busy
+        # machine must not decide what this checks).
+        now = [time.monotonic() + 2 * bound]  # the pointer is stale: read afresh below
+        cache._clock = lambda: now[0]
+        assert api.request("GET", f"{PATH}?{PUMP_QUERY}", 200)["version"] == 2
+        activate(api.app, "pump-risk", 1)
+        assert api.request("GET", f"{PATH}?{PUMP_QUERY}", 200)["version"] == 2
+        now[0] += bound  # exactly at the bound: still the pointer this process holds
+        assert api.request("GET", f"{PATH}?{PUMP_QUERY}", 200)["version"] == 2
+        now[0] += 0.001
+        assert api.request("GET", f"{PATH}?{PUMP_QUERY}", 200)["version"] == 1
     finally:
         get_database(app).engine.dispose()
 
@@ -234,25 +243,23 @@ def test_a_promotion_is_served_within_the_staleness_bound(sqlite_url: str) -> No
 def test_a_warm_get_makes_no_database_query(api: ApiClient) -> None:
     create_model(api)
     pump_version(api)
+    # The cache's clock held still: the active pointer never ages past its
+    # bound here, however long the requests take on a busy machine (that it
+    # is re-read once older is the test above).
+    moment = time.monotonic()
+    get_version_cache(api.app)._clock = lambda: moment
     api.request("GET", f"{PATH}?{PUMP_QUERY}", 200)  # warms model, version and readers
     statements: list[str] = []
     engine = get_database(api.app).engine
     listener = lambda *args: statements.append(args[2])  # noqa: E731
     event.listen(engine, "before_cursor_execute", listener)
-    started = time.monotonic()
     try:
         for _ in range(20):
             api.request("GET", f"{PATH}?{PUMP_QUERY}&explain=gradient", 200)
     finally:
         event.remove(engine, "before_cursor_execute", listener)
-    elapsed = time.monotonic() - started
-    # At most one re-read of the active pointer per elapsed bound (1 s by default;
-    # on a loaded machine 20 requests can take longer than that), and nothing else.
-    selects = [s for s in statements if s.lstrip().upper().startswith("SELECT")]
-    assert len(selects) <= int(elapsed / 1.0)
-    assert all("FROM models" in s for s in selects)
-    assert all(s.strip().upper() in ("BEGIN", "COMMIT", "ROLLBACK") for s in statements
-               if s not in selects)
+    assert all(s.strip().upper() in ("BEGIN", "COMMIT", "ROLLBACK") for s in statements), (
+        statements)
 
 
 def test_a_corrupt_snapshot_is_a_503_problem_and_never_runs_code(
@@ -266,6 +273,8 @@ def test_a_corrupt_snapshot_is_a_503_problem_and_never_runs_code(
             return (Path.touch, (marker,))
 
     add_version(api.app, "pump-risk", pickle.dumps(Payload()))
+    now = [time.monotonic()]  # the cache's clock, moved by the test
+    get_version_cache(api.app)._clock = lambda: now[0]
     with caplog.at_level(logging.ERROR, logger="service.versions.cache"):
         body = api.request("GET", f"{PATH}?{PUMP_QUERY}", 503)
     assert body == {
@@ -277,7 +286,7 @@ def test_a_corrupt_snapshot_is_a_503_problem_and_never_runs_code(
     assert "snapshot of version 1" in caplog.text
     truncated = pump_version(api).to_bytes()[:200]
     add_version(api.app, "pump-risk", truncated)
-    time.sleep(1.05)  # let the active pointer be re-read
+    now[0] += 1.001  # past the bound: the active pointer is read again
     api.request("GET", f"{PATH}?{PUMP_QUERY}", 503)
     api.request("GET", f"{PATH}?{PUMP_QUERY}&version=2", 200)  # a good version still serves
 

@@ -12,6 +12,12 @@ the first worker starts, so versions fall on count boundaries only (no idle
 version can happen mid-stream), and whatever is killed is redone from the last
 version. The restarted worker keeps its id (as `keelson worker --id` does),
 so it takes its own lease back at once instead of waiting for it to expire.
+
+The kills land mid-stream however fast the engine is: before each run, the
+versions beyond a random cursor short of the end are held (tests/worker/
+hold.py), so a run can never finish the stream. Each run is killed at a random
+moment after its first version of its own; a run that reached the hold by
+then is killed inside that held version write.
 """
 
 from __future__ import annotations
@@ -37,10 +43,12 @@ from tests.worker.helpers import (
     numeric_spec,
     send,
     start_worker_process,
+    stop_process,
     trainer,
     uninterrupted,
     wait_until,
 )
+from tests.worker.hold import end_orphans, hold, install_hold, release
 
 FIELDS = [f"x{i}" for i in range(8)]
 
@@ -69,37 +77,42 @@ def test_a_worker_killed_at_random_moments_reaches_bit_identical_weights(
                                   "checkpoint_every": 100, "warmup_records": 128})
     model_id = new_model(db, spec)
     send(db, "crashes", stream(12000, seed=11))
-    log = tmp_path / "worker.log"
-    chance = random.Random(20261201)
-    cursors = []
-    for _kill in range(7):
-        before = trainer(db, model_id).cursor
-        process = start_worker(database_url, log)
-        try:
-            # Kill only once this run has written a version of its own, then at a
-            # random moment after it: the kills land mid-stream however slow the
-            # machine is, and anywhere in a step or a checkpoint.
-            wait_until(lambda b=before: trainer(db, model_id).cursor > b
-                       or caught_up(db, model_id), timeout=60)
-            time.sleep(chance.uniform(0.0, 0.3))
-        finally:
-            process.send_signal(signal.SIGKILL)
-            process.wait(10)
-        cursors.append(trainer(db, model_id).cursor)
     with db.read() as session:
         last_seq = session.scalar(select(RecordRow.seq).where(RecordRow.model_id == model_id)
                                   .order_by(RecordRow.seq.desc()).limit(1))
-    print("cursors after each kill:", cursors, "of", last_seq)
-    # The kills must have landed mid-stream for the test to mean anything.
-    assert sum(0 < cursor < last_seq for cursor in cursors) >= 3, cursors
+    install_hold(db, "versions", "cursor")
+    log = tmp_path / "worker.log"
+    chance = random.Random(20261201)
+    cursors, limits = [], []
+    for _kill in range(7):
+        before = trainer(db, model_id).cursor
+        # 400 records hold at least two count boundaries (100 train records
+        # each, about 125 records); 7 runs of at most 1400 stop short of 12000.
+        limit = before + chance.randint(400, 1400)
+        hold(db, beyond=limit)
+        process = start_worker(database_url, log)  # running: its start line is written
+        try:
+            wait_until(lambda b=before: trainer(db, model_id).cursor > b, timeout=120)
+            time.sleep(chance.uniform(0.0, 0.3))
+        finally:
+            process.send_signal(signal.SIGKILL)
+            process.wait(30)
+        end_orphans(db)
+        cursors.append(trainer(db, model_id).cursor)
+        limits.append(limit)
+        assert before < cursors[-1] <= limit, (before, cursors, limits)
+    print("cursors after each kill:", cursors, "held beyond", limits, "of", last_seq)
+    # Every kill landed mid-stream, after progress of its own: the test means something.
+    assert all(0 < cursor < last_seq for cursor in cursors), cursors
     assert cursors == sorted(cursors)  # a version, once written, is never lost
 
+    release(db)
     process = start_worker(database_url, log)
     try:
-        wait_until(lambda: caught_up(db, model_id), timeout=60)
+        wait_until(lambda: caught_up(db, model_id), timeout=120)
     finally:
-        process.send_signal(signal.SIGTERM)
-        assert process.wait(30) == 0
+        status = stop_process(process)
+    assert status == 0, log.read_text()[-3000:]
     assert trainer(db, model_id).error is None
 
     chain = assert_one_chain(db, model_id)

@@ -2,14 +2,13 @@
 
 from __future__ import annotations
 
-import time
-
 import numpy as np
 
 from engine import Learner
 from service.versions.writes import stop_lineage
 from service.worker.leasing import claim_trainers
 from tests.worker.helpers import (
+    caught_up,
     database,
     model_row,
     new_model,
@@ -43,9 +42,12 @@ def test_a_diverging_lineage_stops_with_its_error_and_the_active_version_keeps_s
     send(db, "diverges", [{"features": {"x": float(x)}, "label": float(2 * x + 1)}
                           for x in calm])
     with worker_thread(database_url):
-        wait_until(lambda: model_row(db, model_id).active_version_id is not None)
-        wait_until(lambda: len(versions(db, model_id)) >= 4)
+        # The calm stream versioned to its last record (an idle version for a
+        # tail past the last count boundary included): nothing more can be
+        # promoted before the wild records come.
+        wait_until(lambda: caught_up(db, model_id) and len(versions(db, model_id)) >= 4)
         active_before = model_row(db, model_id).active_version_id
+        assert active_before is not None
         wild = 100 * rng.normal(size=500)
         send(db, "diverges", [{"features": {"x": float(x)}, "label": float(2 * x + 1)}
                               for x in wild])
@@ -68,17 +70,25 @@ def test_a_diverging_lineage_stops_with_its_error_and_the_active_version_keeps_s
 
 
 def test_a_stopped_lineage_is_not_picked_up_again_by_a_new_worker(database_url: str) -> None:
+    """A healthy model made after the stopped one waits beside it. Claims take
+    free trainers in model order, so by the time the new worker has trained
+    the healthy model, any claim that could have taken the stopped one has
+    run: that version is the event to wait for, not a pause."""
     db = database(database_url)
     spec = {"name": "stopped", "task": "binary", "target": "y",
             "features": [{"name": "x", "type": "numeric"}], "training": {}}
     model_id = new_model(db, spec)
-    send(db, "stopped", [{"features": {"x": float(i % 7)}, "label": i % 2 == 0}
-                         for i in range(300)])
+    healthy_id = new_model(db, {**spec, "name": "healthy"})
+    assert healthy_id > model_id
+    for name in ("stopped", "healthy"):
+        send(db, name, [{"features": {"x": float(i % 7)}, "label": i % 2 == 0}
+                        for i in range(300)])
     with db.write() as session, session.begin():
-        claim_trainers(session, "first", 30, 1)
+        assert claim_trainers(session, "first", 30, 1) == [model_id]
     stop_lineage(db.write, model_id, "first", None, "NonFiniteError at record 1: test")
     with worker_thread(database_url, worker_id="second"):
-        time.sleep(1.5)  # several claim rounds
+        wait_until(lambda: caught_up(db, healthy_id) and versions(db, healthy_id))
+        assert trainer(db, model_id).leased_by != "second"
     assert versions(db, model_id) == []
     assert trainer(db, model_id).error == "NonFiniteError at record 1: test"
     db.engine.dispose()

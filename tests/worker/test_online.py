@@ -41,7 +41,7 @@ def test_xor_is_learned_online_from_records_alone(database_url: str) -> None:
     model_id = new_model(db, spec)
     send(db, "xor", xor_records(5000, seed=1))
     with worker_thread(database_url):
-        wait_until(lambda: caught_up(db, model_id), timeout=40)
+        wait_until(lambda: caught_up(db, model_id), timeout=120)
     rows = versions(db, model_id)
     head = trainer(db, model_id)
     assert head.error is None and head.head_version_id == rows[-1].id
@@ -72,7 +72,7 @@ def test_the_stored_prequential_metrics_are_those_of_each_records_score_before_i
     model_id = new_model(db, spec)
     send(db, "prequential", xor_records(2500, seed=5))
     with worker_thread(database_url, KEELSON_WORKER_CHUNK_RECORDS=70):
-        wait_until(lambda: caught_up(db, model_id), timeout=40)
+        wait_until(lambda: caught_up(db, model_id), timeout=120)
     stored = versions(db, model_id)[-1].metrics["prequential"]
 
     with db.read() as session:

@@ -70,7 +70,7 @@ def test_a_dataset_sent_as_records_and_retrained_scores_its_holdout(
     job = call(client, "POST", f"/v1/models/{name}/retrain", 202,
                json={"warm_start": False})["job"]
     with worker_thread(sqlite_url):
-        done = wait_until(lambda: _finished(client, job["id"]), timeout=50)
+        done = wait_until(lambda: _finished(client, job["id"]), timeout=120)
     assert done["status"] == "succeeded", done
 
     db = database(sqlite_url)

@@ -18,6 +18,7 @@ from service.worker.leasing import claim_job
 from service.worker.retrain import run_retrain
 from service.worker.settings import WorkerSettings
 from tests.worker.helpers import (
+    assert_trained_exactly_once,
     caught_up,
     database,
     model_row,
@@ -107,7 +108,7 @@ def test_a_promoted_retrain_heads_the_lineage_and_online_learning_continues_afte
         online_head = trainer(db, model_id).head_version_id
         active_before = model_row(db, model_id).active_version_id
         job = request_retrain(db, "handover", warm_start=True)
-        wait_until(lambda: get_job(db, job["id"])["status"] == "succeeded", timeout=40)
+        wait_until(lambda: get_job(db, job["id"])["status"] == "succeeded", timeout=120)
         retrained = next(v for v in versions(db, model_id) if v.origin == "retrain")
         # A warm start continues from the active version.
         assert retrained.parent_id == active_before is not None
@@ -133,6 +134,10 @@ def test_a_promoted_retrain_heads_the_lineage_and_online_learning_continues_afte
             RecordRow.model_id == model_id, RecordRow.split == "train",
             RecordRow.seq <= retrained.cursor))
     assert (retrained.records_seen, child.records_seen) == (n_upto, n_upto + n_new)
+    # Beyond the counts: the child's weights are the retrain's snapshot plus
+    # each later train record learned once, in order, bit for bit.
+    assert trainer(db, model_id).head_version_id == child.id
+    assert_trained_exactly_once(db, model_id)
     db.engine.dispose()
 
 

@@ -6,12 +6,14 @@ LOCKED)."""
 from __future__ import annotations
 
 import signal
-import time
 from pathlib import Path
 
 import numpy as np
+from sqlalchemy import text
+from sqlalchemy.engine import make_url
 
 from engine import Learner
+from service.store.database import Database
 from tests.worker.helpers import (
     assert_one_chain,
     assert_same_state,
@@ -25,6 +27,7 @@ from tests.worker.helpers import (
     stop_process,
     trainer,
     uninterrupted,
+    versions,
     wait_until,
 )
 
@@ -39,6 +42,19 @@ def records(n: int, seed: int) -> list[dict]:
             for a, b in X]
 
 
+def named(url: str, worker_id: str) -> str:
+    """``url`` with the PostgreSQL application_name set to ``worker_id``."""
+    return make_url(url).update_query_dict({"application_name": worker_id}).render_as_string(
+        hide_password=False)
+
+
+def sessions_of(db: Database, worker_id: str) -> int:
+    with db.engine.connect() as connection:
+        return int(connection.execute(text(
+            "SELECT count(*) FROM pg_stat_activity WHERE datname = current_database() "
+            "AND application_name = :name"), {"name": worker_id}).scalar_one())
+
+
 def test_two_workers_split_models_and_a_dead_ones_models_pass_to_the_other(
     postgres_url: str, tmp_path: Path
 ) -> None:
@@ -50,31 +66,47 @@ def test_two_workers_split_models_and_a_dead_ones_models_pass_to_the_other(
            for name in names]
     settings = {"KEELSON_WORKER_LEASE_SECONDS": str(LEASE),
                 "KEELSON_WORKER_CHUNK_RECORDS": "20"}
-    workers = {wid: start_worker_process(postgres_url, wid, tmp_path / f"{wid}.log", **settings)
+    # Each worker's connections carry its id, so the test can see them go.
+    workers = {wid: start_worker_process(named(postgres_url, wid), wid,
+                                         tmp_path / f"{wid}.log", **settings)
                for wid in ("w1", "w2")}
     try:
         for k, name in enumerate(names):
             send(db, name, records(600, seed=k))
-        wait_until(lambda: all(trainer(db, m).leased_by for m in ids), timeout=30)
+        wait_until(lambda: all(trainer(db, m).leased_by for m in ids), timeout=120)
         holders = {m: trainer(db, m).leased_by for m in ids}
         assert set(holders.values()) <= {"w1", "w2"}
 
         victim = max(("w1", "w2"), key=lambda w: list(holders.values()).count(w))
         survivor = "w2" if victim == "w1" else "w1"
-        workers[victim].send_signal(signal.SIGKILL)
-        workers[victim].wait(10)
-        # Its last heartbeat renewed the lease at most LEASE / 3 ago: for a while
-        # yet its models stay with it, and nobody else writes to them.
-        time.sleep(0.2)
-        assert {m for m in ids if trainer(db, m).leased_by == victim} == \
-            {m for m, w in holders.items() if w == victim}
+        # The survivor paused, so it can take nothing over while the dead
+        # worker's last lease times are read; the dead worker's connections
+        # gone, so no renewal of its can still commit after the read.
+        workers[survivor].send_signal(signal.SIGSTOP)
+        try:
+            workers[victim].send_signal(signal.SIGKILL)
+            workers[victim].wait(30)
+            wait_until(lambda: not sessions_of(db, victim), timeout=120)
+            orphaned = {m for m in ids if trainer(db, m).leased_by == victim}
+            expiries = {m: trainer(db, m).lease_expires_at for m in orphaned}
+            written = {m: {v.id for v in versions(db, m)} for m in orphaned}
+        finally:
+            workers[survivor].send_signal(signal.SIGCONT)
+        assert orphaned, holders
         for k, name in enumerate(names):
             send(db, name, records(600, seed=10 + k))
-        wait_until(lambda: all(trainer(db, m).leased_by == survivor for m in ids), timeout=30)
-        wait_until(lambda: all(caught_up(db, m) for m in ids), timeout=40)
+        wait_until(lambda: all(trainer(db, m).leased_by == survivor for m in ids), timeout=120)
+        wait_until(lambda: all(caught_up(db, m) for m in ids), timeout=120)
     finally:
-        for process in workers.values():
-            stop_process(process)
+        statuses = {wid: stop_process(process) for wid, process in workers.items()}
+    assert statuses == {victim: -signal.SIGKILL, survivor: 0}
+    for model_id in orphaned:
+        # Nobody wrote to the dead worker's models before its lease ran out:
+        # the survivor's versions of them all came after it expired (one
+        # machine, one clock for both stamps).
+        taken_over = [v for v in versions(db, model_id) if v.id not in written[model_id]]
+        assert taken_over, model_id
+        assert min(v.created_at for v in taken_over) > expiries[model_id]
     for model_id in ids:
         chain = assert_one_chain(db, model_id)  # one writer at a time: one unbroken chain
         assert chain[-1].records_seen == model_row(db, model_id).records_train
