@@ -17,6 +17,7 @@ from typing import Any
 from sqlalchemy import select
 
 from engine import Learner
+from service.process import block_stop_signals
 from service.store.database import Database, make_engine, make_sessionmaker
 from service.store.tables import ModelRow, RecordRow, TrainerRow, VersionRow
 from service.usecases.models import create_model
@@ -133,12 +134,16 @@ ROOT = Path(__file__).resolve().parents[2]
 
 def start_worker_process(url: str, worker_id: str, log: Path,
                          **settings: str) -> subprocess.Popen[bytes]:
-    """``python -m service.worker ID`` (what ``keelson worker --id`` runs)."""
+    """``python -m service.worker ID`` (what ``keelson worker --id`` runs), started
+    as ``keelson serve`` starts its worker: with SIGTERM and SIGINT blocked until
+    the worker's own handler is in place, so a stop sent while its interpreter
+    loads is honoured as a clean one instead of killing it (status -15)."""
     env = {**os.environ, "KEELSON_DATABASE_URL": url, "PYTHONPATH": str(ROOT),
            **{key: str(value) for key, value in FAST.items()}, **settings}
     with log.open("ab") as out:
         return subprocess.Popen([sys.executable, "-m", "service.worker", worker_id],
-                                cwd=ROOT, env=env, stdout=out, stderr=subprocess.STDOUT)
+                                cwd=ROOT, env=env, stdout=out, stderr=subprocess.STDOUT,
+                                preexec_fn=block_stop_signals)
 
 
 def stop_process(process: subprocess.Popen[bytes], signum: int = signal.SIGTERM) -> int:
