@@ -44,9 +44,10 @@ def promote(session: Session, model_row: ModelRow, version_row: VersionRow) -> N
     The previously active version becomes ``retired``. When the version is not
     the online trainer's head nor one of its ancestors (a retrain, or a version
     of an abandoned lineage), it also becomes the head: online learning goes on
-    from it with the records after its cursor, and a stopped lineage's error is
-    cleared. Promoting an ancestor of the head (a rollback) changes only what
-    is served; the lineage keeps learning from its head.
+    from it with the records after its cursor, and a stopped lineage's error
+    and a backed-off model's fault are cleared. Promoting an ancestor of the
+    head (a rollback) changes only what is served; the lineage keeps learning
+    from its head.
     """
     if version_row.model_id != model_row.id:
         raise ValueError("the version belongs to another model")
@@ -80,6 +81,7 @@ def promote(session: Session, model_row: ModelRow, version_row: VersionRow) -> N
         trainer.head_version_id = version_row.id
         trainer.cursor = version_row.cursor
         trainer.error = None
+        trainer.clear_fault()  # a new head: whatever failed may not fail now
         trainer.updated_at = now
     session.flush()
 

@@ -35,6 +35,15 @@ class WorkerSettings:
     max_models: int | None = None
     # Seconds between progress writes of a running retrain job.
     progress_seconds: float = 1.0
+    # A model the worker cannot load or train is tried again after this many
+    # seconds, doubled with each try that fails in a row, up to the maximum.
+    retry_seconds: float = 1.0
+    retry_max_seconds: float = 300.0
+
+    def __post_init__(self) -> None:
+        if not 0 < self.retry_seconds <= self.retry_max_seconds:
+            raise ValueError("the worker's retry wait must be positive and at most its maximum "
+                             "(KEELSON_WORKER_RETRY_SECONDS, KEELSON_WORKER_RETRY_MAX_SECONDS)")
 
     @property
     def heartbeat_seconds(self) -> float:
@@ -67,6 +76,8 @@ _KEYS = {
     "KEELSON_WORKER_HOLDOUT_WINDOW": "holdout_window",
     "KEELSON_WORKER_MAX_MODELS": "max_models",
     "KEELSON_WORKER_PROGRESS_SECONDS": "progress_seconds",
+    "KEELSON_WORKER_RETRY_SECONDS": "retry_seconds",
+    "KEELSON_WORKER_RETRY_MAX_SECONDS": "retry_max_seconds",
 }
 _PARSE: dict[str, Any] = {
     "lease_seconds": float,
@@ -77,4 +88,6 @@ _PARSE: dict[str, Any] = {
     "holdout_window": int,
     "max_models": int,
     "progress_seconds": float,
+    "retry_seconds": float,
+    "retry_max_seconds": float,
 }
