@@ -254,9 +254,15 @@ class OnlineLineage:
     # ------------------------------------------------------------------ warm-up
     def _warm_up(self) -> bool:
         """Create the lineage's first learner once ``warmup_records`` train
-        records exist, or fewer once the stream has been idle a while."""
+        records exist, or fewer once the stream has been idle a while.
+
+        ``warmup_records: 0`` means no warm-up: the learner is created at the
+        first train record, its numeric fields encoded from their declared
+        bounds or as they come (the engine's policy for a field without
+        warm-up values), so a model that asks for none still trains."""
         with self.reads() as session:
-            rows = read_after(session, self.model_id, 0, self.warmup_records, split="train")
+            rows = read_after(session, self.model_id, 0, max(self.warmup_records, 1),
+                              split="train")
         if len(rows) != self._warmup_seen:
             self._warmup_seen = len(rows)
             self.last_arrival = time.monotonic()
@@ -264,15 +270,16 @@ class OnlineLineage:
         if not len(rows) or (len(rows) < self.warmup_records and not idle):
             self._clear_fault()  # waiting for records: nothing failed
             return False
+        used = rows.features[:self.warmup_records], rows.labels[:self.warmup_records]
         try:
-            self.learner = Learner.create(self.spec, warmup=rows.features,
-                                          warmup_labels=rows.labels)
+            self.learner = Learner.create(self.spec, warmup=used[0], warmup_labels=used[1])
         except EngineError as exc:
             raise ModelFault("the network cannot be created from the spec and warm-up "
                              f"records: {exc}") from None
-        self.encoder = f"warmup:{self.model_id}:{int(rows.seqs[-1])}"
+        last = int(rows.seqs[len(used[0]) - 1]) if used[0] else 0
+        self.encoder = f"warmup:{self.model_id}:{last}"
         log.info("model %s: network created, encoding from %s warm-up records",
-                 self.model_id, len(rows))
+                 self.model_id, len(used[0]))
         self.cursor = self.stored_cursor = 0
         self.last_arrival = time.monotonic()
         return True
