@@ -13,7 +13,7 @@ trainer row, so keeping one order means two of them can never deadlock.
 from __future__ import annotations
 
 from sqlalchemy import select, update
-from sqlalchemy.orm import Session
+from sqlalchemy.orm import Session, load_only
 
 from service.store.tables import ModelRow, TrainerRow, VersionRow, utcnow
 
@@ -28,9 +28,14 @@ def lock_model(session: Session, model_id: int) -> ModelRow:
     trainer row and inserting its version would then wait on whoever holds
     the model, while that one (an online checkpoint promoting its version)
     waits for the trainer row: a deadlock. Model keys never change, so the
-    weaker lock still serialises every writer of the row."""
+    weaker lock still serialises every writer of the row.
+
+    Only the id and the active pointer are read: a promotion needs no more,
+    and the spec's JSON is then neither decoded at every promotion nor able
+    to fail one (a damaged spec is the worker's fault to report, faults.py)."""
     return session.execute(
         select(ModelRow)
+        .options(load_only(ModelRow.id, ModelRow.active_version_id))
         .where(ModelRow.id == model_id)
         .with_for_update(key_share=True)
         .execution_options(populate_existing=True)
