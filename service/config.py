@@ -22,6 +22,11 @@ DEFAULTS: dict[str, Any] = {
     "KEELSON_ACTIVE_STALENESS_SECONDS": 1.0,
     "KEELSON_VERSION_CACHE_SIZE": 32,
     "KEELSON_TOKEN_CACHE_SECONDS": 1.0,
+    # Budget units per prediction request, about records x rows evaluated per
+    # record x parameters (service/usecases/prediction_limits.py); the default
+    # keeps a request under about 2 s of one core (README, "Request budget").
+    "KEELSON_PREDICTION_BUDGET": 8_000_000_000,
+    "KEELSON_PREDICTION_DEADLINE_SECONDS": 10.0,
 }
 
 _PARSERS: dict[str, Any] = {
@@ -31,6 +36,8 @@ _PARSERS: dict[str, Any] = {
     "KEELSON_ACTIVE_STALENESS_SECONDS": float,
     "KEELSON_VERSION_CACHE_SIZE": int,
     "KEELSON_TOKEN_CACHE_SECONDS": float,
+    "KEELSON_PREDICTION_BUDGET": int,
+    "KEELSON_PREDICTION_DEADLINE_SECONDS": float,
 }
 
 

@@ -10,6 +10,11 @@ a share of the generated cases is pointed at them with valid features and
 records, so the fuzzing reaches the views' real work and not only their 404s.
 The number of examples per operation is bounded: ``KEELSON_FUZZ_EXAMPLES``
 (default 25, the CI run); the longer run is ``KEELSON_FUZZ_EXAMPLES=500``.
+
+A second model ("pump-flow": a relu regression whose numeric fields declare
+no bounds) takes a share of the aimed cases, with values drawn up to the
+largest double: valid requests whose output overflows must be refused as the
+client's (422), never answered with a server error.
 """
 
 from __future__ import annotations
@@ -32,6 +37,17 @@ from tests.service.predictions_factory import add_version, pump_rows, pump_rule,
 
 EXAMPLES = int(os.environ.get("KEELSON_FUZZ_EXAMPLES", "25"))
 MODEL = "pump-risk"
+FLOW_MODEL = "pump-flow"
+FLOW_SPEC: dict[str, Any] = {
+    "name": FLOW_MODEL, "task": "regression", "target": "flow_m3h", "activation": "relu",
+    "hidden_layers": [16, 16],
+    "features": [{"name": "speed_rpm", "type": "numeric"},
+                 {"name": "head_m", "type": "numeric"},
+                 {"name": "pump_family", "type": "categorical",
+                  "levels": ["centrifugal", "screw"]}],
+}
+# Values for the unbounded fields, from ordinary to the largest finite double.
+FLOW_VALUES = [1450.0, -3.5, 1e6, 1e154, 1e307, 1e308, -1e308, 1.7976931348623157e308]
 # "Schema-valid data is accepted" cannot hold for this API: each model checks
 # records against its own feature spec, and a spec's cross-field rules (a
 # multiclass task needs classes, a categorical feature its levels) are beyond
@@ -55,9 +71,28 @@ def fuzz_app(database_url: str) -> Iterator[Flask]:
     spec = api.request("GET", f"/v1/models/{MODEL}", 200)
     learner = train_learner({**spec, **spec.get("spec", {})}, pump_rows(64), pump_rule, passes=1)
     add_version(app, MODEL, learner.to_bytes(), activate=True)
+    flow_spec = api.request("POST", "/v1/models", 201, json_body=FLOW_SPEC)
+    flow = train_learner(flow_spec, flow_rows(64), flow_rule, passes=1)
+    add_version(app, FLOW_MODEL, flow.to_bytes(), activate=True)
     api.request("POST", f"/v1/models/{MODEL}/retrain", 202, json_body={"warm_start": False})
     yield app
     get_database(app).engine.dispose()
+
+
+def flow_rows(n: int) -> list[dict[str, Any]]:
+    return [{"speed_rpm": 900.0 + 37.0 * i, "head_m": float(i % 40),
+             "pump_family": "screw" if i % 2 else "centrifugal"} for i in range(n)]
+
+
+def flow_rule(row: dict[str, Any]) -> float:
+    """A made-up rating: flow rises with speed and falls with head."""
+    return 0.05 * row["speed_rpm"] - 2.0 * row["head_m"]
+
+
+def _flow_features(seed: int) -> dict[str, Any]:
+    """Valid features for the flow model, extreme values included."""
+    return {"speed_rpm": FLOW_VALUES[seed % len(FLOW_VALUES)],
+            "head_m": FLOW_VALUES[(seed // 8) % len(FLOW_VALUES)], "pump_family": "screw"}
 
 
 def _operations() -> list[tuple[str, str]]:
@@ -75,20 +110,31 @@ def _aim(case: Any) -> None:
     """Point about half the cases at the existing model, with valid features for
     predictions and valid records for ingest (the other fields as generated);
     the choice is a hash of the case, so a failure replays."""
-    if zlib.crc32(repr(case.path_parameters).encode()) % 2:
+    seed = zlib.crc32(repr(case.path_parameters).encode())
+    if seed % 2:
         return
+    predictions = case.operation.path.endswith("/predictions")
+    # A third of the aimed prediction cases go to the unbounded flow model.
+    flow = predictions and seed % 3 == 0
     if case.path_parameters and "name" in case.path_parameters:
-        case.path_parameters["name"] = MODEL
+        case.path_parameters["name"] = FLOW_MODEL if flow else MODEL
         if "number" in case.path_parameters:
             case.path_parameters["number"] = 1
     if case.path_parameters and "job_id" in case.path_parameters:
         case.path_parameters["job_id"] = 1
     post = case.method.upper() == "POST"
-    if case.operation.path.endswith("/predictions") and not post:
-        case.query = {**(case.query or {}), **VALID_QUERY}
+    features = _flow_features(seed // 6) if flow else VALID_FEATURES
+    if predictions and not post:
+        query = {name: repr(value) if isinstance(value, float) else value
+                 for name, value in features.items()} if flow else VALID_QUERY
+        case.query = {**(case.query or {}), **query}
         case.query.pop("features", None)
-    elif case.operation.path.endswith("/predictions") and isinstance(case.body, dict):
-        case.body = {**case.body, "records": [{"features": VALID_FEATURES}]}
+        if flow:
+            case.query.pop("output", None)  # a regression has one output
+    elif predictions and isinstance(case.body, dict):
+        case.body = {**case.body, "records": [{"features": features}]}
+        if flow:
+            case.body.pop("output", None)
     elif case.operation.path.endswith("/records") and isinstance(case.body, dict):
         case.body = {"records": [record(i) for i in range(3)]}
 

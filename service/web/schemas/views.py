@@ -125,3 +125,11 @@ class ProblemSchema(Schema):
         keys=fields.String(), values=fields.List(fields.String()),
         metadata={"description": "Field path -> messages, for invalid input."},
     )
+    budget = fields.Integer(metadata={
+        "description": "`urn:keelson:problem:over-budget`: the budget units a prediction "
+        "request may cost (KEELSON_PREDICTION_BUDGET)."})
+    cost = fields.Integer(metadata={
+        "description": "`urn:keelson:problem:over-budget`: what the request would cost: "
+        "records x (rows evaluated per record + 8) x (parameters + 100 x units)."})
+    deadline_seconds = fields.Float(metadata={
+        "description": "`urn:keelson:problem:deadline-exceeded`: the deadline that passed."})
