@@ -15,13 +15,15 @@ The cost of a request, in budget units:
 which costs about as much as UNIT_COST multiply-adds), and each explained
 record's passes over the weights cost about PASS_ROWS rows beyond its own
 (matrix-vector products run at memory speed, not at matrix speed); a request
-without explanations pays neither. Both constants were measured: with them, a
-budget unit costs 0.05 to 0.23 ns of one core of the development machine for
-every network from 20-16-1 to 20-1024-1024-1024-1 and every method, where a
-plain records x rows x parameters count varied from 0.05 to 25 ns (README,
-"Request budget"). A request over ``KEELSON_PREDICTION_BUDGET`` is refused
-before any work (422, the figures in the answer); the default, 8e9, keeps a
-request under about 2 s of one core.
+without explanations pays neither. Both constants were measured (README,
+"Request budget"): with them, a budget unit cost 0.05 to 0.23 ns of one core
+of the development machine in every request of 1,000 records that took 0.3 s
+or more, for networks from 20-16-1 to 20-1024-1024-1024-1 and every method,
+where a plain records x rows x parameters count varied from 0.09 to 26 ns.
+(Smaller requests pay a fixed 10 to 25 us per record that the batch limit
+bounds to a few tens of milliseconds.) A request over
+``KEELSON_PREDICTION_BUDGET`` is refused before any work (422, the figures in
+the answer); the default, 8e9, keeps a request under about 2 s of one core.
 
 A request within budget can still be slow on a busy host: its deadline
 (``KEELSON_PREDICTION_DEADLINE_SECONDS``, from the moment the view started) is

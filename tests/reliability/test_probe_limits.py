@@ -18,6 +18,7 @@ from __future__ import annotations
 
 import json
 import socket
+import time
 from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
@@ -88,13 +89,20 @@ def test_costly_predictions_are_refused_cut_short_or_dropped(
         serve_fresh(client, store, "wide", [256, 256])
         # The reported request: 1,000 records, steps=1024, a 3 x 1024 network.
         many = {"records": [{"features": ROW}] * 1000, "steps": 1024}
+        figures: dict[str, Any] = {}
+        began = time.monotonic()
         status, body, _ = client.request("POST", "/v1/models/huge/predictions", many)
+        figures["refused_in_s"] = round(time.monotonic() - began, 3)
+        figures["cost_over_budget"] = body.get("cost", 0) / 10**12
         assert status == 422 and body["type"] == "urn:keelson:problem:over-budget"
         assert body["budget"] == 10**12 < body["cost"]
         assert f"{body['budget']:,}" in body["detail"] and f"{body['cost']:,}" in body["detail"]
 
         # Within budget (about 12 ms a record here), past the deadline.
+        began = time.monotonic()
         status, body, headers = client.request("POST", "/v1/models/wide/predictions", many)
+        figures["deadline_answer_in_s"] = round(time.monotonic() - began, 3)
+        figures["deadline_detail"] = body.get("detail")
         assert status == 503 and body["type"] == "urn:keelson:problem:deadline-exceeded"
         assert headers["retry-after"] == "1" and "of 1,000 records done" in body["detail"]
 
@@ -106,6 +114,8 @@ def test_costly_predictions_are_refused_cut_short_or_dropped(
                                       if "client closed the connection" in entry), None))
         done = int(line.split(" after ")[1].split(" of ")[0])
         assert 1 <= done < 1000
+        figures["records_done_when_the_client_left"] = done
+        print(f"probe figures: {json.dumps(figures)}")
         # The process is free again for the next request.
         status, body, _ = client.request(
             "GET", "/v1/models/wide/predictions?level=2&head=1&explain=gradient")
