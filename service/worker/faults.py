@@ -36,7 +36,15 @@ MAX_FAULT_TEXT = 1000
 
 class ModelFault(Exception):
     """This model cannot be loaded or trained for now; the message says why,
-    in words an operator can act on."""
+    in words an operator can act on. ``head_id``: the head version the try
+    started from, when the fault is the head's."""
+
+    def __init__(self, message: str, head_id: int | None = None) -> None:
+        super().__init__(message)
+        self.head_id = head_id
+
+
+ANY_HEAD: Any = object()  # record_fault: whatever the trainer's head is now
 
 
 @dataclass(frozen=True)
@@ -67,13 +75,17 @@ def back_off_seconds(count: int, first: float, largest: float) -> float:
 
 
 def record_fault(writes: sessionmaker[Session], model_id: int, worker_id: str, text: str,
-                 first: float, largest: float) -> Fault | None:
+                 first: float, largest: float, head_id: Any = ANY_HEAD) -> Fault | None:
     """Store the fault on the model's trainer row and give up the lease, in
     one transaction; None when this worker no longer holds the model (another
-    worker's tries count there)."""
+    worker's tries count there) or when the try started from ``head_id`` and
+    the head has moved since (a promotion: the next try starts from the new
+    head, and a stale fault must not stand against it)."""
     with transaction(writes) as session:
         trainer = lock_trainer(session, model_id)
         if trainer.leased_by != worker_id:
+            return None
+        if head_id is not ANY_HEAD and trainer.head_version_id != head_id:
             return None
         count = (trainer.faults or 0) + 1
         delay = back_off_seconds(count, first, largest)

@@ -94,7 +94,7 @@ class OnlineLineage:
                     self.learner = Learner.from_bytes(head.snapshot)
                 except EngineError as exc:
                     raise ModelFault(f"the head version {head.number} cannot be loaded: "
-                                     f"{exc}") from None
+                                     f"{exc}", head_id=head.id) from None
                 self.encoder = encoder_of(self.learner) or f"version:{head.id}"
                 self.records_before = int(self.learner.extra.get(RECORDS_BEFORE_KEY, 0))
                 self.cursor = self.stored_cursor = trainer.cursor
@@ -295,4 +295,4 @@ class OnlineLineage:
                                self.learner.encode_labels(rows.labels))
         except EngineError as exc:
             raise ModelFault(f"holdout records {rows.seqs[0]}..{rows.seqs[-1]} cannot be "
-                             f"encoded: {exc}") from None
+                             f"encoded: {exc}", head_id=self.head_id) from None

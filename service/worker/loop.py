@@ -29,7 +29,7 @@ from service.process import stop_on_signals
 from service.store.database import make_engine, make_sessionmaker, transaction
 from service.store.record_log import decode_json
 from service.versions.writes import Fenced
-from service.worker.faults import describe, is_expected, record_fault
+from service.worker.faults import ANY_HEAD, describe, is_expected, record_fault
 from service.worker.job_runner import JobRunner
 from service.worker.leasing import (
     claim_trainers,
@@ -145,12 +145,13 @@ class Worker:
                 # Start again from the last version after the back-off: nothing
                 # in memory is needed that the database does not hold.
                 self.lineages.pop(model_id, None)
-                self._fault(model_id, exc)
+                self._fault(model_id, exc, lineage.head_id)
         return busy
 
-    def _fault(self, model_id: int, exc: Exception) -> None:
-        """This model failed to load or step: back it off alone (faults.py),
-        unless it is the database that failed, not the model."""
+    def _fault(self, model_id: int, exc: Exception, head_id: Any = ANY_HEAD) -> None:
+        """This model failed to load or step from ``head_id``: back it off
+        alone (faults.py), unless it is the database that failed, not the
+        model, or the head has moved since (then the next try starts afresh)."""
         if isinstance(exc, DATABASE_AWAY) and not self._database_answers():
             if not self._database_away:
                 log.warning("worker %s: database unavailable (%s); waiting for it",
@@ -160,13 +161,14 @@ class Worker:
         text = describe(exc)
         try:
             fault = record_fault(self.writes, model_id, self.worker_id, text,
-                                 self.settings.retry_seconds, self.settings.retry_max_seconds)
+                                 self.settings.retry_seconds, self.settings.retry_max_seconds,
+                                 head_id)
         except Exception:  # the lease runs out and the model is tried again then
             log.exception("model %s: recording its fault failed: %s", model_id, text)
             return
         if fault is None:
-            log.warning("model %s: failed, and another worker holds it now: %s",
-                        model_id, text)
+            log.warning("model %s: failed, but another worker holds it or its head moved "
+                        "since; not backed off: %s", model_id, text)
             return
         # One line per try: a traceback only with the first try of a failure
         # we did not foresee (a fault of ours reads well on its own).
@@ -211,7 +213,7 @@ class Worker:
                     model_id, self.worker_id, self.settings, self.reads, self.writes
                 )
             except Exception as exc:  # its spec, head or holdout records: this model only
-                self._fault(model_id, exc)
+                self._fault(model_id, exc, getattr(exc, "head_id", None) or ANY_HEAD)
 
     def _shutdown(self) -> None:
         self.jobs.close()

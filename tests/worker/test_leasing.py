@@ -160,6 +160,12 @@ def test_a_backed_off_trainer_is_not_leased_before_its_retry_time(writes) -> Non
     assert claim(writes, "b") == [first]
     # A fault recorded by a worker that no longer holds the model changes nothing.
     assert record_fault(writes, first, "a", "late", 60, 300) is None
+    # Nor one from a try that started on a head since replaced (a promotion).
+    assert record_fault(writes, first, "b", "stale", 60, 300, head_id=12345) is None
+    with writes() as session:
+        row = session.get(TrainerRow, first)
+        assert row is not None and row.leased_by == "b" and row.fault is not None
+        assert row.fault != "stale"
 
 
 def test_the_back_off_doubles_from_the_first_wait_up_to_the_largest() -> None:
