@@ -168,6 +168,11 @@ SETTINGS: tuple[Setting, ...] = (
     Setting("KEELSON_TOKEN_CACHE_SECONDS", API, 1.0, positive_number,
             "how long an API process trusts a token it looked up (a revocation takes "
             "effect within this)"),
+    Setting("KEELSON_PREDICTION_BUDGET", API, 8_000_000_000, positive_whole_number,
+            "largest cost of one prediction request, about records x rows evaluated per "
+            "record x parameters (422 beyond; README, \"Request budget\")"),
+    Setting("KEELSON_PREDICTION_DEADLINE_SECONDS", API, 10.0, positive_number,
+            "seconds a prediction request may compute before it answers 503"),
     Setting("KEELSON_HOST", SERVER, "127.0.0.1", text, "address the API listens on"),
     Setting("KEELSON_PORT", SERVER, 8000, whole_number, "port the API listens on"),
     Setting("KEELSON_WEB_WORKERS", SERVER, None, whole_number,
@@ -210,6 +215,11 @@ SETTINGS: tuple[Setting, ...] = (
             "models one worker leases at most (unset: as many as are free)"),
     Setting("KEELSON_WORKER_PROGRESS_SECONDS", WORKER, 1.0, number,
             "seconds between progress writes of a running retrain job"),
+    Setting("KEELSON_WORKER_RETRY_SECONDS", WORKER, 1.0, positive_number,
+            "first wait before a model the worker could not load or train is tried "
+            "again (doubled with each failed try)"),
+    Setting("KEELSON_WORKER_RETRY_MAX_SECONDS", WORKER, 300.0, positive_number,
+            "longest wait between tries of such a model"),
     Setting("KEELSON_BENCH_POSTGRES_URL", TOOLS, None, text,
             "PostgreSQL server `keelson bench http` and `keelson bench worker` also "
             "measure on (in a scratch database; same as `--postgres-url`)"),

@@ -7,22 +7,32 @@ to lists of messages.
 
 from __future__ import annotations
 
+from typing import Any
+
 
 class KeelsonError(Exception):
-    """Base of every error a use case raises on purpose."""
+    """Base of every error a use case raises on purpose.
+
+    ``problem_type`` names a kind of problem a client may act on (RFC 9457
+    ``type``); ``members`` are extra members of the answer (RFC 9457 section
+    3.2), such as the figures a refusal was decided on."""
 
     status = 400
+    problem_type: str | None = None
+    title: str | None = None  # for a status without a standard phrase
 
     def __init__(
         self,
         detail: str,
         errors: dict[str, list[str]] | None = None,
         headers: dict[str, str] | None = None,
+        members: dict[str, Any] | None = None,
     ) -> None:
         super().__init__(detail)
         self.detail = detail
         self.errors = errors
         self.headers = headers
+        self.members = members
 
 
 class UnauthorizedError(KeelsonError):

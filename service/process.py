@@ -64,7 +64,13 @@ def take_stop_signals_for(arguments: list[str]) -> None:
 
 
 def pin_blas_to_one_thread() -> None:
-    """Limit every loaded BLAS library to one thread for the rest of the process."""
+    """Limit BLAS to one thread for the rest of the process.
+
+    threadpoolctl limits the libraries loaded when it is called, so NumPy (and
+    its BLAS) is loaded first: the worker and gunicorn's post_fork call this
+    before anything has imported NumPy, and the limit was then a no-op (BLAS
+    ran with a thread per core)."""
+    import numpy  # noqa: F401  (loads the BLAS library the limit applies to)
     from threadpoolctl import threadpool_limits
 
     threadpool_limits(limits=1, user_api="blas")

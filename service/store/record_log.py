@@ -74,6 +74,28 @@ def fetch_chunk(session: Session, query: Any) -> RecordChunk:
     return RecordChunk.from_rows(session.connection().execute(query).all())
 
 
+class UnreadableRecord(ValueError):
+    """A stored record whose features or label cannot be decoded (a damaged
+    row): the message names the record."""
+
+
+def _decode_named(values: Sequence[Any], seqs: Sequence[int], what: str) -> list[Any]:
+    """:func:`decode_column`, and on failure an :class:`UnreadableRecord`
+    naming the first record that does not decode (the one-call path cannot
+    say which; only a failure pays for finding it)."""
+    try:
+        return decode_column(values)
+    except ValueError:
+        for seq, value in zip(seqs, values, strict=True):
+            try:
+                None if value is None else decode_json(value)
+            except ValueError as exc:
+                raise UnreadableRecord(
+                    f"record {seq} cannot be read: its {what} not valid JSON ({exc})"
+                ) from None
+        raise
+
+
 @dataclass
 class RecordChunk:
     """Records in sequence order, column by column."""
@@ -95,8 +117,8 @@ class RecordChunk:
         seqs, features, labels, splits = zip(*rows, strict=True)
         return cls(
             seqs=np.array(seqs, dtype=np.int64),
-            features=decode_column(features),
-            labels=decode_column(labels),
+            features=_decode_named(features, seqs, "features are"),
+            labels=_decode_named(labels, seqs, "label is"),
             is_train=np.fromiter(map("train".__eq__, splits), dtype=bool, count=len(splits)),
         )
 

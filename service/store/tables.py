@@ -117,8 +117,22 @@ class TrainerRow(Base):
     )
     leased_by: Mapped[str | None] = mapped_column(String(128))
     lease_expires_at: Mapped[dt.datetime | None] = mapped_column(DateTime(timezone=True))
+    # Set when the lineage diverged (a non-finite step): no worker takes the
+    # model until a version of another lineage is promoted.
     error: Mapped[str | None] = mapped_column(Text)
+    # Set when a worker could not load or train the model (a spec, record or
+    # snapshot it cannot read, an unexpected failure): why, how many tries in a
+    # row have failed, and when the next may start (the back-off, see
+    # service/worker/faults.py). Cleared by the next try that stores progress.
+    fault: Mapped[str | None] = mapped_column(Text)
+    faults: Mapped[int] = mapped_column(Integer, default=0, server_default="0")
+    retry_at: Mapped[dt.datetime | None] = mapped_column(DateTime(timezone=True))
     updated_at: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True), default=utcnow)
+
+    def clear_fault(self) -> None:
+        """The model trains again: forget its fault (in the caller's transaction)."""
+        if self.fault is not None or self.faults or self.retry_at is not None:
+            self.fault, self.faults, self.retry_at = None, 0, None
 
 
 class RecordRow(Base):

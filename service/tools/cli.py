@@ -354,6 +354,17 @@ def bench_http(as_json: bool, duration: int, connections: int, postgres_url: str
                          postgres_url=postgres_url, progress=_progress), as_json)
 
 
+@bench.command("budget")
+@click.option("--json", "as_json", is_flag=True, help="One JSON object.")
+@click.option("--target-seconds", type=click.FloatRange(min=0.01), default=2.0,
+              show_default=True, help="CPU time one prediction request may take.")
+def bench_budget(as_json: bool, target_seconds: float) -> None:
+    """CPU per budget unit of explanations here, and the budget that fits the target."""
+    from service.tools.bench.budget import run_budget_bench
+
+    _emit(run_budget_bench(target_seconds=target_seconds, progress=_progress), as_json)
+
+
 @bench.command("worker")
 @click.option("--json", "as_json", is_flag=True, help="One JSON object.")
 @click.option("--records", type=click.IntRange(min=1000), default=100_000, show_default=True,

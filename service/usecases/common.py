@@ -52,13 +52,17 @@ def as_utc(moment: dt.datetime | None) -> dt.datetime | None:
 
 def model_view(
     row: ModelRow, *, active_version: int | None, cursor: int, lag: int,
-    error: str | None = None,
+    error: str | None = None, retry_at: dt.datetime | None = None,
 ) -> dict[str, Any]:
     """GET /v1/models/{name}: the stored spec and the model's state; the
-    trainer's ``error`` only when its lineage was stopped (records then wait)."""
+    trainer's ``error`` only when it cannot train (records then wait), with
+    ``retry_at`` when the worker tries again by itself (a back-off) and without
+    it when the lineage stopped until a promotion."""
     trainer: dict[str, Any] = {"cursor": cursor, "lag": lag}
     if error is not None:
         trainer["error"] = error
+    if retry_at is not None:
+        trainer["retry_at"] = as_utc(retry_at)
     return {
         **row.spec,
         "name": row.name,

@@ -65,9 +65,10 @@ def _views(session: Session, rows: list[ModelRow]) -> list[dict[str, Any]]:
         ).all()
     )
     trainers = {
-        model_id: (cursor, error)
-        for model_id, cursor, error in session.execute(
-            select(TrainerRow.model_id, TrainerRow.cursor, TrainerRow.error)
+        model_id: (cursor, error or fault, retry_at)
+        for model_id, cursor, error, fault, retry_at in session.execute(
+            select(TrainerRow.model_id, TrainerRow.cursor, TrainerRow.error,
+                   TrainerRow.fault, TrainerRow.retry_at)
             .where(TrainerRow.model_id.in_(ids))
         ).all()
     }
@@ -80,13 +81,10 @@ def _views(session: Session, rows: list[ModelRow]) -> list[dict[str, Any]]:
             .group_by(RecordRow.model_id)
         ).all()
     )
-    return [
-        model_view(
-            row,
-            active_version=active.get(row.id),
-            cursor=trainers.get(row.id, (0, None))[0],
-            lag=lags.get(row.id, 0),
-            error=trainers.get(row.id, (0, None))[1],
-        )
-        for row in rows
-    ]
+    views = []
+    for row in rows:
+        cursor, error, retry_at = trainers.get(row.id, (0, None, None))
+        views.append(model_view(row, active_version=active.get(row.id), cursor=cursor,
+                                lag=lags.get(row.id, 0), error=error,
+                                retry_at=None if error is None else retry_at))
+    return views

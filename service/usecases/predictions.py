@@ -12,9 +12,12 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, fields
 from typing import Any
 
+import numpy as np
+
 import engine
 from service.errors import ConflictError, KeelsonError, NotFoundError
 from service.usecases.common import is_model_name
+from service.usecases.prediction_limits import PredictionLimits
 from service.versions.cache import (
     LoadedVersion,
     ModelEntry,
@@ -61,9 +64,13 @@ class VersionUnavailableError(KeelsonError):
 
 
 class NonFiniteOutputError(KeelsonError):
-    """The network answered NaN or infinity: not JSON (RFC 8259), never served."""
+    """The network's output or explanation overflowed to infinity or NaN for
+    the request's inputs (valid ones, far outside what the model learned
+    from): not JSON (RFC 8259), never served. The weights are finite (every
+    snapshot is checked on load), so only the inputs can have driven it."""
 
-    status = 500
+    status = 422
+    problem_type = "urn:keelson:problem:output-overflow"
 
 
 def find_model(cache: VersionCache, name: str) -> ModelEntry:
@@ -81,31 +88,77 @@ def predict(
     entry: ModelEntry,
     rows: Sequence[Mapping[str, Any]],
     options: PredictionOptions,
+    limits: PredictionLimits | None = None,
+    *,
+    batch: bool = False,
 ) -> tuple[int, list[dict[str, Any]]]:
     """The serving version's number and ``{"result", "explanation"}`` per row, in order.
 
     Engine inference allocates per call and keeps no state between calls, so
-    one cached network serves concurrent requests without a lock.
+    one cached network serves concurrent requests without a lock. ``limits``
+    refuses a request over budget before any work and ends one past its
+    deadline, or whose client left, between records (prediction_limits.py).
+    ``batch``: rows came as ``records`` of a body (errors name ``records.N``).
     """
     loaded = _version(cache, entry, options.version)
     learner = loaded.learner
+    if limits is not None:
+        network = learner.network
+        limits.check_cost(len(rows), options.explain, options.steps, options.samples,
+                          network.params.size, sum(network.sizes[1:]))
     encoded = learner.encode(rows)
     scores = learner.predict(encoded)
     classes = learner.classes if learner.task != "regression" else None
     answers = []
     for index in range(len(rows)):
-        if classes is not None:
-            result, predicted = _classification(classes, scores[index])
-            output = predicted if options.output is None else options.output
-        else:
-            result, output = _regression(scores[index]), None
+        if index and limits is not None:
+            limits.between_records(index, len(rows))
+        try:
+            if classes is not None:
+                result, predicted = _classification(classes, scores[index])
+                output = predicted if options.output is None else options.output
+            else:
+                result, output = _regression(scores[index]), None
+        except NonFiniteOutputError:
+            raise _overflow(learner, rows[index], encoded[index], index, batch,
+                            "output") from None
         explanation = None
         if options.explain != "none":
-            explanation = _explanation(learner.explain(
-                encoded[index], method=options.explain, output=output, steps=options.steps,
-                samples=options.samples, noise=options.noise, seed=options.seed))
+            try:
+                explanation = _explanation(learner.explain(
+                    encoded[index], method=options.explain, output=output,
+                    steps=options.steps, samples=options.samples, noise=options.noise,
+                    seed=options.seed))
+            except NonFiniteOutputError:
+                raise _overflow(learner, rows[index], encoded[index], index, batch,
+                                "explanation") from None
         answers.append({"result": result, "explanation": explanation})
     return loaded.number, answers
+
+
+def _overflow(learner: Any, row: Mapping[str, Any], encoded: Any, index: int, batch: bool,
+              what: str) -> NonFiniteOutputError:
+    """The 422 for a record whose ``what`` overflowed, naming the numeric
+    fields furthest from the centre of the model's encoding (in its own scale
+    units: the ones that drove the overflow), at most three."""
+    encoder = learner.encoder
+    numeric = np.flatnonzero(encoder.column_numeric)
+    distance = np.abs(encoded[numeric])
+    order = numeric[np.argsort(-distance, kind="stable")]
+    furthest = float(distance.max()) if len(numeric) else 0.0
+    names = [encoder.fields[encoder.column_field[column]] for column in order
+             if abs(float(encoded[column])) >= 0.01 * furthest][:3]
+    where = f"records.{index}" if batch else "these inputs"
+    detail = (f"The model's {what} overflows for {where}: the values are so far outside "
+              "the range it learned from that its arithmetic leaves the range of "
+              "64-bit floating point.")
+    if names:
+        detail += " Furthest out: " + ", ".join(f"{name} = {row[name]!r}" for name in names) \
+            + "."
+    prefix = f"records.{index}.features." if batch else ""
+    message = f"Too far outside the range the model learned from: its {what} overflows."
+    return NonFiniteOutputError(detail, errors={f"{prefix}{name}": [message] for name in names}
+                                or None)
 
 
 def _version(cache: VersionCache, entry: ModelEntry, number: int | None) -> LoadedVersion:

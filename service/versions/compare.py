@@ -15,6 +15,7 @@ changes only by the rows that enter and leave it.
 
 from __future__ import annotations
 
+import logging
 import math
 from typing import Any
 
@@ -22,11 +23,13 @@ from numpy.typing import NDArray
 from sqlalchemy import select
 from sqlalchemy.orm import Session, sessionmaker
 
-from engine import Learner
+from engine import EngineError, Learner
 from service.store.record_log import RecordChunk, read_latest_holdout
 from service.store.tables import ModelRow, VersionRow
 from service.versions.holdout import HoldoutWindow, evaluate
 from service.versions.policy import primary_metric
+
+log = logging.getLogger("keelson.worker")
 
 ENCODER_KEY = "encoder"  # snapshot extra: which frozen encoding a version uses
 RECORDS_BEFORE_KEY = "records_before"  # snapshot extra: train records learned in batch
@@ -57,7 +60,9 @@ class ActiveScore:
         self._total = 0.0 if value is None or not self._n else self._sum(float(value), self._n)
 
     def forget(self) -> None:
+        """Track nothing (``value()`` is None until ``start``)."""
         self.version_id, self.learner = None, None
+        self._total, self._n = 0.0, 0
 
     def update(self, X_in: NDArray[Any], Y_in: NDArray[Any],
                X_out: NDArray[Any], Y_out: NDArray[Any]) -> None:
@@ -93,10 +98,18 @@ def read_active_id(session: Session, model_id: int) -> int | None:
 def _score_from_scratch(session: Session, active: ActiveScore, active_id: int, model_id: int,
                         window: HoldoutWindow, encoder: str | None, cursor: int,
                         holdout_window: int, rows: RecordChunk | None) -> None:
-    snapshot = session.execute(
-        select(VersionRow.snapshot).where(VersionRow.id == active_id)
-    ).scalar_one()
-    learner = Learner.from_bytes(snapshot)
+    number, snapshot = session.execute(
+        select(VersionRow.number, VersionRow.snapshot).where(VersionRow.id == active_id)
+    ).one()
+    try:
+        learner = Learner.from_bytes(snapshot)
+    except EngineError as exc:
+        # It cannot serve either (the API answers 503 for it): nothing to
+        # beat, so a readable new version replaces it (policy.should_promote).
+        log.warning("model %s: active version %s cannot be loaded (%s); a new version "
+                    "is not compared with it", model_id, number, exc)
+        active.forget()
+        return
     if encoder is not None and encoder_of(learner) == encoder:
         active.start(active_id, learner, evaluate(learner, window))
         return

@@ -14,7 +14,7 @@ two of them can never deadlock.
 from __future__ import annotations
 
 from sqlalchemy import select, update
-from sqlalchemy.orm import Session
+from sqlalchemy.orm import Session, load_only
 
 from service.store.tables import ModelRow, TrainerRow, VersionRow, utcnow
 
@@ -29,9 +29,14 @@ def lock_model(session: Session, model_id: int) -> ModelRow:
     trainer row and inserting its version would then wait on whoever holds
     the model, while that one (an online checkpoint promoting its version)
     waits for the trainer row: a deadlock. Model keys never change, so the
-    weaker lock still serialises every writer of the row."""
+    weaker lock still serialises every writer of the row.
+
+    Only the id and the active pointer are read: a promotion needs no more,
+    and the spec's JSON is then neither decoded at every promotion nor able
+    to fail one (a damaged spec is the worker's fault to report, faults.py)."""
     return session.execute(
         select(ModelRow)
+        .options(load_only(ModelRow.id, ModelRow.active_version_id))
         .where(ModelRow.id == model_id)
         .with_for_update(key_share=True)
         .execution_options(populate_existing=True)
@@ -45,9 +50,10 @@ def promote(session: Session, model_row: ModelRow, version_row: VersionRow) -> N
     The previously active version becomes ``retired``. When the version is not
     the online trainer's head nor one of its ancestors (a retrain, or a version
     of an abandoned lineage), it also becomes the head: online learning goes on
-    from it with the records after its cursor, and a stopped lineage's error is
-    cleared. Promoting an ancestor of the head (a rollback) changes only what
-    is served; the lineage keeps learning from its head.
+    from it with the records after its cursor, and a stopped lineage's error
+    and a backed-off model's fault are cleared. Promoting an ancestor of the
+    head (a rollback) changes only what is served; the lineage keeps learning
+    from its head.
     """
     if version_row.model_id != model_row.id:
         raise ValueError("the version belongs to another model")
@@ -81,6 +87,7 @@ def promote(session: Session, model_row: ModelRow, version_row: VersionRow) -> N
         trainer.head_version_id = version_row.id
         trainer.cursor = version_row.cursor
         trainer.error = None
+        trainer.clear_fault()  # a new head: whatever failed may not fail now
         trainer.updated_at = now
     session.flush()
 

@@ -113,6 +113,7 @@ def write_online_version(
         version = insert_version(session, model_id, new)
         trainer.cursor = new.cursor
         trainer.head_version_id = version.id
+        trainer.clear_fault()  # progress stored: a back-off starts over
         trainer.updated_at = utcnow()
         session.flush()
         _maybe_promote(session, model_id, version, promotion)
@@ -130,6 +131,7 @@ def advance_cursor(
         trainer = lock_trainer(session, model_id)
         check_owner(trainer, worker_id, head_id)
         trainer.cursor = cursor
+        trainer.clear_fault()
         trainer.updated_at = utcnow()
 
 

@@ -39,8 +39,9 @@ def problem(
     title: str | None = None,
     type_: str | None = None,
     headers: Mapping[str, str] | None = None,
+    members: Mapping[str, Any] | None = None,
 ) -> Response:
-    """A problem details answer."""
+    """A problem details answer (``members``: extension members)."""
     body: dict[str, Any] = {
         "type": type_ or (VALIDATION_TYPE if errors else BLANK),
         "title": title or HTTPStatus(status).phrase,
@@ -49,6 +50,8 @@ def problem(
     }
     if errors:
         body["errors"] = dict(errors)
+    if members:
+        body.update(members)
     response = Response(
         json.dumps(body, ensure_ascii=False), status=status, mimetype=PROBLEM_MIMETYPE
     )
@@ -111,7 +114,8 @@ def handle_http_exception(error: HTTPException) -> Response:
 
 def handle_keelson_error(error: KeelsonError) -> Response:
     return problem(
-        error.status, error.detail, errors=error.errors, headers=error.headers
+        error.status, error.detail, errors=error.errors, headers=error.headers,
+        type_=error.problem_type, members=error.members, title=error.title,
     )
 
 

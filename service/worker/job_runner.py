@@ -19,6 +19,7 @@ from sqlalchemy.orm import Session, sessionmaker
 from engine import TrainingCancelled
 from service.store.database import transaction
 from service.versions.writes import Fenced
+from service.worker.faults import describe, is_expected
 from service.worker.jobs import fail_job, requeue_job, retry_job
 from service.worker.leasing import claim_job, renew_job
 from service.worker.retrain import run_retrain
@@ -88,9 +89,12 @@ class JobRunner:
             except Exception:  # its lease runs out and a worker claims it again
                 log.exception("job %s: queueing it again failed", job_id)
         except Exception as exc:
-            log.exception("job %s: failed", job_id)
+            if is_expected(exc):  # a fault of the model's, said in full by its message
+                log.warning("job %s: failed: %s", job_id, exc)
+            else:
+                log.exception("job %s: failed", job_id)
             try:
-                fail_job(self.writes, job_id, self.worker_id, f"{type(exc).__name__}: {exc}")
+                fail_job(self.writes, job_id, self.worker_id, describe(exc))
             except Exception:
                 log.exception("job %s: recording the failure failed", job_id)
         finally:

@@ -58,8 +58,9 @@ def claim_trainers(
     exclude: Iterable[int] = (),
 ) -> list[int]:
     """Lease up to ``limit`` free, unstopped trainers to ``worker_id`` (its own
-    leases count as free, except the models in ``exclude``); returns their
-    model ids. Call inside a write transaction."""
+    leases count as free, except the models in ``exclude``), leaving out the
+    models backed off until later (faults.py); returns their model ids. Call
+    inside a write transaction."""
     if limit <= 0:
         return []
     now = utcnow()
@@ -67,6 +68,7 @@ def claim_trainers(
         select(TrainerRow.model_id)
         .where(
             TrainerRow.error.is_(None),
+            or_(TrainerRow.retry_at.is_(None), TrainerRow.retry_at <= now),
             TrainerRow.model_id.not_in(list(exclude)),
             or_(
                 TrainerRow.leased_by.is_(None),

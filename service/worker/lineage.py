@@ -27,7 +27,7 @@ from sqlalchemy.orm import Session, sessionmaker
 
 from engine import EngineError, Learner, NonFiniteError
 from service.store.record_log import RecordChunk, read_after, read_latest_holdout
-from service.store.tables import ModelRow, TrainerRow, VersionRow
+from service.store.tables import TrainerRow, VersionRow
 from service.versions.compare import (
     ENCODER_KEY,
     RECORDS_BEFORE_KEY,
@@ -40,13 +40,14 @@ from service.versions.compare import (
 from service.versions.decide import PromotionContext, decide
 from service.versions.holdout import HoldoutWindow, evaluate, json_metrics
 from service.versions.writes import NewVersion, advance_cursor, stop_lineage, write_online_version
+from service.worker.faults import ModelFault, clear_fault, load_spec
 from service.worker.settings import WorkerSettings
 
 log = logging.getLogger("keelson.worker")
 
 
 class LineageStopped(Exception):
-    """The lineage hit a non-finite step or an unusable record and was stopped."""
+    """The lineage hit a non-finite step and was stopped (``trainers.error``)."""
 
 
 class OnlineLineage:
@@ -80,14 +81,20 @@ class OnlineLineage:
         # The active version id read with the current chunk (UNREAD outside one).
         self._active_id: Any = UNREAD
         with reads() as session:
-            self.spec: dict[str, Any] = dict(session.get(ModelRow, model_id).spec)  # type: ignore[union-attr]
+            self.spec: dict[str, Any] = load_spec(session, model_id)
             trainer = session.get(TrainerRow, model_id)
             assert trainer is not None
+            # A fault left by an earlier try, cleared once this one gets through.
+            self.faulted = trainer.fault is not None
             self.head_id = trainer.head_version_id
             if self.head_id is not None:
                 head = session.get(VersionRow, self.head_id)
                 assert head is not None
-                self.learner = Learner.from_bytes(head.snapshot)
+                try:
+                    self.learner = Learner.from_bytes(head.snapshot)
+                except EngineError as exc:
+                    raise ModelFault(f"the head version {head.number} cannot be loaded: "
+                                     f"{exc}", head_id=head.id) from None
                 self.encoder = encoder_of(self.learner) or f"version:{head.id}"
                 self.records_before = int(self.learner.extra.get(RECORDS_BEFORE_KEY, 0))
                 self.cursor = self.stored_cursor = trainer.cursor
@@ -110,6 +117,8 @@ class OnlineLineage:
         if not len(chunk):
             if time.monotonic() - self.last_arrival >= self.settings.idle_seconds:
                 self.flush()
+            if not self.pending_train and self.cursor == self.stored_cursor:
+                self._clear_fault()  # all applied and stored: nothing left to fail
             return False
         self.last_arrival = time.monotonic()
         try:
@@ -137,6 +146,12 @@ class OnlineLineage:
         elif self.cursor != self.stored_cursor:
             advance_cursor(self.writes, self.model_id, self.worker_id, self.head_id, self.cursor)
             self.stored_cursor = self.cursor
+            self.faulted = False  # cleared in that transaction
+
+    def _clear_fault(self) -> None:
+        if self.faulted:
+            clear_fault(self.writes, self.model_id, self.worker_id)
+            self.faulted = False
 
     def _apply(self, chunk: RecordChunk) -> None:
         learner = self.learner
@@ -144,8 +159,8 @@ class OnlineLineage:
         try:
             X = learner.encode(chunk.features)
             Y = learner.encode_labels(chunk.labels)
-        except EngineError as exc:
-            self._stop(f"records {chunk.seqs[0]}..{chunk.seqs[-1]} cannot be encoded: {exc}")
+        except EngineError:
+            raise self._unencodable(chunk) from None
         start = 0
         while start < len(chunk):
             stop = self._segment_end(chunk.is_train, start)
@@ -161,6 +176,20 @@ class OnlineLineage:
             start = stop
             if self.pending_train and learner.records_seen % self.checkpoint_every == 0:
                 self._write_version()
+
+    def _unencodable(self, chunk: RecordChunk) -> ModelFault:
+        """The fault naming the first record of ``chunk`` that does not encode
+        (found record by record: only a failure pays for it)."""
+        assert self.learner is not None
+        for seq, features, label in zip(chunk.seqs, chunk.features, chunk.labels,
+                                        strict=True):
+            try:
+                self.learner.encode([features])
+                self.learner.encode_labels([label])
+            except EngineError as exc:
+                reason = str(exc).removeprefix("row 0: ")
+                return ModelFault(f"record {seq} cannot be encoded: {reason}")
+        return ModelFault(f"records {chunk.seqs[0]}..{chunk.seqs[-1]} cannot be encoded")
 
     def _segment_end(self, is_train: np.ndarray, start: int) -> int:
         """End of the run of records that takes ``records_seen`` at most to
@@ -217,6 +246,7 @@ class OnlineLineage:
         self.head_id = version.id
         self.stored_cursor = self.cursor
         self.pending_train = 0
+        self.faulted = False  # cleared in the version's transaction
         log.info("model %s: version %s at record %s (%s seen)%s", self.model_id,
                  version.number, self.cursor, learner.records_seen,
                  " promoted" if version.status == "active" else "")
@@ -224,23 +254,32 @@ class OnlineLineage:
     # ------------------------------------------------------------------ warm-up
     def _warm_up(self) -> bool:
         """Create the lineage's first learner once ``warmup_records`` train
-        records exist, or fewer once the stream has been idle a while."""
+        records exist, or fewer once the stream has been idle a while.
+
+        ``warmup_records: 0`` means no warm-up: the learner is created at the
+        first train record, its numeric fields encoded from their declared
+        bounds or as they come (the engine's policy for a field without
+        warm-up values), so a model that asks for none still trains."""
         with self.reads() as session:
-            rows = read_after(session, self.model_id, 0, self.warmup_records, split="train")
+            rows = read_after(session, self.model_id, 0, max(self.warmup_records, 1),
+                              split="train")
         if len(rows) != self._warmup_seen:
             self._warmup_seen = len(rows)
             self.last_arrival = time.monotonic()
         idle = time.monotonic() - self.last_arrival >= self.settings.idle_seconds
         if not len(rows) or (len(rows) < self.warmup_records and not idle):
+            self._clear_fault()  # waiting for records: nothing failed
             return False
+        used = rows.features[:self.warmup_records], rows.labels[:self.warmup_records]
         try:
-            self.learner = Learner.create(self.spec, warmup=rows.features,
-                                          warmup_labels=rows.labels)
+            self.learner = Learner.create(self.spec, warmup=used[0], warmup_labels=used[1])
         except EngineError as exc:
-            self._stop(f"cannot create the network from the spec and warm-up records: {exc}")
-        self.encoder = f"warmup:{self.model_id}:{int(rows.seqs[-1])}"
+            raise ModelFault("the network cannot be created from the spec and warm-up "
+                             f"records: {exc}") from None
+        last = int(rows.seqs[len(used[0]) - 1]) if used[0] else 0
+        self.encoder = f"warmup:{self.model_id}:{last}"
         log.info("model %s: network created, encoding from %s warm-up records",
-                 self.model_id, len(rows))
+                 self.model_id, len(used[0]))
         self.cursor = self.stored_cursor = 0
         self.last_arrival = time.monotonic()
         return True
@@ -249,6 +288,11 @@ class OnlineLineage:
         assert self.learner is not None
         rows = read_latest_holdout(session, self.model_id, self.cursor,
                                    self.settings.holdout_window)
-        if len(rows):
+        if not len(rows):
+            return
+        try:
             self.window.extend(self.learner.encode(rows.features),
                                self.learner.encode_labels(rows.labels))
+        except EngineError as exc:
+            raise ModelFault(f"holdout records {rows.seqs[0]}..{rows.seqs[-1]} cannot be "
+                             f"encoded: {exc}", head_id=self.head_id) from None

@@ -21,15 +21,15 @@ import time
 from collections.abc import Mapping
 from typing import Any
 
-from sqlalchemy import Engine
+from sqlalchemy import Engine, select
 from sqlalchemy import exc as sa_exc
 from sqlalchemy.orm import Session, sessionmaker
 
-from engine import EngineError
 from service.process import stop_on_signals
 from service.store.database import make_engine, make_sessionmaker, transaction
 from service.store.record_log import decode_json
-from service.versions.writes import Fenced, stop_lineage
+from service.versions.writes import Fenced
+from service.worker.faults import ANY_HEAD, describe, is_expected, record_fault
 from service.worker.job_runner import JobRunner
 from service.worker.leasing import (
     claim_trainers,
@@ -42,6 +42,7 @@ from service.worker.settings import WorkerSettings
 
 log = logging.getLogger("keelson.worker")
 CLAIM_BATCH = 4
+FAULT_LOG = "cannot train"  # how each failed try of one model starts its log line
 # Failures that mean the database is away for now (restarting, unreachable).
 DATABASE_AWAY = (sa_exc.OperationalError, sa_exc.InterfaceError)
 
@@ -140,12 +141,48 @@ class Worker:
             except (Fenced, LineageStopped) as exc:
                 log.warning("model %s: dropped by %s: %s", model_id, self.worker_id, exc)
                 self.lineages.pop(model_id, None)
-            except Exception:
-                # Start again from the last version next time round: nothing
+            except Exception as exc:
+                # Start again from the last version after the back-off: nothing
                 # in memory is needed that the database does not hold.
-                log.exception("model %s: step failed; reloading", model_id)
                 self.lineages.pop(model_id, None)
+                self._fault(model_id, exc, lineage.head_id)
         return busy
+
+    def _fault(self, model_id: int, exc: Exception, head_id: Any = ANY_HEAD) -> None:
+        """This model failed to load or step from ``head_id``: back it off
+        alone (faults.py), unless it is the database that failed, not the
+        model, or the head has moved since (then the next try starts afresh)."""
+        if isinstance(exc, DATABASE_AWAY) and not self._database_answers():
+            if not self._database_away:
+                log.warning("worker %s: database unavailable (%s); waiting for it",
+                            self.worker_id, type(exc.orig or exc).__name__)
+                self._database_away = True
+            return
+        text = describe(exc)
+        try:
+            fault = record_fault(self.writes, model_id, self.worker_id, text,
+                                 self.settings.retry_seconds, self.settings.retry_max_seconds,
+                                 head_id)
+        except Exception:  # the lease runs out and the model is tried again then
+            log.exception("model %s: recording its fault failed: %s", model_id, text)
+            return
+        if fault is None:
+            log.warning("model %s: failed, but another worker holds it or its head moved "
+                        "since; not backed off: %s", model_id, text)
+            return
+        # One line per try: a traceback only with the first try of a failure
+        # we did not foresee (a fault of ours reads well on its own).
+        log.warning("model %s: %s (try %s failed): %s; next try in %.3g s", model_id,
+                    FAULT_LOG, fault.count, text, fault.delay,
+                    exc_info=exc if fault.count == 1 and not is_expected(exc) else None)
+
+    def _database_answers(self) -> bool:
+        try:
+            with self.reads() as session:
+                session.execute(select(1))
+        except DATABASE_AWAY:
+            return False
+        return True
 
     def _heartbeat(self) -> None:
         with transaction(self.writes) as session:
@@ -175,9 +212,8 @@ class Worker:
                 self.lineages[model_id] = OnlineLineage(
                     model_id, self.worker_id, self.settings, self.reads, self.writes
                 )
-            except EngineError as exc:  # the head's snapshot cannot be loaded
-                stop_lineage(self.writes, model_id, self.worker_id, None,
-                             f"the head version cannot be loaded: {exc}", check_head=False)
+            except Exception as exc:  # its spec, head or holdout records: this model only
+                self._fault(model_id, exc, getattr(exc, "head_id", None) or ANY_HEAD)
 
     def _shutdown(self) -> None:
         self.jobs.close()

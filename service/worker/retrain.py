@@ -33,17 +33,19 @@ from service.store.record_log import (
     read_latest_holdout,
     record_columns,
 )
-from service.store.tables import JobRow, ModelRow, RecordRow, VersionRow
+from service.store.tables import JobRow, RecordRow, VersionRow
 from service.versions.compare import (
     ENCODER_KEY,
     RECORDS_BEFORE_KEY,
     encoder_of,
     measure_active,
     new_active_score,
+    read_active_id,
 )
 from service.versions.decide import PromotionContext, decide
 from service.versions.holdout import HoldoutWindow, evaluate, json_metrics
 from service.versions.writes import NewVersion, write_retrain_version
+from service.worker.faults import load_spec
 from service.worker.jobs import report_progress
 from service.worker.settings import WorkerSettings
 
@@ -64,14 +66,14 @@ def run_retrain(
     with reads() as session:
         job = session.get(JobRow, job_id)
         assert job is not None
-        model = session.get(ModelRow, job.model_id)
-        assert model is not None
-        spec, model_id = dict(model.spec), model.id
+        model_id = job.model_id
+        spec = load_spec(session, model_id)  # ModelFault: the job fails saying why
+        active_version_id = read_active_id(session, model_id)
         warm_start = bool((job.params or {}).get("warm_start"))
         cursor = last_seq(session, model_id)
         n_train = count_records(session, model_id, upto=cursor, split="train")
-        active = session.get(VersionRow, model.active_version_id) if (
-            warm_start and model.active_version_id) else None
+        active = session.get(VersionRow, active_version_id) if (
+            warm_start and active_version_id) else None
         if n_train == 0:
             raise ValueError("the model has no train records to retrain on")
         if active is not None:

@@ -24,6 +24,8 @@ _KEYS = {
     "holdout_window": "KEELSON_WORKER_HOLDOUT_WINDOW",
     "max_models": "KEELSON_WORKER_MAX_MODELS",
     "progress_seconds": "KEELSON_WORKER_PROGRESS_SECONDS",
+    "retry_seconds": "KEELSON_WORKER_RETRY_SECONDS",
+    "retry_max_seconds": "KEELSON_WORKER_RETRY_MAX_SECONDS",
 }
 
 
@@ -50,6 +52,15 @@ class WorkerSettings:
     holdout_window: int = _default("holdout_window")
     max_models: int | None = _default("max_models")
     progress_seconds: float = _default("progress_seconds")
+    # A model the worker cannot load or train is tried again after this many
+    # seconds, doubled with each try that fails in a row, up to the maximum.
+    retry_seconds: float = _default("retry_seconds")
+    retry_max_seconds: float = _default("retry_max_seconds")
+
+    def __post_init__(self) -> None:
+        if not 0 < self.retry_seconds <= self.retry_max_seconds:
+            raise ValueError("the worker's retry wait must be positive and at most its maximum "
+                             "(KEELSON_WORKER_RETRY_SECONDS, KEELSON_WORKER_RETRY_MAX_SECONDS)")
 
     @property
     def heartbeat_seconds(self) -> float:

@@ -16,6 +16,12 @@ itself: JSON bodies, CSV bodies of the same records, and query strings.
 
 The number of examples per operation is bounded: ``KEELSON_FUZZ_EXAMPLES``
 (default 25, the CI run); the longer run is ``KEELSON_FUZZ_EXAMPLES=500``.
+
+A second model ("pump-flow": a relu regression whose numeric fields declare
+no bounds) takes a third of the aimed prediction cases, drawn from its own
+schema with half of them carrying values up to the largest double: valid
+requests whose output overflows must be refused as the client's (422), never
+answered with a server error.
 """
 
 from __future__ import annotations
@@ -42,6 +48,17 @@ from tests.service.predictions_factory import add_version, pump_rows, pump_rule,
 EXAMPLES = int(os.environ.get("KEELSON_FUZZ_EXAMPLES", "25"))
 MODEL = "pump-risk"
 RECORDS_PER_CASE = 5  # the document allows thousands; a few keep each case quick
+FLOW_MODEL = "pump-flow"
+FLOW_SPEC: dict[str, Any] = {
+    "name": FLOW_MODEL, "task": "regression", "target": "flow_m3h", "activation": "relu",
+    "hidden_layers": [16, 16],
+    "features": [{"name": "speed_rpm", "type": "numeric"},
+                 {"name": "head_m", "type": "numeric"},
+                 {"name": "pump_family", "type": "categorical",
+                  "levels": ["centrifugal", "screw"]}],
+}
+# Values for the unbounded fields, from ordinary to the largest finite double.
+FLOW_VALUES = [1450.0, -3.5, 1e6, 1e154, 1e307, 1e308, -1e308, 1.7976931348623157e308]
 
 
 @pytest.fixture
@@ -57,12 +74,33 @@ def fuzz_app(database_url: str) -> Iterator[Flask]:
     spec = api.request("GET", f"/v1/models/{MODEL}", 200)
     learner = train_learner({**spec, **spec.get("spec", {})}, pump_rows(64), pump_rule, passes=1)
     add_version(app, MODEL, learner.to_bytes(), activate=True)
+    flow_spec = api.request("POST", "/v1/models", 201, json_body=FLOW_SPEC)
+    flow = train_learner(flow_spec, flow_rows(64), flow_rule, passes=1)
+    add_version(app, FLOW_MODEL, flow.to_bytes(), activate=True)
     get_version_cache(app).clear()  # as after the staleness bound: version 1 serves
     api.request("POST", f"/v1/models/{MODEL}/retrain", 202, json_body={"warm_start": False})
     app.extensions["fuzz.model"] = ModelRequests(spec, api.request(
         "GET", f"/v1/models/{MODEL}/schema", 200))
+    app.extensions["fuzz.flow"] = ModelRequests(flow_spec, api.request(
+        "GET", f"/v1/models/{FLOW_MODEL}/schema", 200))
     yield app
     get_database(app).engine.dispose()
+
+
+def flow_rows(n: int) -> list[dict[str, Any]]:
+    return [{"speed_rpm": 900.0 + 37.0 * i, "head_m": float(i % 40),
+             "pump_family": "screw" if i % 2 else "centrifugal"} for i in range(n)]
+
+
+def flow_rule(row: dict[str, Any]) -> float:
+    """A made-up rating: flow rises with speed and falls with head."""
+    return 0.05 * row["speed_rpm"] - 2.0 * row["head_m"]
+
+
+def _extreme(features: dict[str, Any], seed: int) -> dict[str, Any]:
+    """The flow model's features with its unbounded numbers pushed to the edge."""
+    return {**features, "speed_rpm": FLOW_VALUES[seed % len(FLOW_VALUES)],
+            "head_m": FLOW_VALUES[(seed // 8) % len(FLOW_VALUES)]}
 
 
 def _inlined(document: dict[str, Any]) -> dict[str, Any]:
@@ -160,29 +198,40 @@ def _states_only_in_words(spec: Any) -> bool:
             or any(not low < high for low, high in bounds))
 
 
-def _aim(case: Any, data: st.DataObject, model: ModelRequests) -> None:
-    """Point about half the cases at the existing model (the choice is a hash
+def _aim(case: Any, data: st.DataObject, model: ModelRequests, flow: ModelRequests) -> None:
+    """Point about half the cases at an existing model (the choice is a hash
     of the case, so a failure replays); records and predictions sent to it are
-    drawn from its own schema."""
+    drawn from its own schema. A third of the aimed prediction cases go to the
+    unbounded flow model, half of those with values at the edge of a double."""
     path = case.operation.path
     if case.method.upper() == "POST" and path == "/v1/models":
         assume(not _states_only_in_words(case.body))
-    if zlib.crc32(repr(case.path_parameters).encode()) % 2 or not case.path_parameters:
+    seed = zlib.crc32(repr(case.path_parameters).encode())
+    if seed % 2 or not case.path_parameters:
         return
+    predictions = path.endswith("/predictions")
+    to_flow = predictions and seed % 3 == 0
+    target = flow if to_flow else model
     if "name" in case.path_parameters:
-        case.path_parameters["name"] = MODEL
+        case.path_parameters["name"] = FLOW_MODEL if to_flow else MODEL
         if "number" in case.path_parameters:
             case.path_parameters["number"] = 1
     if "job_id" in case.path_parameters:
         case.path_parameters["job_id"] = 1
     post = case.method.upper() == "POST"
-    if path.endswith("/predictions") and not post:
-        case.query = data.draw(model.query, label="query").query
-    elif path.endswith("/predictions"):
+    extreme = to_flow and (seed // 6) % 2 == 0
+    if predictions and not post:
+        case.query = data.draw(target.query, label="query").query
+        if extreme:
+            case.query.update({k: repr(v) for k, v in _extreme({}, seed // 12).items()})
+    elif predictions:
         # The options travel in the body; the same option in the query too
         # must agree with it, a rule across two locations no schema can state.
         case.query = {}
-        case.body = data.draw(model.predictions, label="prediction body").body
+        case.body = data.draw(target.predictions, label="prediction body").body
+        if extreme:
+            case.body["records"] = [{**item, "features": _extreme(item["features"], seed // 12)}
+                                    for item in case.body["records"]]
     elif path.endswith("/records"):
         body = data.draw(model.records, label="records body").body
         case.body = model.as_csv(body["records"]) if case.media_type == "text/csv" else body
@@ -197,13 +246,14 @@ def test_every_operation_answers_within_the_document(fuzz_app: Flask, method: st
                                                      path: str) -> None:
     operation = schemathesis.openapi.from_wsgi("/openapi.json", fuzz_app)[path][method]
     model: ModelRequests = fuzz_app.extensions["fuzz.model"]
+    flow: ModelRequests = fuzz_app.extensions["fuzz.flow"]
     seen: list[int] = []
 
     @settings(max_examples=EXAMPLES, deadline=None, derandomize=True, database=None,
               suppress_health_check=list(HealthCheck))
     @given(case=operation.as_strategy(), data=st.data())
     def fuzz(case: Any, data: st.DataObject) -> None:
-        _aim(case, data, model)
+        _aim(case, data, model, flow)
         response = case.call_and_validate(headers={"Authorization": f"Bearer {ADMIN_TOKEN}"})
         assert response.status_code < 500, (response.status_code, response.text)
         seen.append(response.status_code)

@@ -288,7 +288,7 @@ def test_a_tampered_snapshot_is_a_clear_error_over_http(api: ApiClient, tmp_path
     assert not marker.exists()
 
 
-def test_a_planted_snapshot_stops_the_worker_lineage_without_running(
+def test_a_planted_snapshot_backs_the_worker_off_that_model_without_running(
     sqlite_url: str, tmp_path: Path
 ) -> None:
     from tests.worker.helpers import database, trainer, wait_until, worker_thread
@@ -312,8 +312,8 @@ def test_a_planted_snapshot_stops_the_worker_lineage_without_running(
                 json_body={"records": [record(i) for i in range(20)]})
     db = database(sqlite_url)
     with worker_thread(sqlite_url):
-        error = wait_until(lambda: trainer(db, model_id).error, timeout=120)
-    assert "cannot be loaded" in error
+        fault = wait_until(lambda: trainer(db, model_id).fault, timeout=120)
+    assert "cannot be loaded" in fault and trainer(db, model_id).retry_at is not None
     assert not marker.exists()
     db.engine.dispose()
 

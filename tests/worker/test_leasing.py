@@ -140,3 +140,37 @@ def test_postgres_claims_skip_rows_another_transaction_holds(postgres_url: str) 
         second = claim(writes, "b", limit=10)
         assert first == ids[:1] and second == ids[1:]
     engine.dispose()
+
+
+def test_a_backed_off_trainer_is_not_leased_before_its_retry_time(writes) -> None:  # type: ignore[no-untyped-def]
+    """The back-off is kept in the database, so it holds for every worker and
+    across restarts: a model whose retry time is still ahead is left alone."""
+    from service.worker.faults import record_fault
+
+    first, second = models(writes, 2)
+    assert claim(writes, "a") == [first, second]
+    fault = record_fault(writes, first, "a", "the model's stored spec cannot be read", 60, 300)
+    assert fault is not None and (fault.count, fault.delay) == (1, 60)
+    assert claim(writes, "b") == []  # "a" still holds the second; the first waits
+    with writes() as session, session.begin():
+        row = session.get(TrainerRow, first)
+        assert row is not None and row.leased_by is None and row.faults == 1
+        assert row.retry_at is not None and row.error is None
+        row.retry_at = utcnow() - dt.timedelta(seconds=1)
+    assert claim(writes, "b") == [first]
+    # A fault recorded by a worker that no longer holds the model changes nothing.
+    assert record_fault(writes, first, "a", "late", 60, 300) is None
+    # Nor one from a try that started on a head since replaced (a promotion).
+    assert record_fault(writes, first, "b", "stale", 60, 300, head_id=12345) is None
+    with writes() as session:
+        row = session.get(TrainerRow, first)
+        assert row is not None and row.leased_by == "b" and row.fault is not None
+        assert row.fault != "stale"
+
+
+def test_the_back_off_doubles_from_the_first_wait_up_to_the_largest() -> None:
+    from service.worker.faults import back_off_seconds
+
+    assert [back_off_seconds(n, 1.0, 300.0) for n in range(1, 11)] == [
+        1, 2, 4, 8, 16, 32, 64, 128, 256, 300]
+    assert back_off_seconds(10_000, 1.0, 300.0) == 300.0  # no overflow however many

@@ -6,6 +6,7 @@ with the same schedule, and the schema stays what the code maps."""
 from __future__ import annotations
 
 import copy
+import json
 import uuid
 from collections.abc import Iterator
 from pathlib import Path
@@ -14,14 +15,14 @@ from typing import Any
 import numpy as np
 import pytest
 from alembic import command
-from sqlalchemy import select
+from sqlalchemy import select, text
 from sqlalchemy.engine import make_url
 
 import engine
 from engine import Learner
 from engine.snapshot import dump, load
 from service.store.schema import alembic_config, upgrade_database
-from service.store.tables import ModelRow, RecordRow, TrainerRow, VersionRow
+from service.store.tables import ModelRow, utcnow
 from tests.conftest import _admin_execute, _postgres_base_url
 from tests.service.conftest import build_app
 from tests.service.helpers import ApiClient
@@ -90,24 +91,33 @@ def store_old_model(url: str) -> tuple[int, Learner, list[dict[str, Any]]]:
     meta["spec"] = spelled_old(meta["spec"])
     snapshot = dump(arrays, meta)
     db = database(url)
-    with db.write() as session:
-        model = ModelRow(name="old-model", spec=spelled_old(spec),
-                         records_train=len(features), records_holdout=0)
-        session.add(model)
-        session.flush()
-        version = VersionRow(model_id=model.id, number=1, origin="online", status="active",
-                             snapshot=snapshot, cursor=APPLIED, records_seen=APPLIED,
-                             metrics={}, parent_id=None)
-        session.add(version)
-        session.flush()
-        model.active_version_id = version.id
-        session.add(TrainerRow(model_id=model.id, cursor=APPLIED, head_version_id=version.id))
-        session.add_all(RecordRow(seq=i + 1, model_id=model.id, key=None, features=row,
-                                  label=label, split="train")
-                        for i, (row, label) in enumerate(zip(features, labels(features),
-                                                             strict=True)))
-        session.commit()
-        model_id = model.id
+    # Plain SQL of the columns revision 0002 has: the mapped rows carry the
+    # columns of later revisions too, which this database does not have yet.
+    now = utcnow()
+    with db.engine.begin() as connection:
+        model_id = connection.execute(
+            text("INSERT INTO models (name, spec, records_train, records_holdout, created_at) "
+                 "VALUES ('old-model', :spec, :n, 0, :now) RETURNING id"),
+            {"spec": json.dumps(spelled_old(spec)), "n": len(features), "now": now},
+        ).scalar_one()
+        version_id = connection.execute(
+            text("INSERT INTO versions (model_id, number, origin, status, snapshot, cursor, "
+                 "records_seen, metrics, created_at) VALUES (:model, 1, 'online', 'active', "
+                 ":snapshot, :cursor, :cursor, '{}', :now) RETURNING id"),
+            {"model": model_id, "snapshot": snapshot, "cursor": APPLIED, "now": now},
+        ).scalar_one()
+        connection.execute(text("UPDATE models SET active_version_id = :v WHERE id = :m"),
+                           {"v": version_id, "m": model_id})
+        connection.execute(
+            text("INSERT INTO trainers (model_id, cursor, head_version_id, updated_at) "
+                 "VALUES (:model, :cursor, :version, :now)"),
+            {"model": model_id, "cursor": APPLIED, "version": version_id, "now": now})
+        connection.execute(
+            text("INSERT INTO records (seq, model_id, features, label, split, received_at) "
+                 "VALUES (:seq, :model, :features, :label, 'train', :now)"),
+            [{"seq": i + 1, "model": model_id, "features": json.dumps(row),
+              "label": json.dumps(label), "now": now}
+             for i, (row, label) in enumerate(zip(features, labels(features), strict=True))])
     db.engine.dispose()
     return model_id, Learner.from_bytes(snapshot), features[APPLIED:]
 

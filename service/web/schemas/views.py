@@ -23,8 +23,14 @@ class TrainerStateSchema(Schema):
     cursor = fields.Integer(required=True, metadata={"description": "Last applied sequence."})
     lag = fields.Integer(required=True, metadata={"description": "Records not yet applied."})
     error = fields.String(metadata={
-        "description": "Present when the online lineage stopped (e.g. a non-finite loss): "
-        "why. Records then wait; the active version keeps serving."})
+        "description": "Present when the model cannot be trained: why. Records then wait; "
+        "the active version keeps serving. With `retry_at`, the worker could not load or "
+        "train the model (a damaged spec, record or snapshot, an unexpected failure) and "
+        "tries again then, waiting twice as long after each failed try; without it, the "
+        "online lineage stopped (e.g. a non-finite loss) until a version of another "
+        "lineage is promoted."})
+    retry_at = fields.DateTime(metadata={
+        "description": "When the worker tries this model again (with `error`)."})
 
 
 class ModelSchema(ModelSpecSchema):
@@ -121,3 +127,11 @@ class ProblemSchema(Schema):
         keys=fields.String(), values=fields.List(fields.String()),
         metadata={"description": "Field path -> messages, for invalid input."},
     )
+    budget = fields.Integer(metadata={
+        "description": "`urn:keelson:problem:over-budget`: the budget units a prediction "
+        "request may cost (KEELSON_PREDICTION_BUDGET)."})
+    cost = fields.Integer(metadata={
+        "description": "`urn:keelson:problem:over-budget`: what the request would cost: "
+        "records x (rows evaluated per record + 8) x (parameters + 100 x units)."})
+    deadline_seconds = fields.Float(metadata={
+        "description": "`urn:keelson:problem:deadline-exceeded`: the deadline that passed."})

@@ -7,13 +7,16 @@ built once) and dumps its answer straight to JSON.
 
 from __future__ import annotations
 
+import time
 from typing import Any
 
 import orjson
 from flask import Response, current_app, request
 
+from service.usecases.prediction_limits import PredictionLimits
 from service.usecases.predictions import find_model, predict
 from service.web.auth import requires
+from service.web.disconnect import client_gone_probe
 from service.web.extensions import get_version_cache
 from service.web.schemas.predictions import (
     PredictionBatchSchema,
@@ -54,16 +57,30 @@ def _json(body: dict[str, Any]) -> Response:
     return Response(orjson.dumps(body), mimetype="application/json")
 
 
+def _limits(started: float) -> PredictionLimits:
+    """This request's budget, deadline (from ``started``) and client probe."""
+    config = current_app.config
+    return PredictionLimits(budget=config["KEELSON_PREDICTION_BUDGET"],
+                            deadline_seconds=config["KEELSON_PREDICTION_DEADLINE_SECONDS"],
+                            started=started, client_gone=client_gone_probe(request.environ))
+
+
 @blueprint.route("/<name>/predictions", methods=["GET"])
 @requires("predict")
 @blueprint.doc(parameters=[FEATURE_PARAMETERS, {"in": "query", "schema": PredictionQuerySchema}])
 @blueprint.response(200, PredictionSchema)
 def get_prediction(name: str) -> Response:
-    """Score one record given as query parameters, and explain the score."""
+    """Score one record given as query parameters, and explain the score.
+
+    Refused with 422 (`urn:keelson:problem:over-budget`, the figures in
+    `budget` and `cost`) when its cost (evaluations x network parameters) is
+    over the budget per request, and with 422
+    (`urn:keelson:problem:output-overflow`) when the output overflows."""
+    started = time.monotonic()
     cache = get_version_cache()
     entry = find_model(cache, name)
     features, options = prediction_readers(entry).read_query(request.args)
-    number, (answer,) = predict(cache, entry, (features,), options)
+    number, (answer,) = predict(cache, entry, (features,), options, _limits(started))
     return _json({"model": entry.name, "version": number, **answer})
 
 
@@ -73,11 +90,17 @@ def get_prediction(name: str) -> Response:
                parameters=[{"in": "query", "schema": PredictionQuerySchema}])
 @blueprint.response(200, PredictionBatchSchema)
 def post_predictions(name: str) -> Response:
-    """Score a batch of records, in input order, each with its explanation."""
+    """Score a batch of records, in input order, each with its explanation.
+
+    The request's cost is records x evaluations per record x network
+    parameters; over the budget it is refused with 422
+    (`urn:keelson:problem:over-budget`) before any work. Past its deadline it
+    ends with 503 (`urn:keelson:problem:deadline-exceeded`, `Retry-After`)."""
+    started = time.monotonic()
     cache = get_version_cache()
     entry = find_model(cache, name)
     body = read_json_body(request)
     limit = int(current_app.config["KEELSON_MAX_PREDICTION_BATCH"])
     rows, options = prediction_readers(entry).read_body(body, request.args, limit)
-    number, answers = predict(cache, entry, rows, options)
+    number, answers = predict(cache, entry, rows, options, _limits(started), batch=True)
     return _json({"model": entry.name, "version": number, "results": answers})
