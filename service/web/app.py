@@ -14,6 +14,7 @@ from werkzeug.routing import IntegerConverter
 
 from service.config import load_config
 from service.web import auth, observability, problems
+from service.web.body_limit import BoundedRequest
 from service.web.extensions import init_database
 from service.web.schemas.views import ProblemSchema
 from service.web.views import jobs, models, ops, predictions, records, versions
@@ -68,6 +69,7 @@ class Api(flask_smorest.Api):  # type: ignore[misc]  # flask-smorest ships no ty
 def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     """Build the API app; ``config`` overrides the environment (tests pass one)."""
     app = Flask("keelson", static_folder=None)
+    app.request_class = BoundedRequest
     app.url_map.converters["int"] = BoundedIntegerConverter
     settings = load_config(config)
     app.config.update(settings)
