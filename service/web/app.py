@@ -16,6 +16,7 @@ from service.config import load_config
 from service.web import auth, observability, problems
 from service.web.body_limit import BoundedRequest
 from service.web.extensions import init_database
+from service.web.headers import SECURITY_HEADERS
 from service.web.schemas.views import ProblemSchema
 from service.web.views import jobs, models, ops, predictions, records, versions
 
@@ -29,13 +30,6 @@ BLUEPRINTS = [
     jobs.blueprint,
 ]
 
-SECURITY_HEADERS = {
-    "X-Content-Type-Options": "nosniff",
-    "X-Frame-Options": "DENY",
-    "Referrer-Policy": "no-referrer",
-    "Content-Security-Policy": "default-src 'none'; frame-ancestors 'none'",
-    "Cache-Control": "no-store",
-}
 # The largest id or number a path can name: job ids and version numbers are
 # 32-bit INTEGER columns (PostgreSQL refuses a larger parameter: it was a 500).
 MAX_PATH_INTEGER = 2**31 - 1

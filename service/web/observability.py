@@ -71,6 +71,15 @@ def request_metrics() -> tuple[Counter, Histogram]:
     return requests, latency
 
 
+@functools.cache
+def transport_refusals() -> Counter:
+    """Requests the server answered itself, before the app: unparsable, too
+    large or too slow (service.web.transport), by status code."""
+    return Counter("keelson_http_refused_total",
+                   "Requests the server answered itself before the app (unparsable, too "
+                   "large or too slow), by status code.", ["status"])
+
+
 def init_app(app: Flask) -> None:
     """Bind metrics, request ids and the /metrics route to ``app``."""
     folder = multiprocess_dir()
@@ -140,10 +149,13 @@ def _request_id_of(environ: dict[str, Any]) -> str:
     """The id of the request of ``environ``, fixed on first use."""
     request_id: str | None = environ.get(_REQUEST_ID)
     if request_id is None:
-        given = environ.get("HTTP_X_REQUEST_ID", "")
-        request_id = environ[_REQUEST_ID] = (
-            given if given and _SANE_REQUEST_ID.match(given) else _new_request_id())
+        request_id = environ[_REQUEST_ID] = request_id_for(environ.get("HTTP_X_REQUEST_ID"))
     return request_id
+
+
+def request_id_for(given: str | None) -> str:
+    """The caller's id when it sent a sane one, else a new one."""
+    return given if given and _SANE_REQUEST_ID.match(given) else _new_request_id()
 
 
 def current_request_id() -> str | None:

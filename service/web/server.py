@@ -10,6 +10,10 @@ Every setting can be changed from the environment:
 | `KEELSON_TIMEOUT` | seconds a silent worker lives before it is restarted | 30 |
 | `KEELSON_GRACEFUL_TIMEOUT` | seconds in-flight requests get after SIGTERM | 20 |
 | `KEELSON_KEEPALIVE` | seconds an idle keep-alive connection stays open | 5 |
+| `KEELSON_HEADER_TIMEOUT` | seconds a client has to send a request head (408 after) | 10 |
+| `KEELSON_BODY_TIMEOUT` | seconds a client has to send a body after its head (408 after) | 60 |
+| `KEELSON_SEND_TIMEOUT` | seconds a client has to take an answer before it is cut off | 30 |
+| `KEELSON_MAX_HEAD_BYTES` | largest request head (431 beyond) | 32768 |
 | `KEELSON_REUSE_PORT` | `1`: a listening socket per worker (SO_REUSEPORT); `0`: one shared | `1` |
 | `KEELSON_LOG_LEVEL` | log level | `info` |
 | `KEELSON_ACCESS_LOG` | `1` (JSON access lines on stdout) or `0` | `1` |
@@ -51,6 +55,19 @@ def _env_flag(name: str, default: bool) -> bool:
     raise SystemExit(f"{name} must be 1 or 0, got {raw!r}")
 
 
+def _env_seconds(name: str, default: float) -> float:
+    raw = os.environ.get(name, "").strip()
+    if not raw:
+        return default
+    try:
+        value = float(raw)
+    except ValueError:
+        value = -1.0
+    if not value > 0:
+        raise SystemExit(f"{name} must be a positive number of seconds, got {raw!r}")
+    return value
+
+
 def _default_workers() -> int:
     return min(2 * (os.cpu_count() or 1) + 1, 8)
 
@@ -71,14 +88,26 @@ _prometheus_values.ValueClass = _prometheus_values.get_value_class()  # type: ig
 
 from gunicorn.glogging import Logger  # noqa: E402
 
+from service.config import load_config  # noqa: E402
 from service.web.observability import logging_config  # noqa: E402
+from service.web.transport.worker import BufferingWorker, TransportLimits  # noqa: E402
 
 bind = [f"{os.environ.get('KEELSON_HOST', '127.0.0.1')}:{_env_int('KEELSON_PORT', 8000)}"]
 workers = _env_int("KEELSON_WEB_WORKERS", _default_workers())
-# Threads let one worker keep connections alive and overlap database waits;
-# NumPy releases the GIL in its inner loops.
-worker_class = "gthread"
+# gthread, with every request read whole by the worker's event loop before a
+# thread handles it (docs/transport.md): slow or stalled clients hold no
+# thread. Threads let one worker overlap database waits; NumPy releases the
+# GIL in its inner loops.
+worker_class = BufferingWorker.configured(TransportLimits(
+    header_timeout=_env_seconds("KEELSON_HEADER_TIMEOUT", 10.0),
+    body_timeout=_env_seconds("KEELSON_BODY_TIMEOUT", 60.0),
+    send_timeout=_env_seconds("KEELSON_SEND_TIMEOUT", 30.0),
+    max_head_bytes=_env_int("KEELSON_MAX_HEAD_BYTES", 32 * 1024),
+    max_body_bytes=load_config()["KEELSON_MAX_BODY_BYTES"],
+))
 threads = _env_int("KEELSON_THREADS", 4)
+# Answers go through the worker's buffered writes, never os.sendfile.
+sendfile = False
 timeout = _env_int("KEELSON_TIMEOUT", 30)
 graceful_timeout = _env_int("KEELSON_GRACEFUL_TIMEOUT", 20)
 keepalive = _env_int("KEELSON_KEEPALIVE", 5)
