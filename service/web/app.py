@@ -13,7 +13,7 @@ from flask_smorest.spec.plugins import integerconverter2paramschema
 from werkzeug.routing import IntegerConverter
 
 from service.config import load_config
-from service.web import auth, observability, problems
+from service.web import auth, observability, paths, problems
 from service.web.body_limit import BoundedRequest
 from service.web.extensions import init_database
 from service.web.headers import SECURITY_HEADERS
@@ -64,6 +64,7 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     """Build the API app; ``config`` overrides the environment (tests pass one)."""
     app = Flask("keelson", static_folder=None)
     app.request_class = BoundedRequest
+    paths.init_app(app)
     app.url_map.converters["int"] = BoundedIntegerConverter
     settings = load_config(config)
     app.config.update(settings)
