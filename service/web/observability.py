@@ -44,6 +44,14 @@ REQUEST_ID_HEADER = "X-Request-Id"
 # newlines or markup into logs and headers.
 _SANE_REQUEST_ID = re.compile(r"^[A-Za-z0-9._:-]{1,128}$")
 _UNMATCHED_ROUTE = "<unmatched>"
+# Every label value is from a closed set, whatever clients send: a method
+# outside the standard ones (RFC 9110 section 9, and PATCH from RFC 5789) is
+# counted as OTHER, a path as its route template or <unmatched>, a status as
+# the code the app chose. One label value per random method made /metrics
+# grow without bound.
+KNOWN_METHODS = frozenset(
+    ("GET", "HEAD", "POST", "PUT", "DELETE", "CONNECT", "OPTIONS", "TRACE", "PATCH"))
+OTHER_METHOD = "OTHER"
 _STARTED = "keelson.request_started"
 _REQUEST_ID = "keelson.request_id"
 _log = logging.getLogger("keelson.observability")
@@ -99,6 +107,8 @@ def init_app(app: Flask) -> None:
         rule = current.url_rule
         route = rule.rule if rule is not None else _UNMATCHED_ROUTE
         method, status = current.method, response.status_code
+        if method not in KNOWN_METHODS:
+            method = OTHER_METHOD
         try:
             counter = counters.get((method, route, status))
             if counter is None:
