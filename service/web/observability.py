@@ -38,6 +38,7 @@ from prometheus_client import (
 from pythonjsonlogger.json import JsonFormatter
 
 from service.web.auth import public
+from service.web.redaction import redacted_query
 
 REQUEST_ID_HEADER = "X-Request-Id"
 # A caller's id is echoed only when it is short and plain, so it cannot smuggle
@@ -214,26 +215,20 @@ class RequestIdFilter(logging.Filter):
         return True
 
 
-# RFC 6750 section 2.3 lets clients put a bearer token in the query string as
-# access_token; Keelson does not accept it there, but a client that tries must
-# not leave its token in the access log.
-_QUERY_SECRET = re.compile(r"(?i)((?:^|[?&])(?:access_)?token=)[^&\s]*")
-
-
-def _redacted(text: Any) -> Any:
-    return _QUERY_SECRET.sub(r"\1[redacted]", text) if isinstance(text, str) else text
-
-
 class AccessFields(logging.Filter):
     """Turns gunicorn's access-log atoms into JSON fields (method, path, status,
-    duration, request id) instead of one pre-formatted string; tokens sent in
+    duration, request id) instead of one pre-formatted string; secrets sent in
     the query string are redacted from the line and the fields."""
 
     def filter(self, record: logging.LogRecord) -> bool:
         atoms = record.args if isinstance(record.args, Mapping) else {}
-        if atoms and "token=" in str(atoms.get("q", "")).lower():
-            atoms = {**atoms, "q": _redacted(atoms.get("q")), "r": _redacted(atoms.get("r"))}
-            record.args = atoms
+        query = atoms.get("q")
+        if query and isinstance(query, str):
+            safe = redacted_query(query)
+            if safe != query:
+                line = str(atoms.get("r", ""))
+                atoms = {**atoms, "q": safe, "r": line.replace(f"?{query}", f"?{safe}", 1)}
+                record.args = atoms
         if atoms:
             record.remote_addr = atoms.get("h")
             record.method = atoms.get("m")
