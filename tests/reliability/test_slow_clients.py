@@ -20,6 +20,7 @@ from __future__ import annotations
 import contextlib
 import json
 import os
+import re
 import socket
 from collections.abc import Callable, Iterator
 from pathlib import Path
@@ -32,6 +33,7 @@ from tests.reliability.probes import (
     RawHttp,
     address,
     answered,
+    ask,
     assert_usual_answer,
     predicting_server,
     request_bytes,
@@ -176,3 +178,5 @@ def test_a_request_that_does_not_arrive_in_time_is_answered_408(
         assert silent.closed_by_server()  # nothing was asked, nothing is answered
         assert silent.pending == b""
         silent.close()
+        refused = ask(base, "GET", "/metrics").body.decode()
+    assert re.search(r'^keelson_http_refused_total\{status="408"\} 3\.0$', refused, re.MULTILINE)
