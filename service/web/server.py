@@ -90,7 +90,8 @@ from gunicorn.glogging import Logger  # noqa: E402
 
 from service.config import load_config  # noqa: E402
 from service.web.observability import logging_config  # noqa: E402
-from service.web.transport.worker import BufferingWorker, TransportLimits  # noqa: E402
+from service.web.transport.limits import TransportLimits  # noqa: E402
+from service.web.transport.worker import BufferingWorker  # noqa: E402
 
 bind = [f"{os.environ.get('KEELSON_HOST', '127.0.0.1')}:{_env_int('KEELSON_PORT', 8000)}"]
 workers = _env_int("KEELSON_WEB_WORKERS", _default_workers())

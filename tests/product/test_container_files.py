@@ -19,7 +19,7 @@ import yaml
 
 from service.config import DEFAULTS
 from service.web.headers import SECURITY_HEADERS
-from service.web.transport.worker import TransportLimits
+from service.web.transport.limits import TransportLimits
 
 DOCKER = Path(__file__).resolve().parents[2] / "docker"
 LIMITS = {"KEELSON_MAX_BODY_BYTES": "client_max_body_size",

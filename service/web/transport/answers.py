@@ -11,11 +11,15 @@ the request (which may hold a token) nor a parser's internals.
 from __future__ import annotations
 
 import ssl
+from datetime import timedelta
 from http import HTTPStatus
+from typing import Any
 
 from gunicorn.http import errors as http_errors
+from gunicorn.http.wsgi import Response, default_environ
 
 from service.web.headers import SECURITY_HEADERS
+from service.web.observability import request_id_for, transport_refusals
 
 # gunicorn's parse errors with a status of their own; any other parse error is 400.
 _STATUS_OF: tuple[tuple[type[Exception], int], ...] = (
@@ -65,3 +69,43 @@ def problem_answer(status: int, detail: str, request_id: str) -> bytes:
         f"X-Request-Id: {request_id}",
     ]
     return ("\r\n".join(lines) + "\r\n\r\n").encode("latin-1") + body
+
+
+def answer_parse_error(log: Any, cfg: Any, req: Any, client: Any, addr: Any,
+                       error: BaseException) -> None:
+    """gunicorn's ``Worker.handle_error``, answering with problem details: the
+    status gunicorn would give, a fixed detail, and the log line without the
+    request (its line may hold a token)."""
+    status = status_of(error)
+    if status >= 500:
+        log.error("error answering a request for %s", getattr(req, "path", "?"),
+                  exc_info=error)
+    else:
+        log.warning("refused a request from %s: %s (%s)", client_address(addr), status,
+                    type(error).__name__)
+    transport_refusals().labels(str(status)).inc()
+    request_id = request_id_for(_header(req, "X-REQUEST-ID"))
+    answer = problem_answer(status, DETAILS[status], request_id)
+    if req is not None:
+        environ = default_environ(req, client, cfg)
+        environ["REMOTE_ADDR"] = client_address(addr)
+        resp = Response(req, client, cfg)
+        resp.status = f"{status} {HTTPStatus(status).phrase}"
+        resp.headers = [("X-Request-Id", request_id)]
+        resp.response_length = len(answer)
+        log.access(resp, req, environ, timedelta(0))
+    try:
+        client.sendall(answer)
+    except OSError:
+        log.debug("could not send the error answer")
+
+
+def client_address(client: Any) -> str:
+    return str(client[0]) if isinstance(client, tuple) and client else ""
+
+
+def _header(req: Any, name: str) -> str | None:
+    for key, value in getattr(req, "headers", None) or ():
+        if key == name:
+            return str(value)
+    return None

@@ -22,18 +22,20 @@ import socket
 import time
 from collections import deque
 from concurrent.futures import Future
-from dataclasses import dataclass
-from datetime import timedelta
-from http import HTTPStatus
 from typing import Any
 
-from gunicorn.http.wsgi import Response, default_environ
 from gunicorn.workers.gthread import STOP_KEEPALIVE_LINGER, ThreadWorker
 
 from service.web.observability import request_id_for, transport_refusals
-from service.web.transport.answers import DETAILS, problem_answer, status_of
+from service.web.transport.answers import (
+    DETAILS,
+    answer_parse_error,
+    client_address,
+    problem_answer,
+)
 from service.web.transport.connection import Connection, Stage
 from service.web.transport.framing import Progress, Refusal, RequestFraming
+from service.web.transport.limits import TransportLimits
 
 CONTINUE = b"HTTP/1.1 100 Continue\r\n\r\n"
 # After an answer that closes the connection, what the client still sends is
@@ -43,23 +45,6 @@ LINGER_SECONDS = 5.0
 EXPIRY_EVERY = 0.25  # how often deadlines are checked, seconds
 HEAD_READ = 64 * 1024
 BODY_READ = 1024 * 1024
-
-
-@dataclass(frozen=True)
-class TransportLimits:
-    """How long and how much a client may take (service.web.server sets them)."""
-
-    header_timeout: float = 10.0  # from a request's first byte (or the accept) to its blank line
-    body_timeout: float = 60.0  # from the end of the head to the end of the body
-    send_timeout: float = 30.0  # for the client to take an answer the kernel could not hold
-    max_head_bytes: int = 32 * 1024
-    max_body_bytes: int = 16 * 1024 * 1024
-
-    @property
-    def buffer_budget(self) -> int:
-        """Body bytes a worker holds for requests still arriving; beyond it,
-        bodies wait in the kernel (TCP flow control) until requests leave."""
-        return 4 * self.max_body_bytes
 
 
 class BufferingWorker(ThreadWorker):  # type: ignore[misc]  # gunicorn ships no types
@@ -230,8 +215,8 @@ class BufferingWorker(ThreadWorker):  # type: ignore[misc]  # gunicorn ships no 
 
     def refuse(self, conn: Connection, status: int, detail: str) -> None:
         """Answer the request being read with ``status`` and close the connection."""
-        self.log.warning("refused a request from %s: %s (%s)", _address(conn.client), status,
-                         conn.stage.value)
+        self.log.warning("refused a request from %s: %s (%s)", client_address(conn.client),
+                         status, conn.stage.value)
         transport_refusals().labels(str(status)).inc()
         self.release(conn)
         try:
@@ -316,37 +301,4 @@ class BufferingWorker(ThreadWorker):  # type: ignore[misc]  # gunicorn ships no 
     # --- gunicorn's own error answers -------------------------------------------
 
     def handle_error(self, req: Any, client: Any, addr: Any, exc: BaseException) -> None:
-        """Problem details instead of gunicorn's HTML page (service.web.transport.answers)."""
-        status = status_of(exc)
-        if status >= 500:
-            self.log.error("error answering a request for %s", getattr(req, "path", "?"),
-                           exc_info=exc)
-        else:
-            self.log.warning("refused a request from %s: %s (%s)", _address(addr), status,
-                             type(exc).__name__)
-        transport_refusals().labels(str(status)).inc()
-        request_id = request_id_for(_header(req, "X-REQUEST-ID"))
-        answer = problem_answer(status, DETAILS[status], request_id)
-        if req is not None:
-            environ = default_environ(req, client, self.cfg)
-            environ["REMOTE_ADDR"] = _address(addr)
-            resp = Response(req, client, self.cfg)
-            resp.status = f"{status} {HTTPStatus(status).phrase}"
-            resp.headers = [("X-Request-Id", request_id)]
-            resp.response_length = len(answer)
-            self.log.access(resp, req, environ, timedelta(0))
-        try:
-            client.sendall(answer)
-        except OSError:
-            self.log.debug("could not send the error answer")
-
-
-def _address(client: Any) -> str:
-    return str(client[0]) if isinstance(client, tuple) and client else ""
-
-
-def _header(req: Any, name: str) -> str | None:
-    for key, value in getattr(req, "headers", None) or ():
-        if key == name:
-            return str(value)
-    return None
+        answer_parse_error(self.log, self.cfg, req, client, addr, exc)
