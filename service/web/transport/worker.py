@@ -63,6 +63,11 @@ class BufferingWorker(ThreadWorker):  # type: ignore[misc]  # gunicorn ships no 
                                "HTTP/2 in a proxy in front of it (docs/transport.md)")
 
     def init_process(self) -> None:
+        # gunicorn's settings, read once: each read is a lookup through its
+        # Config object, and these are needed for every request.
+        line = self.cfg.limit_request_line
+        self.max_line = line if 0 < line <= 8190 else 8190
+        self.keepalive_seconds = float(self.cfg.keepalive)
         self.owned: set[Connection] = set()  # connections the event loop holds (not a thread)
         self.paused: deque[Connection] = deque()
         self.buffered = 0  # bytes in the inboxes of owned connections
@@ -87,12 +92,12 @@ class BufferingWorker(ThreadWorker):  # type: ignore[misc]  # gunicorn ships no 
     def read_next(self, conn: Connection) -> None:
         """Wait for the connection's next request (its first, or after an answer)."""
         limits = self.limits
-        conn.next_request(RequestFraming(limits.max_head_bytes, self.max_line(),
+        conn.next_request(RequestFraming(limits.max_head_bytes, self.max_line,
                                          limits.max_body_bytes))
         self.owned.add(conn)
         now = time.monotonic()
         if conn.served:
-            conn.deadline = now + self.cfg.keepalive
+            conn.deadline = now + self.keepalive_seconds
             if not self.alive:
                 conn.deadline = min(conn.deadline, now + STOP_KEEPALIVE_LINGER)
         if conn.inbox:  # the client sent it already, behind the last one
@@ -103,10 +108,6 @@ class BufferingWorker(ThreadWorker):  # type: ignore[misc]  # gunicorn ships no 
         else:
             conn.stage = Stage.IDLE
             self.watch(conn, selectors.EVENT_READ)
-
-    def max_line(self) -> int:
-        line: int = self.cfg.limit_request_line
-        return line if 0 < line <= 8190 else 8190
 
     def on_event(self, conn: Connection, _fileobj: Any) -> None:
         if conn.stage is Stage.WRITING:
