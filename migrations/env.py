@@ -3,10 +3,9 @@ target metadata from the store, never from alembic.ini."""
 
 from __future__ import annotations
 
-import os
-
 from alembic import context
 
+from service.config import read_setting
 from service.store.database import make_engine
 from service.store.tables import Base
 
@@ -16,7 +15,7 @@ target_metadata = Base.metadata
 
 def database_url() -> str:
     url = config.attributes.get("database_url")
-    return url or os.environ.get("KEELSON_DATABASE_URL", "sqlite:///keelson.db")
+    return url or str(read_setting("KEELSON_DATABASE_URL"))
 
 
 def run_migrations_offline() -> None:

@@ -1,11 +1,12 @@
 """Reading a model's records in sequence order, a chunk per query.
 
-Why reading "after the cursor" is safe (invariant 1): ingestion locks the
-model's row ``FOR UPDATE`` before it inserts, and takes its sequence numbers
-only after that, so the transactions that add one model's records run one at
-a time and commit in sequence order. When a reader sees a record of a model,
-every record of that model with a lower number has already committed; a
-chunk read after the cursor can never be missing one that commits later.
+Why reading "after the cursor" is safe (docs/architecture.md, invariant 1):
+ingestion locks the model's row (``FOR NO KEY UPDATE``) before it inserts,
+and takes its sequence numbers only after that, so the transactions that add
+one model's records run one at a time and commit in sequence order. When a
+reader sees a record of a model, every record of that model with a lower
+number has already committed; a chunk read after the cursor can never be
+missing one that commits later.
 (Other models' transactions interleave freely: the cursor is per model.)
 """
 

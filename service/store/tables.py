@@ -82,7 +82,7 @@ class ModelRow(Base):
 
     Ingestion locks this row (``FOR NO KEY UPDATE``) for the length of its
     transaction, so the records of one model commit in sequence order
-    (invariant 1); the counters are kept here under that same lock instead of
+    (docs/architecture.md, invariant 1); the counters are kept here under that same lock instead of
     counted per request.
     """
 

@@ -300,6 +300,13 @@ def bench() -> None:
     """Measure throughput (not tests; figures for the README)."""
 
 
+def _bench_postgres_url() -> str | None:
+    from service.config import read_setting
+
+    url: str | None = read_setting("KEELSON_BENCH_POSTGRES_URL")
+    return url
+
+
 def _emit(result: dict[str, Any], as_json: bool) -> None:
     if as_json:
         click.echo(json.dumps(result, indent=2, sort_keys=False))
@@ -336,8 +343,9 @@ def bench_engine(as_json: bool) -> None:
 @click.option("--duration", type=click.IntRange(1, 600), default=10, show_default=True,
               help="Seconds per measured route.")
 @click.option("--connections", type=click.IntRange(1, 1024), default=16, show_default=True)
-@click.option("--postgres-url", default=None, envvar="KEELSON_BENCH_POSTGRES_URL",
-              help="Also measure on this PostgreSQL server (a scratch database is made).")
+@click.option("--postgres-url", default=_bench_postgres_url,
+              help="Also measure on this PostgreSQL server (a scratch database is made) "
+                   "[env KEELSON_BENCH_POSTGRES_URL].")
 def bench_http(as_json: bool, duration: int, connections: int, postgres_url: str | None) -> None:
     """Predictions and ingest over HTTP against a real gunicorn on loopback (needs wrk)."""
     from service.tools.bench.http import run_http_bench
@@ -350,8 +358,9 @@ def bench_http(as_json: bool, duration: int, connections: int, postgres_url: str
 @click.option("--json", "as_json", is_flag=True, help="One JSON object.")
 @click.option("--records", type=click.IntRange(min=1000), default=100_000, show_default=True,
               help="Records stored before the worker starts.")
-@click.option("--postgres-url", default=None, envvar="KEELSON_BENCH_POSTGRES_URL",
-              help="Also measure on this PostgreSQL server (a scratch database is made).")
+@click.option("--postgres-url", default=_bench_postgres_url,
+              help="Also measure on this PostgreSQL server (a scratch database is made) "
+                   "[env KEELSON_BENCH_POSTGRES_URL].")
 @click.option("--database-url", default=None,
               help="Measure on this empty scratch database only (instead of SQLite + "
                    "PostgreSQL).")

@@ -19,6 +19,7 @@ import tempfile
 import time
 from collections.abc import Mapping
 
+from service.config import read_setting
 from service.process import block_stop_signals, stop_on_signals
 
 # gunicorn's graceful timeout plus a margin; after that a child is killed.
@@ -41,7 +42,8 @@ def server_environment(
 
 
 def listen_address(env: Mapping[str, str]) -> str:
-    return f"http://{env.get('KEELSON_HOST', '127.0.0.1')}:{env.get('KEELSON_PORT', '8000')}"
+    host, port = read_setting("KEELSON_HOST", env), read_setting("KEELSON_PORT", env)
+    return f"http://{host}:{port}"
 
 
 def run_server(
@@ -51,7 +53,7 @@ def run_server(
     """Run until a signal or a child's death; return the exit status."""
     env = server_environment(host, port, web_workers)
     own_metrics_dir = None
-    if not env.get("PROMETHEUS_MULTIPROC_DIR"):
+    if read_setting("PROMETHEUS_MULTIPROC_DIR", env) is None:
         own_metrics_dir = tempfile.mkdtemp(prefix="keelson-metrics-")
         env["PROMETHEUS_MULTIPROC_DIR"] = own_metrics_dir
     children: dict[str, subprocess.Popen[bytes]] = {}

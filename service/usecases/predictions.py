@@ -1,7 +1,7 @@
 """Use case: score validated feature rows with a version and explain each score.
 
 Read-only. The version cache picks the network (no query when warm); this turns
-its numbers into the bodies of API.md ("Predictions"), and the cache's lookups
+its numbers into the bodies of docs/http-api.md ("Predictions"), and the cache's lookups
 into the errors the API answers with.
 """
 

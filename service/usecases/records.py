@@ -5,7 +5,7 @@ then one short write transaction that locks the model row, drops keys already
 stored, hands out sequence numbers, inserts the rest in one executemany and
 bumps the model's counters. Taking the model lock *before* sequence numbers
 are handed out means one model's records commit in sequence order
-(ARCHITECTURE.md invariant 1): the trainer can never see seq n+1 committed
+(docs/architecture.md, invariant 1): the trainer can never see seq n+1 committed
 while seq n may still commit.
 """
 
@@ -46,7 +46,7 @@ def ingest_records(
     *,
     max_records: int | None = None,
 ) -> IngestResult:
-    """Store ``records`` (the JSON shape of API.md) for ``model_name``.
+    """Store ``records`` (the JSON shape of docs/http-api.md, "Records") for ``model_name``.
 
     ``sessions`` is a *write* session factory, or a session the caller made
     from one; this function commits (or rolls back and re-raises) either way.

@@ -1,6 +1,6 @@
 """Per-process cache of loaded versions and of each model's active pointer.
 
-Versions are immutable (invariant 3), so a network loaded from a version's
+Versions are immutable (docs/architecture.md, invariant 3), so a network loaded from a version's
 snapshot is kept by version id for as long as the bounded LRU holds it. The
 only thing that moves is a model's active-version pointer; it is re-read when
 the copy this process holds is older than ``max_age`` seconds, so a promotion

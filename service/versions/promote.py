@@ -1,13 +1,14 @@
 """How a version becomes the one that serves: a pointer move, under row locks.
 
-Promotion moves a pointer (invariant 3): versions never change apart from
-their ``status`` and ``promoted_at``. ``promote`` is the one way a version
-becomes active, used by the worker's ``auto`` policy and by the admin's promote
-endpoint (which is also the rollback path).
+Promotion moves a pointer (docs/architecture.md, invariant 3): versions never
+change apart from their ``status`` and ``promoted_at``. ``promote`` is the one
+way a version becomes active, used by the worker's ``auto`` policy and by the
+admin's promote endpoint (which is also the rollback path).
 
-Lock order, everywhere: ``models`` row first, then ``trainers`` row. Ingest
-holds the model row for its transaction and the worker's checkpoint takes the
-trainer row, so keeping one order means two of them can never deadlock.
+Lock order, everywhere (docs/architecture.md, "Locking order"): ``models`` row
+first, then ``trainers`` row. Ingest holds the model row for its transaction
+and the worker's checkpoint takes the trainer row, so keeping one order means
+two of them can never deadlock.
 """
 
 from __future__ import annotations

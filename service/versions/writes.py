@@ -2,7 +2,7 @@
 
 A version row carries the snapshot (weights, optimizer and encoder state),
 cursor, records seen and metrics; the trainer row's cursor and head move in
-the same transaction (invariant 2), so a worker that dies at any instant
+the same transaction (docs/architecture.md, invariant 2), so a worker that dies at any instant
 leaves either the old head or the new one, never a half-written state.
 
 Every write first locks the trainer row and checks that this worker still
@@ -138,7 +138,7 @@ def stop_lineage(
     error: str,
     check_head: bool = True,
 ) -> None:
-    """Record why the lineage stopped (invariant 6); workers skip it until a
+    """Record why the lineage stopped (docs/architecture.md, invariant 6); workers skip it until a
     version of another lineage is promoted. The active version is untouched."""
     with transaction(sessions) as session:
         trainer = lock_trainer(session, model_id)

@@ -37,6 +37,7 @@ from prometheus_client import (
 )
 from pythonjsonlogger.json import JsonFormatter
 
+from service.config import read_setting
 from service.web.auth import public
 from service.web.redaction import redacted_query
 
@@ -200,7 +201,8 @@ def multiprocess_dir() -> str | None:
     environment; follow that choice rather than the environment of today."""
     if values.ValueClass is values.MutexValue:
         return None
-    return os.environ.get("PROMETHEUS_MULTIPROC_DIR")
+    folder: str | None = read_setting("PROMETHEUS_MULTIPROC_DIR")
+    return folder
 
 
 # ---------------------------------------------------------------- logging
@@ -309,7 +311,7 @@ def configure_logging(level: str | None = None) -> None:
     """JSON logs on stderr for a process started by an entry point (idempotent)."""
     import logging.config
 
-    chosen = (level or os.environ.get("KEELSON_LOG_LEVEL") or "INFO").upper()
+    chosen = (level or read_setting("KEELSON_LOG_LEVEL")).upper()
     root = logging.getLogger()
     if any(getattr(h, "_keelson_json", False) for h in root.handlers):
         root.setLevel(chosen)

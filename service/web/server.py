@@ -1,25 +1,11 @@
 """gunicorn settings for the Keelson API (``gunicorn -c python:service.web.server``).
 
-Every setting can be changed from the environment:
-
-| variable | setting | default |
-|---|---|---|
-| `KEELSON_HOST` / `KEELSON_PORT` | listen address | `127.0.0.1` / `8000` |
-| `KEELSON_WEB_WORKERS` | worker processes | 2 x CPUs + 1, at most 8 |
-| `KEELSON_THREADS` | threads per worker (gthread) | 4 |
-| `KEELSON_TIMEOUT` | seconds a silent worker lives before it is restarted | 30 |
-| `KEELSON_GRACEFUL_TIMEOUT` | seconds in-flight requests get after SIGTERM | 20 |
-| `KEELSON_KEEPALIVE` | seconds an idle keep-alive connection stays open | 5 |
-| `KEELSON_HEADER_TIMEOUT` | seconds a client has to send a request head (408 after) | 10 |
-| `KEELSON_BODY_TIMEOUT` | seconds a client has to send a body after its head (408 after) | 60 |
-| `KEELSON_SEND_TIMEOUT` | seconds a client has to take an answer before it is cut off | 30 |
-| `KEELSON_MAX_HEAD_BYTES` | largest request head (431 beyond) | 32768 |
-| `KEELSON_REUSE_PORT` | `1`: a listening socket per worker (SO_REUSEPORT); `0`: one shared | `1` |
-| `KEELSON_LOG_LEVEL` | log level | `info` |
-| `KEELSON_ACCESS_LOG` | `1` (JSON access lines on stdout) or `0` | `1` |
-| `PROMETHEUS_MULTIPROC_DIR` | where workers share metric samples | a fresh temporary folder |
-
-Command-line flags (and ``GUNICORN_CMD_ARGS``) still win over these.
+Every value comes from a ``KEELSON_*`` setting (and ``PROMETHEUS_MULTIPROC_DIR``,
+``FORWARDED_ALLOW_IPS``), read through service/config.py: the one registry of
+settings, whose table with meanings and defaults is the README's
+"Configuration". A value that cannot be used stops the server with one line
+naming the setting. Command-line flags (and ``GUNICORN_CMD_ARGS``) still win
+over these.
 """
 
 from __future__ import annotations
@@ -33,50 +19,21 @@ import tempfile
 from pathlib import Path
 from typing import Any
 
+from service.config import ConfigError, read_setting
 
-def _env_int(name: str, default: int) -> int:
-    raw = os.environ.get(name, "").strip()
-    if not raw:
-        return default
+
+def _setting(name: str) -> Any:
     try:
-        return int(raw)
-    except ValueError as error:
-        raise SystemExit(f"{name} must be a whole number, got {raw!r}") from error
-
-
-def _env_flag(name: str, default: bool) -> bool:
-    raw = os.environ.get(name, "").strip().lower()
-    if not raw:
-        return default
-    if raw in ("1", "true", "yes"):
-        return True
-    if raw in ("0", "false", "no"):
-        return False
-    raise SystemExit(f"{name} must be 1 or 0, got {raw!r}")
-
-
-def _env_seconds(name: str, default: float) -> float:
-    raw = os.environ.get(name, "").strip()
-    if not raw:
-        return default
-    try:
-        value = float(raw)
-    except ValueError:
-        value = -1.0
-    if not value > 0:
-        raise SystemExit(f"{name} must be a positive number of seconds, got {raw!r}")
-    return value
-
-
-def _default_workers() -> int:
-    return min(2 * (os.cpu_count() or 1) + 1, 8)
+        return read_setting(name)
+    except ConfigError as error:
+        raise SystemExit(str(error)) from None
 
 
 # Metrics of all workers meet in one folder (prometheus_client multiprocess
 # mode); it must be in the environment before any worker imports the client.
-if not os.environ.get("PROMETHEUS_MULTIPROC_DIR"):
+if _setting("PROMETHEUS_MULTIPROC_DIR") is None:
     os.environ["PROMETHEUS_MULTIPROC_DIR"] = tempfile.mkdtemp(prefix="keelson-metrics-")
-_METRICS_DIR = Path(os.environ["PROMETHEUS_MULTIPROC_DIR"])
+_METRICS_DIR = Path(_setting("PROMETHEUS_MULTIPROC_DIR"))
 
 # prometheus_client chooses its value store from the environment once, at
 # import; importing this module's package may already have imported it. Choose
@@ -88,30 +45,23 @@ _prometheus_values.ValueClass = _prometheus_values.get_value_class()  # type: ig
 
 from gunicorn.glogging import Logger  # noqa: E402
 
-from service.config import load_config  # noqa: E402
 from service.web.observability import logging_config  # noqa: E402
 from service.web.transport.limits import TransportLimits  # noqa: E402
 from service.web.transport.worker import BufferingWorker  # noqa: E402
 
-bind = [f"{os.environ.get('KEELSON_HOST', '127.0.0.1')}:{_env_int('KEELSON_PORT', 8000)}"]
-workers = _env_int("KEELSON_WEB_WORKERS", _default_workers())
+bind = [f"{_setting('KEELSON_HOST')}:{_setting('KEELSON_PORT')}"]
+workers = _setting("KEELSON_WEB_WORKERS")
 # gthread, with every request read whole by the worker's event loop before a
 # thread handles it (docs/transport.md): slow or stalled clients hold no
 # thread. Threads let one worker overlap database waits; NumPy releases the
 # GIL in its inner loops.
-worker_class = BufferingWorker.configured(TransportLimits(
-    header_timeout=_env_seconds("KEELSON_HEADER_TIMEOUT", 10.0),
-    body_timeout=_env_seconds("KEELSON_BODY_TIMEOUT", 60.0),
-    send_timeout=_env_seconds("KEELSON_SEND_TIMEOUT", 30.0),
-    max_head_bytes=_env_int("KEELSON_MAX_HEAD_BYTES", 32 * 1024),
-    max_body_bytes=load_config()["KEELSON_MAX_BODY_BYTES"],
-))
-threads = _env_int("KEELSON_THREADS", 4)
+worker_class = BufferingWorker.configured(TransportLimits.from_settings(_setting))
+threads = _setting("KEELSON_THREADS")
 # Answers go through the worker's buffered writes, never os.sendfile.
 sendfile = False
-timeout = _env_int("KEELSON_TIMEOUT", 30)
-graceful_timeout = _env_int("KEELSON_GRACEFUL_TIMEOUT", 20)
-keepalive = _env_int("KEELSON_KEEPALIVE", 5)
+timeout = _setting("KEELSON_TIMEOUT")
+graceful_timeout = _setting("KEELSON_GRACEFUL_TIMEOUT")
+keepalive = _setting("KEELSON_KEEPALIVE")
 # One listening socket per worker (SO_REUSEPORT): the kernel spreads new
 # connections over the workers. With one shared socket the workers race to
 # accept, and the winner keeps the keep-alive connections it took: 16
@@ -120,7 +70,7 @@ keepalive = _env_int("KEELSON_KEEPALIVE", 5)
 # other idles. Cost: connections still queued on a worker that dies are
 # reset, not taken by its siblings. on_starting refuses an address another
 # server listens on, which SO_REUSEPORT would otherwise share silently.
-reuse_port = _env_flag("KEELSON_REUSE_PORT", True)
+reuse_port = _setting("KEELSON_REUSE_PORT")
 # Each worker imports the app itself: no database connection or file handle is
 # shared across a fork.
 preload_app = False
@@ -130,8 +80,8 @@ proc_name = "keelson-api"
 # (tests, benchmarks) would fight over it, and Keelson does not use it.
 control_socket_disable = True
 
-loglevel = os.environ.get("KEELSON_LOG_LEVEL", "info").lower()
-_access = os.environ.get("KEELSON_ACCESS_LOG", "1").strip().lower() not in ("0", "false", "no")
+loglevel = _setting("KEELSON_LOG_LEVEL")
+_access = _setting("KEELSON_ACCESS_LOG")
 logconfig_dict = logging_config(loglevel.upper())
 if not _access:
     logconfig_dict["loggers"]["gunicorn.access"]["level"] = "WARNING"
@@ -157,7 +107,7 @@ logger_class = AccessLevelLogger
 # format is only the plain "message" field beside them.
 access_log_format = '%(h)s "%(r)s" %(s)s %(b)s %(M)sms'
 # Forwarded headers are trusted only from the local proxy by default.
-forwarded_allow_ips = os.environ.get("FORWARDED_ALLOW_IPS", "127.0.0.1")
+forwarded_allow_ips = _setting("FORWARDED_ALLOW_IPS")
 
 
 # prometheus_client's sample files: <kind>_<pid>.db. Only these are removed, so

@@ -142,7 +142,8 @@ def _load_train(reads: sessionmaker[Session], learner: Learner, model_id: int, c
         filled += len(chunk)
     if X is None or Y is None or filled != n_train:
         # Records at or before the cursor are all committed and never deleted
-        # while a job runs (invariant 1), so this means the model was removed.
+        # while a job runs (docs/architecture.md, invariant 1), so this means
+        # the model was removed.
         raise RuntimeError(f"expected {n_train} train records, read {filled}")
     return X, Y
 

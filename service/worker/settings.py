@@ -1,8 +1,9 @@
-"""The worker's tunables, read from the service configuration mapping.
+"""The worker's tunables, read through the one registry of settings.
 
-Keys follow service/config.py's convention (the environment variable names).
-A key missing from the mapping is read from the environment (service/config.py
-does not list the worker's keys), then takes the default here.
+Each field is a ``KEELSON_WORKER_*`` setting of service/config.py (its
+default, parser and meaning are there, and in the README's table). A value is
+taken from the configuration mapping the worker is given, else from the
+environment, else the default.
 """
 
 from __future__ import annotations
@@ -12,29 +13,43 @@ from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import Any
 
+from service.config import setting
+
+_KEYS = {
+    "lease_seconds": "KEELSON_WORKER_LEASE_SECONDS",
+    "idle_seconds": "KEELSON_WORKER_IDLE_SECONDS",
+    "poll_seconds": "KEELSON_WORKER_POLL_SECONDS",
+    "claim_seconds": "KEELSON_WORKER_CLAIM_SECONDS",
+    "chunk_records": "KEELSON_WORKER_CHUNK_RECORDS",
+    "holdout_window": "KEELSON_WORKER_HOLDOUT_WINDOW",
+    "max_models": "KEELSON_WORKER_MAX_MODELS",
+    "progress_seconds": "KEELSON_WORKER_PROGRESS_SECONDS",
+}
+
+
+def _default(field: str) -> Any:
+    return setting(_KEYS[field]).default
+
 
 @dataclass(frozen=True)
 class WorkerSettings:
     database_url: str
     # A lease outlives three missed heartbeats; a dead worker's models pass on
     # after at most this long.
-    lease_seconds: float = 30.0
+    lease_seconds: float = _default("lease_seconds")
     # How long the stream must be quiet before a version is written for what
     # was applied since the last one (and before a warm-up starts short).
-    idle_seconds: float = 3.0
-    # Sleep between polls when there is nothing to do.
-    poll_seconds: float = 0.25
-    # How often to look for models free to lease (a write transaction each).
-    claim_seconds: float = 1.0
-    # Records read (and encoded) per query: one query per chunk, not per record.
-    chunk_records: int = 1000
+    idle_seconds: float = _default("idle_seconds")
+    poll_seconds: float = _default("poll_seconds")
+    # Each claim is a write transaction: not on every poll.
+    claim_seconds: float = _default("claim_seconds")
+    # One query per chunk, not per record.
+    chunk_records: int = _default("chunk_records")
     # Promotion compares versions on at most this many of the latest holdout
-    # records at or before the version's cursor (a bounded, documented window).
-    holdout_window: int = 10_000
-    # Models one worker leases at most (None: as many as are free).
-    max_models: int | None = None
-    # Seconds between progress writes of a running retrain job.
-    progress_seconds: float = 1.0
+    # records at or before the version's cursor (a bounded window).
+    holdout_window: int = _default("holdout_window")
+    max_models: int | None = _default("max_models")
+    progress_seconds: float = _default("progress_seconds")
 
     @property
     def heartbeat_seconds(self) -> float:
@@ -49,32 +64,9 @@ class WorkerSettings:
             raise ValueError("the worker needs KEELSON_DATABASE_URL")
         values: dict[str, Any] = {"database_url": str(url)}
         env = os.environ if environ is None else environ
-        for key, field in _KEYS.items():
-            raw = config.get(key)
-            if raw is None or raw == "":
-                raw = env.get(key) or None
-            if raw is not None:
-                values[field] = _PARSE[field](raw)
+        for field, key in _KEYS.items():
+            given = config.get(key)
+            if given is None or given == "":
+                given = env.get(key)
+            values[field] = setting(key).value(given)
         return cls(**values)
-
-
-_KEYS = {
-    "KEELSON_WORKER_LEASE_SECONDS": "lease_seconds",
-    "KEELSON_WORKER_IDLE_SECONDS": "idle_seconds",
-    "KEELSON_WORKER_POLL_SECONDS": "poll_seconds",
-    "KEELSON_WORKER_CLAIM_SECONDS": "claim_seconds",
-    "KEELSON_WORKER_CHUNK_RECORDS": "chunk_records",
-    "KEELSON_WORKER_HOLDOUT_WINDOW": "holdout_window",
-    "KEELSON_WORKER_MAX_MODELS": "max_models",
-    "KEELSON_WORKER_PROGRESS_SECONDS": "progress_seconds",
-}
-_PARSE: dict[str, Any] = {
-    "lease_seconds": float,
-    "idle_seconds": float,
-    "poll_seconds": float,
-    "claim_seconds": float,
-    "chunk_records": int,
-    "holdout_window": int,
-    "max_models": int,
-    "progress_seconds": float,
-}

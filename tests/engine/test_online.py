@@ -32,7 +32,7 @@ def problem(output: str, k: int, n: int, seed: int):
     itertools.product(["tanh", "logistic", "relu"], HEADS, DEPTHS, ["sgd", "adam"])))
 def test_online_steps_equal_batch_steps_of_size_one_in_the_same_order(
         activation, head, depth, optimizer):
-    """STYLE.md / scikit-learn practice: repeated online steps against a batch of one."""
+    """Repeated online steps against a batch of one (common practice, no source)."""
     output, loss, k = head
     settings = {**TRAINING_DEFAULTS, "optimizer": optimizer, "learning_rate": 0.05,
                 "nesterov": depth == 2}

@@ -18,7 +18,7 @@ FORBIDDEN_STDLIB = {"os", "sys", "subprocess", "socket", "pathlib", "shutil", "t
 
 
 def test_importing_engine_loads_neither_flask_nor_sqlalchemy():
-    """STYLE.md: the sans-I/O core, held by a subprocess import check."""
+    """docs/architecture.md, invariant 7: the pure core, held by a subprocess import check."""
     code = ("import sys, json, engine; "
             "print(json.dumps(sorted(m for m in sys.modules "
             "if m.split('.')[0] in ('flask', 'sqlalchemy', 'werkzeug', 'marshmallow'))))")

@@ -1,6 +1,7 @@
 """`keelson db upgrade` and `keelson token create|list|revoke` against real databases.
 
-Our own contract (API.md: tokens are stored only as hashes; printed once).
+Our own contract (docs/http-api.md, "Auth and scopes": tokens are stored only
+as hashes and printed once).
 The hash check uses SHA-256 from Python's hashlib (FIPS 180-4).
 """
 

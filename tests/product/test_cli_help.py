@@ -1,6 +1,7 @@
-"""Every `keelson` command answers --help, and the API.md command table is there.
+"""Every `keelson` command answers --help, and the command table is there.
 
-The command table is our own contract (shared/design/API.md); no outside source.
+The command table is our own contract (docs/http-api.md, "The `keelson` command");
+no outside source.
 """
 
 from __future__ import annotations

@@ -17,9 +17,8 @@ from typing import Any
 
 import yaml
 
-from service.config import DEFAULTS
+from service.config import setting
 from service.web.headers import SECURITY_HEADERS
-from service.web.transport.limits import TransportLimits
 
 DOCKER = Path(__file__).resolve().parents[2] / "docker"
 LIMITS = {"KEELSON_MAX_BODY_BYTES": "client_max_body_size",
@@ -59,11 +58,7 @@ def test_only_the_proxy_is_published_and_it_waits_for_a_healthy_api() -> None:
 def test_the_proxy_and_the_api_get_the_same_limits_with_the_api_defaults() -> None:
     services = compose()["services"]
     proxy, api = services["proxy"]["environment"], services["api"]["environment"]
-    limits = TransportLimits()
-    defaults = {"KEELSON_MAX_BODY_BYTES": DEFAULTS["KEELSON_MAX_BODY_BYTES"],
-                "KEELSON_HEADER_TIMEOUT": limits.header_timeout,
-                "KEELSON_BODY_TIMEOUT": limits.body_timeout,
-                "KEELSON_SEND_TIMEOUT": limits.send_timeout}
+    defaults = {name: setting(name).default for name in LIMITS}
     for name in LIMITS:
         assert proxy[name] == api[name] == services["worker"]["environment"][name]
         assert float(default_of(proxy[name])) == defaults[name]

@@ -1,6 +1,6 @@
 """`keelson demo` end to end, and `keelson demo --serve` (what `make run` does).
 
-Our own contract (issue 5); the data is invented, so no figure of it is checked,
+Our own contract (README, "The demo"); the data is invented, so no figure of it is checked,
 only that the loop runs and the explanations name the declared fields.
 """
 

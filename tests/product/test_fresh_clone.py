@@ -4,7 +4,7 @@ A fresh clone has only committed files, so a module or migration someone
 forgot to add breaks here first. The virtual environment itself is not rebuilt
 (CI's .ci/run does that on every run: a fresh .venv, then `make test`); the
 clone runs with this interpreter and its installed dependencies.
-Our own contract (issue 5); no outside source.
+Our own contract (README, "Quick start"); no outside source.
 """
 
 from __future__ import annotations

@@ -1,6 +1,7 @@
 """The README's two quick-start commands are what the Makefile and CI run.
 
-Our own contract (issue 5: `make test` is the README's test command); no outside source.
+Our own contract (README, "Quick start": `make test` is the README's test
+command); no outside source.
 """
 
 from __future__ import annotations

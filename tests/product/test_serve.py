@@ -1,6 +1,7 @@
 """`keelson serve`: schema upgraded, API and worker side by side, clean stops.
 
-Our own contract (API.md command table, issue 5); no outside source.
+Our own contract (docs/http-api.md, "The `keelson` command"; README,
+"Scale-out"); no outside source.
 """
 
 from __future__ import annotations

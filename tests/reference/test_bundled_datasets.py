@@ -1,5 +1,5 @@
 """Open datasets shipped with scikit-learn: Keelson's batch fit on a holdout split
-reaches the REFERENCES.md floors and lands within a few points of scikit-learn's MLP
+reaches the floors of docs/references.md and lands within a few points of scikit-learn's MLP
 (reference library) on the same split."""
 
 from __future__ import annotations
@@ -50,7 +50,7 @@ def test_breast_cancer_holdout_accuracy():
     split = train_test_split(X, y, test_size=0.25, random_state=0, stratify=y)
     ours = keelson_fit("binary", *split, classes=[0, 1])["accuracy"]
     reference = sklearn_score(MLPClassifier(random_state=0, max_iter=300), *split)
-    assert ours >= 0.95  # floor: common practice (REFERENCES.md)
+    assert ours >= 0.95  # floor: common practice (docs/references.md)
     assert ours >= reference - 0.03
 
 

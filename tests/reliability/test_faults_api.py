@@ -1,6 +1,6 @@
 """An API server killed with SIGKILL (master and workers at once) while it is
-storing a large batch: the batch is all or nothing (ARCHITECTURE.md invariant
-5, API.md "rejects the whole batch ... stores nothing"). The kills land at
+storing a large batch: the batch is all or nothing (docs/architecture.md,
+invariant 5; docs/http-api.md, "Records"). The kills land at
 spread moments across the time one batch takes, measured first on the same
 database; after each kill a new server starts on the same database.
 """

@@ -10,7 +10,7 @@ kills it. No torn version may be left (the version count, the trainer's head
 and cursor stay where the last committed version put them, every stored
 snapshot loads), and after kills mid-checkpoint and at random moments the
 final weights equal, bit for bit, one uninterrupted pass of the engine over
-the same records (Keelson's invariant 2; the check is common practice, no
+the same records (docs/architecture.md, invariant 2; the check is common practice, no
 source).
 """
 

@@ -8,7 +8,8 @@ through a loopback TCP proxy that is cut (connections reset, new ones refused,
 as while a server is down) and restored. While it is away the API answers 503
 problem details and stays alive; afterwards it recovers by itself, the worker
 resumes, and every record acknowledged with 201 is stored and trained on
-exactly once (our own contract, API.md and ARCHITECTURE.md invariants 1-2).
+exactly once (our own contract: docs/http-api.md, "Errors"; docs/architecture.md,
+invariants 1 and 2).
 
 SQLite: many threads ingest into one file at once through real gunicorn
 workers; none of them may see "database is locked" as a 500.

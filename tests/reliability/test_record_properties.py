@@ -8,7 +8,7 @@ drawn to fit it is stored whole and reads back as sent (numbers as floats);
 the same batch with one record broken in one way (missing, unknown, wrongly
 typed, out-of-bounds or non-finite field, unknown level, unknown class) is
 refused with 422 naming that record's field path, and stores nothing
-(API.md "Records"; ARCHITECTURE.md invariant 5). 60 specs in CI; more with
+(docs/http-api.md, "Records"; docs/architecture.md, invariant 5). 60 specs in CI; more with
 ``KEELSON_PROPERTY_EXAMPLES=1000``.
 """
 

@@ -22,7 +22,7 @@ FULL_TRAINING = {
 
 
 def expected_model(**overrides: Any) -> dict[str, Any]:
-    """The answer for the pump spec: the defaults table of DEVELOPERS.md filled in."""
+    """The answer for the pump spec: engine/spec.py's defaults filled in."""
     body = {
         **model_spec(),
         "hidden_layers": [32, 16],

@@ -1,4 +1,4 @@
-"""Invariant 1 under concurrent writers: one model's records commit in
+"""docs/architecture.md, invariant 1, under concurrent writers: one model's records commit in
 sequence order, so a reader never sees seq n+1 committed while seq n can
 still appear. Duplicate keys sent concurrently are stored once."""
 

@@ -1,4 +1,4 @@
-"""GET and POST /v1/models/{name}/predictions: the contract of API.md, whole bodies.
+"""GET and POST /v1/models/{name}/predictions: docs/http-api.md, whole bodies.
 
 Versions are made without the worker (tests.service.predictions_factory); the
 expected bodies are computed from the same stored snapshot through the engine's
@@ -310,7 +310,7 @@ def test_concurrent_requests_share_one_cached_network_safely(api: ApiClient) -> 
 
 
 def test_a_staleness_bound_above_one_second_fails_at_app_creation(sqlite_url: str) -> None:
-    # ARCHITECTURE.md invariant 3 promises promotions visible within a short bound (<= 1 s).
+    # docs/architecture.md, invariant 3: promotions visible within a short bound (<= 1 s).
     with pytest.raises(ValueError, match="max_age"):
         build_app(sqlite_url, KEELSON_ACTIVE_STALENESS_SECONDS=2.5)
 

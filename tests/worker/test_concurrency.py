@@ -1,4 +1,4 @@
-"""Exactly once under concurrent ingestion (Keelson's invariant 1), PostgreSQL.
+"""Exactly once under concurrent ingestion (docs/architecture.md, invariant 1), PostgreSQL.
 
 Sequence numbers come from one PostgreSQL sequence shared by all models, so
 under concurrent ingestion a lower number can commit after a higher one. The

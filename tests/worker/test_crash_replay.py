@@ -5,7 +5,7 @@ The uninterrupted pass is the engine itself: a learner made from the same spec
 and warm-up records that learns every train record once, in sequence order.
 Equality of every parameter's bits, of the optimizer state and of the
 prequential sums means each train record was applied exactly once, in order
-(Keelson's invariants 1 and 2; the check is common practice, no source).
+(docs/architecture.md, invariants 1 and 2; the check is common practice, no source).
 
 The scenario is deterministic by construction: all records are stored before
 the first worker starts, so versions fall on count boundaries only (no idle

@@ -1,4 +1,4 @@
-"""Training cannot poison the active model (Keelson's invariant 6)."""
+"""Training cannot poison the active model (docs/architecture.md, invariant 6)."""
 
 from __future__ import annotations
 

@@ -1,6 +1,6 @@
 """Leases on trainers and jobs: one holder at a time, expiry hands rows on.
 
-The properties are Keelson's design (ARCHITECTURE.md, scale-out); the
+The properties are Keelson's design (docs/architecture.md, "Scale-out"); the
 ``FOR UPDATE SKIP LOCKED`` behaviour relied on is PostgreSQL's documented
 locking clause (PostgreSQL 15 manual, SELECT, "The Locking Clause").
 """

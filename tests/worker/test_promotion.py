@@ -1,7 +1,7 @@
 """Promotion: the policy, and the pointer moves of ``promote``.
 
-The policy values below are Keelson's own design (API.md: "at least as good
-within a tolerance"), not an outside source.
+The policy values below are Keelson's own design (docs/architecture.md, data
+flow, "Promotion": at least as good within a tolerance), not an outside source.
 """
 
 from __future__ import annotations

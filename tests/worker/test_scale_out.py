@@ -1,6 +1,7 @@
 """Two workers on one PostgreSQL share models by row leases: one writer per
 model at a time, and a dead worker's models pass to the other once its lease
-runs out (ARCHITECTURE.md, scale-out; PostgreSQL's FOR UPDATE SKIP LOCKED)."""
+runs out (docs/architecture.md, "Scale-out"; PostgreSQL's FOR UPDATE SKIP
+LOCKED)."""
 
 from __future__ import annotations
 

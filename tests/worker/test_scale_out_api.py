@@ -1,5 +1,5 @@
 """Scale-out as an operator runs it: two API processes and two workers on one
-PostgreSQL, several models (ARCHITECTURE.md, scale-out).
+PostgreSQL, several models (docs/architecture.md, "Scale-out").
 
 Records sent through one API process are trained by whichever worker holds
 each model's lease and served by both API processes; a promotion (a rollback)

@@ -1,5 +1,5 @@
 """Version writes: atomic with the trainer's cursor and head, fenced against
-workers that no longer own the lineage (Keelson's invariants 2 and 3)."""
+workers that no longer own the lineage (docs/architecture.md, invariants 2 and 3)."""
 
 from __future__ import annotations
 

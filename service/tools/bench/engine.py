@@ -199,7 +199,8 @@ def _gradient_cost() -> dict[str, float]:
 
 
 def run_engine_bench() -> dict[str, Any]:
-    """Measure everything (single-threaded BLAS) and return issue 2's JSON object.
+    """Measure everything (single-threaded BLAS) and return one JSON object (the
+    README's engine figures).
 
     A reference library that is not installed gives null and a line in `notes`.
     """

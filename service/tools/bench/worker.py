@@ -37,6 +37,7 @@ from typing import Any
 
 import numpy as np
 
+from service.config import read_setting
 from service.store.database import transaction
 from service.tools.bench.scratch import scratch_postgres
 
@@ -87,7 +88,7 @@ def run_worker_bench(
     if database_url:
         result["database"] = _measure(database_url, records, progress, retrain)
         return result
-    postgres_url = postgres_url or os.environ.get("KEELSON_BENCH_POSTGRES_URL")
+    postgres_url = postgres_url or read_setting("KEELSON_BENCH_POSTGRES_URL")
     with tempfile.TemporaryDirectory(prefix="keelson-bench-") as scratch:
         result["sqlite"] = _measure(f"sqlite:///{scratch}/bench.db", records, progress, retrain)
     if postgres_url:

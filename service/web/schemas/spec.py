@@ -1,4 +1,4 @@
-"""The model spec a client POSTs (API.md "Model spec"), validated strictly.
+"""The model spec a client POSTs (docs/http-api.md, "Models"), validated strictly.
 
 Every rule the contract states is here; the engine's ``apply_defaults`` then
 fills the defaults (and re-checks what shapes the network). Unknown keys are

@@ -2,18 +2,30 @@
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
+from typing import Any
 
 
 @dataclass(frozen=True)
 class TransportLimits:
-    """How long and how much a client may take (service.web.server sets them)."""
+    """Read from the settings registry (service/config.py), where each has its
+    meaning and default."""
 
-    header_timeout: float = 10.0  # from a request's first byte (or the accept) to its blank line
-    body_timeout: float = 60.0  # from the end of the head to the end of the body
-    send_timeout: float = 30.0  # for the client to take an answer the kernel could not hold
-    max_head_bytes: int = 32 * 1024
-    max_body_bytes: int = 16 * 1024 * 1024
+    header_timeout: float  # from a request's first byte (or the accept) to its blank line
+    body_timeout: float  # from the end of the head to the end of the body
+    send_timeout: float  # for the client to take an answer the kernel could not hold
+    max_head_bytes: int
+    max_body_bytes: int
+
+    @classmethod
+    def from_settings(cls, read: Callable[[str], Any]) -> TransportLimits:
+        """``read``: a setting's value by name (service.config.read_setting)."""
+        return cls(header_timeout=read("KEELSON_HEADER_TIMEOUT"),
+                   body_timeout=read("KEELSON_BODY_TIMEOUT"),
+                   send_timeout=read("KEELSON_SEND_TIMEOUT"),
+                   max_head_bytes=read("KEELSON_MAX_HEAD_BYTES"),
+                   max_body_bytes=read("KEELSON_MAX_BODY_BYTES"))
 
     @property
     def buffer_budget(self) -> int:

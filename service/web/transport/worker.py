@@ -22,10 +22,11 @@ import socket
 import time
 from collections import deque
 from concurrent.futures import Future
-from typing import Any
+from typing import Any, ClassVar
 
 from gunicorn.workers.gthread import STOP_KEEPALIVE_LINGER, ThreadWorker
 
+from service.config import read_setting
 from service.web.observability import request_id_for, transport_refusals
 from service.web.transport.answers import (
     DETAILS,
@@ -48,12 +49,13 @@ BODY_READ = 1024 * 1024
 
 
 class BufferingWorker(ThreadWorker):  # type: ignore[misc]  # gunicorn ships no types
-    limits = TransportLimits()
+    # Set by ``configured`` (service.web.server); else read when a process starts.
+    configured_limits: ClassVar[TransportLimits | None] = None
 
     @classmethod
     def configured(cls, limits: TransportLimits) -> type[BufferingWorker]:
         """This worker class with ``limits`` (gunicorn takes a class as ``worker_class``)."""
-        return type(cls.__name__, (cls,), {"limits": limits})
+        return type(cls.__name__, (cls,), {"configured_limits": limits})
 
     @classmethod
     def check_config(cls, cfg: Any, log: Any) -> None:
@@ -63,6 +65,7 @@ class BufferingWorker(ThreadWorker):  # type: ignore[misc]  # gunicorn ships no 
                                "HTTP/2 in a proxy in front of it (docs/transport.md)")
 
     def init_process(self) -> None:
+        self.limits = self.configured_limits or TransportLimits.from_settings(read_setting)
         # gunicorn's settings, read once: each read is a lookup through its
         # Config object, and these are needed for every request.
         line = self.cfg.limit_request_line
