@@ -5,6 +5,7 @@ state as a seed) and goes out as arrays or bytes. It imports neither Flask nor
 SQLAlchemy and is usable and testable on its own; service/ decides where bytes live.
 """
 
+from engine.attribution import METHODS as EXPLANATION_METHODS
 from engine.attribution import Explanation, explain
 from engine.batch import FitReport
 from engine.encoding import Encoder
@@ -18,9 +19,34 @@ from engine.errors import (
 from engine.learner import Learner
 from engine.metrics import Prequential, batch_metrics
 from engine.network import Network
-from engine.spec import apply_defaults, spec_hash
+from engine.spec import (
+    ACTIVATIONS,
+    FEATURE_TYPES,
+    LEGACY_LR_SCHEDULES,
+    LEGACY_TRAINING_KEYS,
+    LOSSES,
+    LR_SCHEDULES,
+    OPTIMIZERS,
+    PROMOTIONS,
+    TASKS,
+    TRAINING_DEFAULTS,
+    apply_defaults,
+    spec_hash,
+    upgrade_legacy_spec,
+)
 
 __all__ = [
+    "ACTIVATIONS",
+    "EXPLANATION_METHODS",
+    "FEATURE_TYPES",
+    "LEGACY_LR_SCHEDULES",
+    "LEGACY_TRAINING_KEYS",
+    "LOSSES",
+    "LR_SCHEDULES",
+    "OPTIMIZERS",
+    "PROMOTIONS",
+    "TASKS",
+    "TRAINING_DEFAULTS",
     "EngineError",
     "Encoder",
     "Explanation",
@@ -36,4 +62,5 @@ __all__ = [
     "batch_metrics",
     "explain",
     "spec_hash",
+    "upgrade_legacy_spec",
 ]

@@ -21,7 +21,7 @@ from engine.metrics import Prequential, batch_metrics
 from engine.network import Network
 from engine.online import OnlineTrainer, check_targets
 from engine.optimizers import Optimizer, make_optimizer
-from engine.spec import apply_defaults, spec_hash
+from engine.spec import apply_defaults, spec_hash, upgrade_legacy_spec
 
 Array = NDArray[np.float64]
 OUTPUT_OF_TASK = {"binary": "logistic", "multiclass": "softmax", "regression": "identity"}
@@ -291,7 +291,8 @@ class Learner:
         """Rebuild a learner from `to_bytes`; SnapshotError if the bytes do not fit."""
         arrays, meta = snapshot.load(data)
         try:
-            spec = apply_defaults(meta["spec"])
+            # Snapshots written before a rename carry the old spelling.
+            spec = apply_defaults(upgrade_legacy_spec(meta["spec"]))
             if spec_hash(spec) != meta["spec_hash"]:
                 raise SnapshotError("the snapshot's spec hash does not match its spec")
 

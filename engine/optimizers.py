@@ -9,7 +9,7 @@ non-finite step raises NonFiniteError and changes nothing.
 L2 weight decay adds l2 * w to the gradient of every parameter (biases too, as
 PyTorch's `weight_decay`). `clip_norm` bounds the Euclidean norm of the loss
 gradient (before the decay term) by rescaling it. The learning rate is constant
-or, with `invscaling`, lr / t ** power_t at step t = 1, 2, ...
+or, with `inverse_power`, lr / t ** decay_exponent at step t = 1, 2, ...
 """
 
 from __future__ import annotations
@@ -43,7 +43,7 @@ class Optimizer:
         clip = training["clip_norm"]
         self.clip_norm = None if clip is None else float(clip)
         self.schedule = str(training["lr_schedule"])
-        self.power_t = float(training["power_t"])
+        self.decay_exponent = float(training["decay_exponent"])
         self.step_count = 0
         # Below this squared gradient norm no clipping applies (NaN compares False).
         self._clip_squared = math.inf if clip is None else float(clip) ** 2
@@ -55,8 +55,8 @@ class Optimizer:
 
     def rate(self) -> float:
         """Learning rate of the coming step."""
-        if self.schedule == "invscaling":
-            return self.learning_rate / math.pow(self.step_count + 1, self.power_t)
+        if self.schedule == "inverse_power":
+            return self.learning_rate / math.pow(self.step_count + 1, self.decay_exponent)
         return self.learning_rate
 
     def clip_scale(self, grad_scale: float = 1.0) -> float:

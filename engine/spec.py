@@ -1,7 +1,10 @@
-"""The model spec: the one table of defaults, validation, and the shape hash.
+"""The model spec: its vocabularies, the one table of defaults, validation, and
+the shape hash.
 
 The engine reads the spec as the plain mapping the API stores. `apply_defaults`
 returns a full, validated copy; every later reader may then index it directly.
+The vocabularies below are the only definition of each word a spec may use;
+the service imports them rather than repeating them.
 """
 
 from __future__ import annotations
@@ -19,7 +22,8 @@ TASKS = ("binary", "multiclass", "regression")
 FEATURE_TYPES = ("numeric", "categorical", "boolean")
 ACTIVATIONS = ("tanh", "logistic", "relu")
 OPTIMIZERS = ("sgd", "adam")
-LR_SCHEDULES = ("constant", "invscaling")
+# `inverse_power`: the rate at step t = 1, 2, ... is learning_rate / t ** decay_exponent.
+LR_SCHEDULES = ("constant", "inverse_power")
 PROMOTIONS = ("auto", "manual")
 # Loss per task: binary may choose; the other tasks have exactly one.
 LOSSES = {
@@ -37,7 +41,7 @@ TRAINING_DEFAULTS: dict[str, Any] = {
     "l2": 0.0001,
     "clip_norm": 5.0,
     "lr_schedule": "constant",
-    "power_t": 0.5,
+    "decay_exponent": 0.5,
     "batch_size": 64,
     "max_epochs": 200,
     "patience": 10,
@@ -49,10 +53,44 @@ TRAINING_DEFAULTS: dict[str, Any] = {
 }
 
 
+# Training options spelled differently before: old key -> new key, and old
+# schedule name -> new one. Only `upgrade_legacy_spec` reads these.
+LEGACY_TRAINING_KEYS = {"power_t": "decay_exponent"}
+LEGACY_LR_SCHEDULES = {"invscaling": "inverse_power"}
+
+
+def upgrade_legacy_spec(spec: Mapping[str, Any]) -> dict[str, Any]:
+    """A copy of a stored spec with the training options' old spelling translated.
+
+    Specs written before the rename (in snapshots, and in the store until its
+    migration ran) say `power_t` and `lr_schedule: "invscaling"`; this spells
+    them `decay_exponent` and `"inverse_power"`, the same settings. A spec
+    already spelled the new way comes back equal. `apply_defaults` refuses the
+    old spelling, so a reader of stored specs calls this first.
+    """
+    if not isinstance(spec, Mapping):
+        raise InvalidInputError("the model spec must be a mapping", field=None)
+    upgraded: dict[str, Any] = copy.deepcopy(dict(spec))
+    training = upgraded.get("training")
+    if not isinstance(training, dict):
+        return upgraded
+    for old, new in LEGACY_TRAINING_KEYS.items():
+        if old in training:
+            value = training.pop(old)
+            training.setdefault(new, value)
+    schedule = training.get("lr_schedule")
+    if isinstance(schedule, str) and schedule in LEGACY_LR_SCHEDULES:
+        training["lr_schedule"] = LEGACY_LR_SCHEDULES[schedule]
+    return upgraded
+
+
 def apply_defaults(spec: Mapping[str, Any]) -> dict[str, Any]:
     """Return a validated deep copy of `spec` with every default filled in.
 
-    Raises InvalidInputError(field=...) naming the first offending key.
+    Raises InvalidInputError(field=...) naming the first offending key. The
+    training options' old spelling is refused here (a silently ignored
+    `power_t` would train with another rate); stored specs go through
+    `upgrade_legacy_spec` first.
     """
     if not isinstance(spec, Mapping):
         raise InvalidInputError("the model spec must be a mapping", field=None)
@@ -178,13 +216,16 @@ def _check_training(training: dict[str, Any]) -> None:
     def fail(key: str, message: str) -> InvalidInputError:
         return InvalidInputError(f"training.{key} {message}", field=f"training.{key}")
 
+    for old, new in LEGACY_TRAINING_KEYS.items():
+        if old in training:
+            raise fail(old, f"is spelled {new} now")
     _check_choice(training, "optimizer", OPTIMIZERS, prefix="training.")
     _check_choice(training, "lr_schedule", LR_SCHEDULES, prefix="training.")
     positive = ("learning_rate",)
     for key in positive:
         if not _is_number(training[key]) or training[key] <= 0:
             raise fail(key, "must be a positive finite number")
-    for key in ("l2", "power_t"):
+    for key in ("l2", "decay_exponent"):
         if not _is_number(training[key]) or training[key] < 0:
             raise fail(key, "must be a finite number >= 0")
     if not _is_number(training["momentum"]) or not 0 <= training["momentum"] < 1:

@@ -121,22 +121,25 @@ def import_csv(config: dict[str, Any], model: str, path: Path, *, batch_size: in
     """Ingest ``path`` into ``model`` batch by batch; returns what happened."""
     from service.store.database import make_engine, make_sessionmaker, refresh_planner_statistics
     from service.usecases.common import find_model
-    from service.usecases.records import ingest_records
+    from service.usecases.records import CheckedRecords, ingest_records
     from service.web.csv_records import parse_csv_records
+    from service.web.schemas.rules import rules_for
 
     engine = make_engine(config["KEELSON_DATABASE_URL"])
     summary = ImportSummary(model=model, path=path)
     try:
         with make_sessionmaker(engine)() as session:
-            spec = find_model(session, model).spec
+            found = find_model(session, model)
+            spec, model_id = found.spec, found.id
+        rules = rules_for(spec)
         writes = make_sessionmaker(engine, write=True)
 
         def send(header: list[str], rows: list[list[str]], lines: list[int]) -> None:
             summary.batches += 1
             summary.rows += len(rows)
             try:
-                records = parse_csv_records(_as_csv(header, rows), spec)
-                result = ingest_records(writes, model, records, max_records=batch_size)
+                records = parse_csv_records(_as_csv(header, rows), spec, rules=rules)
+                result = ingest_records(writes, model, CheckedRecords(model_id, spec, records))
             except KeelsonError as error:
                 summary.rejected.append(RejectedBatch(lines[0], lines[-1], len(rows),
                                                       error.detail, _by_line(error.errors, lines)))

@@ -9,9 +9,10 @@ from __future__ import annotations
 
 import math
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, fields
 from typing import Any
 
+import engine
 from service.errors import ConflictError, KeelsonError, NotFoundError
 from service.usecases.common import is_model_name
 from service.versions.cache import (
@@ -24,8 +25,8 @@ from service.versions.cache import (
     VersionNotFound,
 )
 
-EXPLAIN_METHODS = ("integrated_gradients", "gradient", "gradient_times_input", "smoothgrad",
-                   "none")
+# The engine's attribution methods, and "none": score without explaining.
+EXPLAIN_METHODS = (*engine.EXPLANATION_METHODS, "none")
 DEFAULT_EXPLAIN = "integrated_gradients"
 DEFAULT_STEPS, MIN_STEPS, MAX_STEPS = 64, 2, 1024
 DEFAULT_SAMPLES, MAX_SAMPLES = 32, 1024
@@ -47,6 +48,10 @@ class PredictionOptions:
     samples: int = DEFAULT_SAMPLES
     noise: float = DEFAULT_NOISE
     seed: int = 0
+
+
+# The options' names: query parameters of GET predictions beside the features.
+OPTION_NAMES = tuple(option.name for option in fields(PredictionOptions))
 
 
 class VersionUnavailableError(KeelsonError):

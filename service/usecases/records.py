@@ -1,12 +1,13 @@
-"""Use case: ingest a batch of labelled records, all or nothing.
+"""Use case: store a batch of labelled records, all or nothing.
 
-Order of work: read the model's spec, validate every record (no lock held),
-then one short write transaction that locks the model row, drops keys already
-stored, hands out sequence numbers, inserts the rest in one executemany and
-bumps the model's counters. Taking the model lock *before* sequence numbers
-are handed out means one model's records commit in sequence order
-(docs/architecture.md, invariant 1): the trainer can never see seq n+1 committed
-while seq n may still commit.
+The records arrive checked against one model's spec (by the HTTP layer, or by
+``keelson import`` through the same rules); this stores them in one short
+write transaction that locks the model row, makes sure the model is still the
+one they were checked against, drops keys already stored, hands out sequence
+numbers, inserts the rest in one executemany and bumps the model's counters.
+Taking the model lock *before* sequence numbers are handed out means one
+model's records commit in sequence order (docs/architecture.md, invariant 1): the
+trainer can never see seq n+1 committed while seq n may still commit.
 """
 
 from __future__ import annotations
@@ -18,16 +19,13 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
-from marshmallow import ValidationError
 from sqlalchemy import String, any_, bindparam, func, select, text, update
 from sqlalchemy.dialects.postgresql import ARRAY
 from sqlalchemy.orm import Session, sessionmaker
 
-from service.errors import InvalidInputError, TooLargeError
+from service.errors import ConflictError
 from service.store.tables import ModelRow, RecordRow, utcnow
 from service.usecases.common import find_model
-from service.web.problems import flatten_messages
-from service.web.schemas.records import fast_record_loader, record_schema
 
 KEY_CHUNK = 500  # keys per IN (...) on SQLite: under its parameter limit
 _SPLIT_SCALE = float(2**64)
@@ -39,37 +37,44 @@ class IngestResult:
     duplicates: int
 
 
+@dataclass(frozen=True, slots=True)
+class CheckedRecords:
+    """Records already checked against one model's spec.
+
+    ``records`` are ``{"key"?, "features", "label"}`` with loaded values (numbers
+    as floats, classes as declared); ``model_id`` and ``spec`` name what they
+    were checked against, so they are never stored under another spec.
+    """
+
+    model_id: int
+    spec: Mapping[str, Any]
+    records: Sequence[Mapping[str, Any]]
+
+
+class ModelChangedError(ConflictError):
+    """The model was replaced after its records were checked: nothing stored."""
+
+
 def ingest_records(
-    sessions: sessionmaker[Session] | Session,
-    model_name: str,
-    records: Sequence[Any],
-    *,
-    max_records: int | None = None,
+    sessions: sessionmaker[Session] | Session, model_name: str, checked: CheckedRecords
 ) -> IngestResult:
-    """Store ``records`` (the JSON shape of docs/http-api.md, "Records") for ``model_name``.
+    """Store ``checked`` records for ``model_name``.
 
     ``sessions`` is a *write* session factory, or a session the caller made
     from one; this function commits (or rolls back and re-raises) either way.
     A record whose key is already stored, or repeats an earlier key in the
-    batch, counts as a duplicate and changes nothing. Raises NotFoundError,
-    TooLargeError, or InvalidInputError naming every bad field.
+    batch, counts as a duplicate and changes nothing. Raises NotFoundError, or
+    ModelChangedError (409) when the model under the lock is not the one the
+    records were checked against (the caller checks them again and retries).
     """
-    if not isinstance(records, list | tuple) or not records:
-        raise InvalidInputError(
-            "No records to store.", errors={"records": ["At least one record is required."]}
-        )
-    if max_records is not None and len(records) > max_records:
-        raise TooLargeError(f"At most {max_records} records per request; got {len(records)}.")
     session = sessions() if isinstance(sessions, sessionmaker) else sessions
     try:
-        model = find_model(session, model_name)
-        spec, model_id = model.spec, model.id
-        session.commit()  # validation below holds no lock
-        valid = validate_records(spec, records)
         locked = find_model(session, model_name, lock=True)
-        if locked.id != model_id or locked.spec != spec:  # replaced meanwhile
-            spec, valid = locked.spec, validate_records(locked.spec, records)
-        result = _store(session, locked, valid)
+        if locked.id != checked.model_id or locked.spec != checked.spec:
+            raise ModelChangedError(
+                f"Model {model_name!r} changed while its records were checked; nothing "
+                "was stored. Send them again.", headers={"Retry-After": "0"})
+        result = _store(session, locked, list(checked.records))
         session.commit()
         return result
     except Exception:
@@ -78,22 +83,6 @@ def ingest_records(
     finally:
         if isinstance(sessions, sessionmaker):
             session.close()
-
-
-def validate_records(spec: Mapping[str, Any], records: Sequence[Any]) -> list[dict[str, Any]]:
-    """The records loaded by the model's schema, or InvalidInputError naming
-    every bad field as ``records.<i>.<field>``."""
-    fast = fast_record_loader(spec)(records)
-    if fast is not None:
-        return fast
-    try:
-        loaded: list[dict[str, Any]] = record_schema(spec).load(records, many=True)
-    except ValidationError as exc:
-        raise InvalidInputError(
-            "Some records are invalid; none was stored.",
-            errors=flatten_messages(exc.messages, "records"),
-        ) from exc
-    return loaded
 
 
 def split_of(model_id: int, key: str | None, seq: int, holdout_fraction: float) -> str:
@@ -109,7 +98,7 @@ def split_of(model_id: int, key: str | None, seq: int, holdout_fraction: float) 
         else "train"
 
 
-def _store(session: Session, model: ModelRow, valid: list[dict[str, Any]]) -> IngestResult:
+def _store(session: Session, model: ModelRow, valid: list[Mapping[str, Any]]) -> IngestResult:
     postgres = session.get_bind().dialect.name == "postgresql"
     if postgres:
         # The key lookup below runs once per batch; psycopg prepares it after
@@ -143,8 +132,8 @@ def _store(session: Session, model: ModelRow, valid: list[dict[str, Any]]) -> In
 
 
 def _drop_duplicates(
-    session: Session, model_id: int, valid: list[dict[str, Any]], *, postgres: bool
-) -> list[dict[str, Any]]:
+    session: Session, model_id: int, valid: list[Mapping[str, Any]], *, postgres: bool
+) -> list[Mapping[str, Any]]:
     """The batch without keys already stored or repeated within it (first wins).
 
     Runs under the model lock, so no other transaction can store one of these

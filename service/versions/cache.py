@@ -193,10 +193,18 @@ class VersionCache:
             self._numbers.put((model_id, number), version_id)
         return entry
 
+    def forget(self, name: str) -> None:
+        """Re-read model ``name`` at its next use (it was found to have changed)."""
+        self._models.pop(name, None)
+
     # -- versions -----------------------------------------------------------
     def version(self, entry: ModelEntry, number: int | None = None) -> LoadedVersion:
         """The active version of ``entry`` (``number=None``) or the pinned one."""
         if number is None:
+            if entry.active_version_id is None:
+                # "No active version" is re-read before it is answered, so it is
+                # never stale: one query, and only while a model has none.
+                entry = self._refresh(entry.name, entry)
             if entry.active_version_id is None or entry.active_version_number is None:
                 raise NoActiveVersion(entry.name)
             version_id: int | None = entry.active_version_id

@@ -2,8 +2,6 @@
 
 from __future__ import annotations
 
-import copy
-import re
 from collections.abc import Mapping
 from typing import Any
 
@@ -15,8 +13,9 @@ from werkzeug.routing import IntegerConverter
 from service.config import load_config
 from service.web import auth, observability, paths, problems
 from service.web.body_limit import BoundedRequest
-from service.web.extensions import init_database
+from service.web.extensions import init_database, init_version_cache
 from service.web.headers import SECURITY_HEADERS
+from service.web.openapi import DocumentingPlugin, openapi_document
 from service.web.schemas.views import ProblemSchema
 from service.web.views import jobs, models, ops, predictions, records, versions
 
@@ -33,7 +32,6 @@ BLUEPRINTS = [
 # The largest id or number a path can name: job ids and version numbers are
 # 32-bit INTEGER columns (PostgreSQL refuses a larger parameter: it was a 500).
 MAX_PATH_INTEGER = 2**31 - 1
-_CONVERTER = re.compile(r"<(?:[^:<>]+:)?([^<>]+)>")
 
 
 class BoundedIntegerConverter(IntegerConverter):
@@ -72,20 +70,24 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
         MAX_CONTENT_LENGTH=settings["KEELSON_MAX_BODY_BYTES"],
         API_TITLE="Keelson",
         API_VERSION="1",
-        OPENAPI_VERSION="3.0.3",
+        # 3.1: its schemas are JSON Schema 2020-12, the dialect each model's
+        # own documents (GET /v1/models/{name}/schema) are written in.
+        OPENAPI_VERSION="3.1.0",
         JSON_SORT_KEYS=False,
     )
     app.json.sort_keys = False  # type: ignore[attr-defined]
     init_database(app)
+    init_version_cache(app)
     auth.init_app(app)
     observability.init_app(app)
-    api = Api(app, spec_kwargs={"info": {"description": "Keelson HTTP API (v1)."}})
+    api = Api(app, spec_kwargs={"info": {"description": "Keelson HTTP API (v1)."},
+                                "marshmallow_plugin": DocumentingPlugin()})
     api.register_converter(BoundedIntegerConverter, integerconverter2paramschema)
     api.spec.components.security_scheme("bearer", {"type": "http", "scheme": "bearer"})
     for blueprint in BLUEPRINTS:
         api.register_blueprint(blueprint)
     problems.init_app(app)
-    app.extensions["keelson.openapi"] = _openapi_document(app, api)
+    app.extensions["keelson.openapi"] = openapi_document(app, api.spec)
     app.wsgi_app = SecurityHeaders(app.wsgi_app)  # type: ignore[method-assign]
     return app
 
@@ -117,30 +119,3 @@ class SecurityHeaders:
             return start_response(status, headers, exc_info)
 
         return self.app(environ, start_secured)
-
-
-def _openapi_document(app: Flask, api: Api) -> Any:
-    """A function returning the OpenAPI document, built once on first use, with
-    each operation's security taken from the scope its view declares."""
-    built: list[dict[str, Any]] = []
-
-    def document() -> dict[str, Any]:
-        if built:
-            return built[0]
-        spec: dict[str, Any] = copy.deepcopy(api.spec.to_dict())
-        for rule in app.url_map.iter_rules():
-            scope = auth.declared_scope(app.view_functions.get(rule.endpoint))
-            path = spec.get("paths", {}).get(_CONVERTER.sub(r"{\1}", rule.rule), {})
-            for method in rule.methods or ():
-                operation = path.get(method.lower())
-                if operation is None or scope is None:
-                    continue
-                if scope == auth.PUBLIC:
-                    operation["security"] = []
-                else:
-                    operation["security"] = [{"bearer": []}]
-                    operation["x-scope"] = scope
-        built.append(spec)
-        return spec
-
-    return document

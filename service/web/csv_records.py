@@ -1,10 +1,11 @@
-"""Records from CSV text (RFC 4180), typed from the model's spec.
+"""Records from CSV text (RFC 4180), checked by the model's rules.
 
 The header names the columns: every feature, the target, and optionally
-``key``; order is free. Cells are typed with the model's generated schema in
-its text form, so a CSV cell obeys exactly the rules a JSON value does, and
-an error names ``records.<row>.features.<column>`` (row 0 is the first line
-after the header) or ``columns.<name>`` for the header.
+``key``; order is free. Each row becomes a record of the JSON shape
+(``{"key"?, "features", "label"}``, cells as text), then the model's compiled
+rules load it in their text form: a CSV cell obeys exactly the rules a JSON
+value does, and an error names ``records.<row>.features.<column>`` (row 0 is
+the first line after the header) or ``columns.<name>`` for the header.
 """
 
 from __future__ import annotations
@@ -14,19 +15,18 @@ import io
 from collections.abc import Mapping
 from typing import Any
 
-from marshmallow import ValidationError
-
 from service.errors import InvalidInputError, MalformedError, TooLargeError
-from service.web.problems import flatten_messages
-from service.web.schemas.records import record_schema
+from service.web.schemas.rules import NO_RECORDS, RecordRules, rules_for
 
 KEY_COLUMN = "key"
 
 
 def parse_csv_records(
-    text: str, spec: Mapping[str, Any], *, max_records: int | None = None
+    text: str, spec: Mapping[str, Any], *, rules: RecordRules | None = None,
+    max_records: int | None = None,
 ) -> list[dict[str, Any]]:
-    """``[{"key"?, "features": {...}, "label": ...}, ...]`` from CSV text.
+    """``[{"key"?, "features": {...}, "label": ...}, ...]`` from CSV text, loaded
+    by ``rules`` (default: the rules of ``spec``, which names the columns).
 
     Raises MalformedError (the text is not CSV), TooLargeError (more than
     ``max_records`` rows) or InvalidInputError (a header or cell breaks a rule).
@@ -76,16 +76,8 @@ def parse_csv_records(
     if errors:
         raise InvalidInputError("Some CSV rows have the wrong number of fields.", errors=errors)
     if not raw:
-        raise InvalidInputError(
-            "The CSV holds no records.", errors={"records": ["At least one record is required."]}
-        )
-    try:
-        typed: list[dict[str, Any]] = record_schema(spec, text=True).load(raw, many=True)
-    except ValidationError as exc:
-        raise InvalidInputError(
-            "Some records are invalid.", errors=flatten_messages(exc.messages, "records")
-        ) from exc
-    return typed
+        raise InvalidInputError("The CSV holds no records.", errors={"records": [NO_RECORDS]})
+    return (rules or rules_for(spec)).load_records(raw, text=True)
 
 
 def _check_header(header: list[str], features: list[str], target: str) -> None:

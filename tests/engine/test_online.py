@@ -95,7 +95,7 @@ def test_xor_is_learnt_online_by_a_small_hidden_layer():
 
 
 @pytest.mark.parametrize("nesterov", [False, True])
-@pytest.mark.parametrize("schedule", ["constant", "invscaling"])
+@pytest.mark.parametrize("schedule", ["constant", "inverse_power"])
 def test_weights_do_not_depend_on_how_the_stream_is_cut_into_calls(nesterov, schedule):
     """SGD moves the weights between two rows at every step (step_swapping_); calls of
     odd and even lengths, and a resume from the optimizer state at an odd step

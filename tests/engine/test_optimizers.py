@@ -76,9 +76,9 @@ def test_clipping_rescales_the_gradient_to_the_norm_limit():
     np.testing.assert_allclose(opt.params, [-3.3, -4.4], rtol=1e-15)
 
 
-def test_invscaling_divides_the_rate_by_t_to_the_power_t():
+def test_inverse_power_divides_the_rate_by_t_to_the_decay_exponent():
     opt = SGD(1, training(learning_rate=0.5, momentum=0.0, l2=0.0,
-                          lr_schedule="invscaling", power_t=0.5, clip_norm=None))
+                          lr_schedule="inverse_power", decay_exponent=0.5, clip_norm=None))
     rates = []
     for _ in range(4):
         rates.append(opt.rate())
@@ -177,7 +177,7 @@ def swapping_steps(opt, grads):
 
 
 @pytest.mark.parametrize("nesterov", [False, True])
-@pytest.mark.parametrize("schedule", ["constant", "invscaling"])
+@pytest.mark.parametrize("schedule", ["constant", "inverse_power"])
 @pytest.mark.parametrize("clip", [None, 0.5])
 def test_swapping_steps_equal_plain_steps_and_torch(nesterov, schedule, clip):
     """One matrix product for (v', w') against step_ and against torch.optim.SGD

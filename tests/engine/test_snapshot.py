@@ -141,3 +141,31 @@ def test_another_format_version_is_refused():
              __meta__=np.frombuffer(json.dumps(meta).encode(), dtype=np.uint8))
     with pytest.raises(SnapshotError, match="version"):
         Learner.from_bytes(buffer.getvalue())
+
+
+def test_a_snapshot_with_the_old_schedule_spelling_loads_and_trains_on_unchanged():
+    """Snapshots written before the rename say `power_t` and `invscaling`: they
+    load with the same settings spelled the new way, and training resumes bit
+    for bit as it would have from a snapshot written today."""
+    rows, labels = rows_and_labels("binary", 200, seed=8)
+    settings = {"learning_rate": 0.05, "lr_schedule": "inverse_power", "decay_exponent": 0.7}
+    learner = Learner.create(spec("binary", training=settings), warmup=rows[:64])
+    X, Y = learner.encode(rows), learner.encode_labels(labels)
+    learner.learn(X[:90], Y[:90])
+    current = learner.to_bytes()
+
+    def old_spelling(arrays, meta):
+        training = meta["spec"]["training"]
+        training["power_t"] = training.pop("decay_exponent")
+        training["lr_schedule"] = "invscaling"
+
+    old = Learner.from_bytes(_rewrite(current, old_spelling))
+    assert load(_rewrite(current, old_spelling))[1]["spec"]["training"]["power_t"] == 0.7
+    new = Learner.from_bytes(current)
+    assert old.spec == new.spec
+    assert old.spec["training"]["lr_schedule"] == "inverse_power"
+    assert old.spec["training"]["decay_exponent"] == 0.7 and "power_t" not in old.spec["training"]
+    assert old.optimizer.rate() == new.optimizer.rate() == 0.05 / 91 ** 0.7
+    old.learn(X[90:], Y[90:])
+    new.learn(X[90:], Y[90:])
+    assert np.array_equal(old.network.params, new.network.params)

@@ -7,7 +7,7 @@ import copy
 import pytest
 
 from engine.errors import InvalidInputError
-from engine.spec import apply_defaults, spec_hash
+from engine.spec import apply_defaults, spec_hash, upgrade_legacy_spec
 
 
 def _spec(**overrides):
@@ -28,7 +28,7 @@ def test_defaults_fill_every_key_of_the_table_in_developers_md():
     assert full["promotion"] == "auto"
     assert full["training"] == {
         "optimizer": "sgd", "learning_rate": 0.01, "momentum": 0.9, "nesterov": False,
-        "l2": 0.0001, "clip_norm": 5.0, "lr_schedule": "constant", "power_t": 0.5,
+        "l2": 0.0001, "clip_norm": 5.0, "lr_schedule": "constant", "decay_exponent": 0.5,
         "batch_size": 64, "max_epochs": 200, "patience": 10, "validation_fraction": 0.1,
         "seed": 0, "warmup_records": 256, "holdout_fraction": 0.2, "checkpoint_every": 1000}
 
@@ -93,3 +93,37 @@ def test_hash_depends_on_shape_not_on_training_settings_or_names():
     changed["features"][2]["name"] = "vfd2"
     assert base != spec_hash(changed)
     assert len(base) == 64
+
+
+def test_the_old_schedule_spelling_is_refused_naming_the_field():
+    with pytest.raises(InvalidInputError) as caught:
+        apply_defaults(_spec(training={"power_t": 0.5}))
+    assert caught.value.field == "training.power_t"
+    assert "decay_exponent" in str(caught.value)
+    with pytest.raises(InvalidInputError) as caught:
+        apply_defaults(_spec(training={"lr_schedule": "invscaling"}))
+    assert caught.value.field == "training.lr_schedule"
+
+
+@pytest.mark.parametrize(("training", "upgraded"), [
+    ({"lr_schedule": "invscaling", "power_t": 0.25},
+     {"lr_schedule": "inverse_power", "decay_exponent": 0.25}),
+    ({"power_t": 0.3}, {"decay_exponent": 0.3}),
+    ({"lr_schedule": "invscaling"}, {"lr_schedule": "inverse_power"}),
+    ({"lr_schedule": "constant", "decay_exponent": 0.5},
+     {"lr_schedule": "constant", "decay_exponent": 0.5}),
+    ({}, {}),
+])
+def test_the_old_spelling_is_translated_into_the_same_settings(training, upgraded):
+    old = _spec(training=training)
+    before = copy.deepcopy(old)
+    new = upgrade_legacy_spec(old)
+    assert old == before  # a copy: the stored mapping is left alone
+    assert new == _spec(training=upgraded)
+    assert upgrade_legacy_spec(new) == new
+    assert apply_defaults(new)["training"]["decay_exponent"] == upgraded.get("decay_exponent",
+                                                                             0.5)
+
+
+def test_a_spec_without_training_is_upgraded_unchanged():
+    assert upgrade_legacy_spec(_spec()) == _spec()

@@ -9,10 +9,14 @@ from typing import Any
 
 from flask import Flask
 from sqlalchemy import func, select
+from sqlalchemy.orm import Session, sessionmaker
 
 from service.store.tables import ModelRow, RecordRow, VersionRow
+from service.usecases.common import find_model
+from service.usecases.records import CheckedRecords, IngestResult, ingest_records
 from service.usecases.tokens import create_token
 from service.web.extensions import get_database
+from service.web.schemas.rules import rules_for
 
 ADMIN_TOKEN = "test-admin-token"
 PROBLEM = "application/problem+json"
@@ -94,6 +98,23 @@ def record(i: int, *, key: str | None = None, **features: Any) -> dict[str, Any]
     if key is not None:
         row["key"] = key
     return row
+
+
+def check_records(session: Session, name: str, records: list[Any]) -> CheckedRecords:
+    """Records of the JSON shape checked by the model's rules, as the API checks them."""
+    model = find_model(session, name)
+    return CheckedRecords(model.id, model.spec, rules_for(model.spec).load_records(records))
+
+
+def ingest_raw(sessions: sessionmaker[Session] | Session, name: str,
+               records: list[Any]) -> IngestResult:
+    """Check ``records`` and store them through the ingest use case (what the API does)."""
+    if isinstance(sessions, sessionmaker):
+        with sessions() as session:
+            checked = check_records(session, name, records)
+    else:
+        checked = check_records(sessions, name, records)
+    return ingest_records(sessions, name, checked)
 
 
 def count_records(app: Flask, model: str | None = None) -> int:

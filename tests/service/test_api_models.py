@@ -15,7 +15,7 @@ from tests.service.helpers import ApiClient, create_model, model_row, model_spec
 
 FULL_TRAINING = {
     "optimizer": "sgd", "learning_rate": 0.01, "momentum": 0.9, "nesterov": False,
-    "l2": 0.0001, "clip_norm": 5.0, "lr_schedule": "constant", "power_t": 0.5,
+    "l2": 0.0001, "clip_norm": 5.0, "lr_schedule": "constant", "decay_exponent": 0.5,
     "batch_size": 64, "max_epochs": 200, "patience": 10, "validation_fraction": 0.1,
     "seed": 0, "warmup_records": 256, "holdout_fraction": 0.2, "checkpoint_every": 1000,
 }
@@ -177,3 +177,22 @@ def test_feature_names_cannot_shadow_prediction_query_parameters() -> None:
     from service.web.schemas.spec import RESERVED_FIELD_NAMES
 
     assert set(PredictionQuerySchema().fields) <= RESERVED_FIELD_NAMES
+
+
+def test_the_decay_schedule_is_spelled_with_our_own_names(api: ApiClient) -> None:
+    training = {"lr_schedule": "inverse_power", "decay_exponent": 0.25}
+    body = create_model(api, training=training)
+    assert body["training"] == {**FULL_TRAINING, **training}
+
+
+@pytest.mark.parametrize(("training", "field", "message"), [
+    ({"power_t": 0.5}, "training.power_t", "Spelled decay_exponent now."),
+    ({"lr_schedule": "invscaling"}, "training.lr_schedule", "Spelled 'inverse_power' now."),
+])
+def test_the_old_spelling_of_the_decay_schedule_is_refused_naming_the_field(
+    api: ApiClient, app: Flask, training: dict[str, Any], field: str, message: str
+) -> None:
+    body = api.request("POST", "/v1/models", 422, json_body=model_spec(training=training))
+    assert body["errors"] == {field: [message]}
+    with get_database(app).read() as session:
+        assert session.scalars(select(ModelRow)).first() is None

@@ -10,12 +10,19 @@ import pytest
 from flask import Flask
 from sqlalchemy import select
 
-from service.errors import InvalidInputError, TooLargeError
-from service.store.tables import RecordRow, utcnow
+from service.errors import InvalidInputError
+from service.store.tables import ModelRow, RecordRow, utcnow
 from service.usecases.common import as_utc
-from service.usecases.records import ingest_records, split_of
+from service.usecases.records import ModelChangedError, ingest_records, split_of
 from service.web.extensions import get_database
-from tests.service.helpers import ApiClient, count_records, create_model, model_row, record
+from tests.service.helpers import (
+    ApiClient,
+    check_records,
+    count_records,
+    create_model,
+    model_row,
+    record,
+)
 
 RECORDS = "/v1/models/pump-risk/records"
 
@@ -165,11 +172,52 @@ def test_the_use_case_takes_a_session_as_the_command_line_passes_it(
 ) -> None:
     create_model(api)
     with get_database(app).write() as session:
-        result = ingest_records(session, "pump-risk", [record(1, key="a"), record(2)])
+        checked = check_records(session, "pump-risk", [record(1, key="a"), record(2)])
+        result = ingest_records(session, "pump-risk", checked)
         assert (result.accepted, result.duplicates) == (2, 0)
         with pytest.raises(InvalidInputError) as error:
-            ingest_records(session, "pump-risk", [record(3), {"features": {}, "label": "ok"}])
+            check_records(session, "pump-risk", [record(3), {"features": {}, "label": "ok"}])
         assert "records.1.features.vibration_rms" in (error.value.errors or {})
-        with pytest.raises(TooLargeError):
-            ingest_records(session, "pump-risk", [record(4)] * 3, max_records=2)
     assert count_records(app) == 2
+
+
+def replace_levels(app: Flask, levels: list[str]) -> None:
+    """Give pump-risk other levels behind the API's back (the model "changed")."""
+    with get_database(app).write() as session:
+        row = session.scalars(select(ModelRow).where(ModelRow.name == "pump-risk")).one()
+        spec = {**row.spec, "features": [dict(f) for f in row.spec["features"]]}
+        spec["features"][1]["levels"] = levels
+        row.spec = spec
+        session.commit()
+
+
+def test_records_checked_against_another_spec_are_never_stored(
+    any_api: ApiClient, any_app: Flask
+) -> None:
+    create_model(any_api)
+    with get_database(any_app).read() as session:
+        checked = check_records(session, "pump-risk", [record(1, key="screw-1")])
+    replace_levels(any_app, ["centrifugal", "vortex"])
+    with pytest.raises(ModelChangedError) as error:
+        ingest_records(get_database(any_app).write, "pump-risk", checked)
+    assert error.value.status == 409
+    assert count_records(any_app) == 0
+
+
+def test_a_model_changed_after_the_check_answers_409_and_the_retry_is_checked_anew(
+    any_api: ApiClient, any_app: Flask
+) -> None:
+    create_model(any_api)
+    any_api.request("POST", RECORDS, 201, json_body={"records": [record(0)]})  # cache warm
+    replace_levels(any_app, ["centrifugal", "vortex"])
+    screw = record(1, key="k1")
+    screw["features"]["pump_family"] = "screw"
+    body = any_api.request("POST", RECORDS, 409, json_body={"records": [screw]})
+    assert "changed" in body["detail"]
+    assert any_api.last.headers["Retry-After"] == "0"
+    # The retry is checked against the model as it now is: screw is no level of it.
+    body = any_api.request("POST", RECORDS, 422, json_body={"records": [screw]})
+    assert "records.0.features.pump_family" in body["errors"]
+    screw["features"]["pump_family"] = "vortex"
+    any_api.request("POST", RECORDS, 201, json_body={"records": [screw]})
+    assert count_records(any_app) == 2

@@ -10,9 +10,15 @@ from flask import Flask
 from sqlalchemy import select
 
 from service.store.tables import ModelRow, RecordRow
-from service.usecases.records import ingest_records
 from service.web.extensions import get_database
-from tests.service.helpers import ApiClient, count_records, create_model, model_row, record
+from tests.service.helpers import (
+    ApiClient,
+    count_records,
+    create_model,
+    ingest_raw,
+    model_row,
+    record,
+)
 
 WRITERS = 4
 BATCHES = 12
@@ -39,7 +45,7 @@ def test_concurrent_batches_commit_in_sequence_order(any_api: ApiClient, any_app
             for b in range(BATCHES):
                 name = "pump-risk" if (writer + b) % 3 else "other"
                 rows = [record(i, key=f"w{writer}-b{b}-{i}") for i in range(BATCH)]
-                ingest_records(database.write, name, rows)
+                ingest_raw(database.write, name, rows)
         except BaseException as exc:  # surfaced below
             errors.append(exc)
 
@@ -85,7 +91,7 @@ def test_the_same_keys_sent_concurrently_are_stored_once(
     lock = threading.Lock()
 
     def send() -> None:
-        result = ingest_records(database.write, "pump-risk", rows)
+        result = ingest_raw(database.write, "pump-risk", rows)
         with lock:
             results.append(result)
 

@@ -20,9 +20,8 @@ import pytest
 from sqlalchemy import event
 
 from engine import Learner
-from service.web.extensions import get_database
+from service.web.extensions import get_database, get_version_cache
 from service.web.schemas.predictions import PredictionBatchSchema, PredictionSchema
-from service.web.views.predictions import version_cache
 from tests.service.conftest import build_app
 from tests.service.helpers import ApiClient, create_model
 from tests.service.predictions_factory import (
@@ -306,7 +305,7 @@ def test_concurrent_requests_share_one_cached_network_safely(api: ApiClient) -> 
     for thread in threads:
         thread.join()
     assert failures == []
-    assert len(version_cache(api.app)._versions) == 1
+    assert len(get_version_cache(api.app)._versions) == 1
 
 
 def test_a_staleness_bound_above_one_second_fails_at_app_creation(sqlite_url: str) -> None:

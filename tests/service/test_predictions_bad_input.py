@@ -147,7 +147,7 @@ POST_CASES = [
     ("steps as a string", {**records(GOOD_ROW), "steps": "64"}, {"steps": ["Not an integer."]}),
     ("steps as a boolean", {**records(GOOD_ROW), "steps": True},
      {"steps": ["Not an integer."]}),
-    ("version as a float", {**records(GOOD_ROW), "version": 1.0},
+    ("version with a fraction", {**records(GOOD_ROW), "version": 1.5},
      {"version": ["Not an integer."]}),
 ]
 
@@ -186,6 +186,16 @@ def test_query_parameters_of_a_post_are_options_only_and_must_agree(served: ApiC
         "steps": ["Not an integer."],
         "explain": ["Given in the body and the query with different values."],
     })
+
+
+def test_a_number_with_no_fraction_is_an_integer_as_json_schema_counts_it(
+    served: ApiClient
+) -> None:
+    """JSON has one number type (RFC 8259 section 6); JSON Schema 2020-12
+    (Validation, section 6.1.1) counts 1.0 as an integer, and so does the API."""
+    body = served.request("POST", PATH, 200, json_body={**records(GOOD_ROW), "version": 1.0,
+                                                        "steps": 8.0, "explain": "none"})
+    assert body["version"] == 1
 
 
 def test_an_over_long_batch_is_a_413_naming_records(served: ApiClient) -> None:

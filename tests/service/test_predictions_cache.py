@@ -152,6 +152,18 @@ def test_no_active_version_and_unknown_models_are_reported(engine: Engine) -> No
     assert cache.version(cache.model("fresh"), 1).learner == "one"  # pinning still works
 
 
+def test_no_active_version_is_re_read_before_it_is_answered(engine: Engine) -> None:
+    """A model cached before its first version was activated (ingest reads the
+    cache too) serves that version at once: a negative answer is never stale."""
+    clock = Clock()
+    model_id = add_model(engine, "fresh", [b"one"], active=None)
+    cache = make_cache(engine, clock)
+    entry = cache.model("fresh")
+    promote(engine, model_id, 1)
+    assert cache.model("fresh") is entry  # still within the staleness bound
+    assert cache.version(entry).learner == "one"
+
+
 def test_an_unreadable_snapshot_fails_the_same_way_without_rereading(engine: Engine) -> None:
     clock = Clock()
     add_model(engine, "pumps", [b"corrupt bytes"], active=1)

@@ -20,8 +20,8 @@ from engine import Learner
 from service.store.database import Database, make_engine, make_sessionmaker
 from service.store.tables import ModelRow, RecordRow, TrainerRow, VersionRow
 from service.usecases.models import create_model
-from service.usecases.records import ingest_records
 from service.worker import run_worker
+from tests.service.helpers import ingest_raw
 
 # Fast settings for tests: a version after 0.5 s of quiet, short leases.
 FAST = {
@@ -60,7 +60,7 @@ def new_model(db: Database, spec: dict[str, Any]) -> int:
 
 def send(db: Database, name: str, records: Sequence[dict[str, Any]], batch: int = 500) -> None:
     for start in range(0, len(records), batch):
-        ingest_records(db.write, name, list(records[start:start + batch]))
+        ingest_raw(db.write, name, list(records[start:start + batch]))
 
 
 @contextlib.contextmanager

@@ -9,7 +9,7 @@ import sys
 import numpy as np
 
 from service.store.database import make_engine, make_sessionmaker
-from service.usecases.records import ingest_records
+from tests.service.helpers import ingest_raw
 
 FIELDS = ["a", "b", "c", "d"]
 
@@ -26,7 +26,7 @@ def main(url: str, model: str, seed: int, count: int) -> None:
                   "features": dict(zip(FIELDS, map(float, row), strict=True)),
                   "label": bool(row[0] - row[1] > 0)}
                  for i, row in enumerate(X)]
-        ingest_records(writes, model, batch)
+        ingest_raw(writes, model, batch)
         sent += size
     engine.dispose()
 

@@ -11,28 +11,36 @@ from __future__ import annotations
 
 import math
 import re
+import sys
 from collections.abc import Sequence
 from typing import Any
 
 from marshmallow import ValidationError, fields
 
 _JSON_NUMBER = re.compile(r"-?(?:0|[1-9][0-9]*)(?:\.[0-9]+)?(?:[eE][+-]?[0-9]+)?")
+_DIGITS = re.compile(r"-?[0-9]{1,20}")  # read exactly as an integer
 NON_FINITE = "NaN and Infinity are not numbers JSON allows (RFC 8259 section 6)."
 TRUE_TEXT = frozenset({"true", "1"})
 FALSE_TEXT = frozenset({"false", "0"})
+# The largest finite double (IEEE 754 binary64): every number the API takes is
+# one, and the documents say so, so "any number" always has these bounds.
+LARGEST = sys.float_info.max
+LARGEST_INT = int(LARGEST)
 
 
 def _document(field: fields.Field[Any], **values: Any) -> None:
-    """Add OpenAPI keywords to a field's metadata (what apispec documents),
-    keeping any the caller passed; ``None`` values are left out."""
+    """Add JSON Schema 2020-12 keywords (the dialect of OpenAPI 3.1) to a field's
+    metadata (what apispec documents), keeping any the caller passed; ``None``
+    values are left out."""
     field.metadata = {**{k: v for k, v in values.items() if v is not None}, **field.metadata}
 
 
 def _finite(value: float | int) -> float:
-    try:
-        number = float(value)
-    except OverflowError as exc:
-        raise ValidationError("Number is too large.") from exc
+    # An integer just beyond the largest double would round down to it:
+    # refused like any larger one, as the documented bounds say.
+    if type(value) is int and not -LARGEST_INT <= value <= LARGEST_INT:
+        raise ValidationError("Number is too large.")
+    number = float(value)
     if not math.isfinite(number):
         raise ValidationError(NON_FINITE)
     return number
@@ -59,8 +67,11 @@ class StrictNumber(fields.Field[Any]):
         self.maximum = maximum
         self.exclusive_minimum = exclusive_minimum
         self.as_float = as_float
-        _document(self, type="number", minimum=minimum, maximum=maximum,
-                  exclusiveMinimum=True if minimum is not None and exclusive_minimum else None)
+        exclusive = minimum is not None and exclusive_minimum
+        _document(self, type="number",
+                  minimum=None if exclusive else -LARGEST if minimum is None else minimum,
+                  exclusiveMinimum=minimum if exclusive else None,
+                  maximum=LARGEST if maximum is None else maximum)
 
     def _deserialize(self, value: Any, attr: str | None, data: Any, **kwargs: Any) -> Any:
         if isinstance(value, bool) or not isinstance(value, int | float):
@@ -96,7 +107,12 @@ class NumberFromText(StrictNumber):
 
 
 class StrictInteger(fields.Field[Any]):
-    """A JSON integer (not a bool, not 2.0), optionally bounded."""
+    """A JSON integer (not a bool, not a string), optionally bounded.
+
+    ``2.0`` is the integer 2: JSON has one number type (RFC 8259 section 6) and
+    JSON Schema counts a number with a zero fractional part as an integer, so
+    the published documents call it valid. ``2.5`` is refused.
+    """
 
     def __init__(
         self, *, minimum: int | None = None, maximum: int | None = None, **kwargs: Any
@@ -107,13 +123,34 @@ class StrictInteger(fields.Field[Any]):
         _document(self, type="integer", minimum=minimum, maximum=maximum)
 
     def _deserialize(self, value: Any, attr: str | None, data: Any, **kwargs: Any) -> Any:
-        if isinstance(value, bool) or not isinstance(value, int):
+        if isinstance(value, float) and value.is_integer():
+            value = int(value)
+        elif isinstance(value, bool) or not isinstance(value, int):
             raise ValidationError("Not an integer.")
         if self.minimum is not None and value < self.minimum:
             raise ValidationError(f"Must be at least {self.minimum}.")
         if self.maximum is not None and value > self.maximum:
             raise ValidationError(f"Must be at most {self.maximum}.")
         return value
+
+
+class IntegerFromText(StrictInteger):
+    """An integer spelled as JSON spells a number with no fraction (``7``,
+    ``7.0``, ``7e2``; not ``7.5``, ``+7`` or ``0x7``): the same integers as the
+    JSON form."""
+
+    def _deserialize(self, value: Any, attr: str | None, data: Any, **kwargs: Any) -> Any:
+        if isinstance(value, str):
+            if _DIGITS.fullmatch(value):
+                value = int(value)
+            elif _JSON_NUMBER.fullmatch(value):
+                number = float(value)
+                if not math.isfinite(number) or not number.is_integer():
+                    raise ValidationError("Not an integer.")
+                value = int(number)
+            else:
+                raise ValidationError("Not an integer.")
+        return super()._deserialize(value, attr, data, **kwargs)
 
 
 class StrictBoolean(fields.Field[Any]):
@@ -142,7 +179,11 @@ class BooleanFromText(StrictBoolean):
 
 class Choice(fields.Field[Any]):
     """One of a fixed list of JSON values, compared by type and value (so
-    ``true`` is not ``1`` and ``"1"`` is not ``1``): levels and classes."""
+    ``true`` is not ``1`` and ``"1"`` is not ``1``): levels and classes.
+
+    ``1.0`` is the integer choice ``1``: JSON has one number type (RFC 8259
+    section 6), and JSON Schema's ``enum`` compares numbers by value.
+    """
 
     def __init__(self, choices: Sequence[Any], *, what: str = "value", **kwargs: Any) -> None:
         super().__init__(**kwargs)
@@ -152,12 +193,11 @@ class Choice(fields.Field[Any]):
         _document(self, enum=self.choices)
 
     def _deserialize(self, value: Any, attr: str | None, data: Any, **kwargs: Any) -> Any:
-        try:
-            return self.lookup[(type(value), value)]
-        except (KeyError, TypeError):
+        found = choose(self.lookup, value)
+        if found is MISSING:
             raise ValidationError(
-                f"Unknown {self.what} {value!r}; expected one of {self.choices!r}."
-            ) from None
+                f"Unknown {self.what} {value!r}; expected one of {self.choices!r}.")
+        return found
 
 
 class ChoiceFromText(Choice):
@@ -173,7 +213,48 @@ class ChoiceFromText(Choice):
         return super()._deserialize(value, attr, data, **kwargs)
 
 
+MISSING = object()
+
+
+def choose(lookup: dict[tuple[type, Any], Any], value: Any) -> Any:
+    """The choice ``value`` names in ``lookup`` (keyed by (type, value)), or MISSING."""
+    try:
+        return lookup[(type(value), value)]
+    except KeyError:
+        if type(value) is float and value.is_integer():
+            return lookup.get((int, int(value)), MISSING)
+        return MISSING
+    except TypeError:  # unhashable: a list or an object is never a choice
+        return MISSING
+
+
 def _as_text(choice: Any) -> str:
     if isinstance(choice, bool):
         return "true" if choice else "false"
     return str(choice)
+
+
+class AnyValue(fields.Field[Any]):
+    """A value some model may declare, before the model is known: a finite
+    number, a string of 1 to ``max_length`` characters (a level or a class), or
+    a boolean. Documents the model-independent part of a record."""
+
+    def __init__(self, *, max_length: int, **kwargs: Any) -> None:
+        super().__init__(**kwargs)
+        self.max_length = max_length
+        _document(self, oneOf=[
+            {"type": "number", "minimum": -LARGEST, "maximum": LARGEST},
+            {"type": "string", "minLength": 1, "maxLength": max_length},
+            {"type": "boolean"},
+        ])
+
+    def _deserialize(self, value: Any, attr: str | None, data: Any, **kwargs: Any) -> Any:
+        if isinstance(value, bool):
+            return value
+        if isinstance(value, int | float):
+            _finite(value)
+            return value
+        if isinstance(value, str) and 1 <= len(value) <= self.max_length:
+            return value
+        raise ValidationError(f"Not a number, a string of 1 to {self.max_length} characters "
+                              "or a boolean.")

@@ -3,14 +3,13 @@
 The optional parameters (``explain``, ``version``, ``output``, ``steps`` and the
 SmoothGrad knobs) are one marshmallow schema in two spellings: JSON values in a
 POST body, text in a query string. Feature values are checked by the model's
-own generated schema (``service.web.schemas.records.feature_schema``), so a record
-and a prediction accept exactly the same values. Everything a model needs is
-built once per model (see ``prediction_readers``) and reused by every request.
+compiled rules (``service.web.schemas.rules``), so a record and a prediction
+accept exactly the same values. Everything a model needs is built once per
+model (see ``prediction_readers``) and reused by every request.
 """
 
 from __future__ import annotations
 
-import re
 from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import Any
@@ -29,34 +28,27 @@ from service.usecases.predictions import (
     MAX_SAMPLES,
     MAX_STEPS,
     MIN_STEPS,
+    OPTION_NAMES,
     PredictionOptions,
 )
 from service.web.schemas.fields import (
     Choice,
     ChoiceFromText,
+    IntegerFromText,
     NumberFromText,
     StrictInteger,
     StrictNumber,
 )
-from service.web.schemas.records import feature_schema
+from service.web.schemas.rules import RecordRules, rules_of
 
-OPTION_NAMES = ("explain", "version", "output", "steps", "samples", "noise", "seed")
+# What every model's records share, for the generic document.
+_ANY_MODEL = RecordRules.any_model()
+
 MAX_SEED = 2**32 - 1
-_DIGITS = re.compile(r"[0-9]{1,10}")
 
 
-class IntegerFromText(StrictInteger):
-    """An integer spelled in decimal digits (``7``; not ``7.0``, ``+7`` or ``0x7``)."""
-
-    def _deserialize(self, value: Any, attr: str | None, data: Any, **kwargs: Any) -> Any:
-        if isinstance(value, str):
-            if not _DIGITS.fullmatch(value):
-                raise ValidationError("Not an integer.")
-            value = int(value)
-        return super()._deserialize(value, attr, data, **kwargs)
-
-
-def _options_fields(text: bool) -> dict[str, fields.Field[Any]]:
+def options_fields(text: bool) -> dict[str, fields.Field[Any]]:
+    """The optional parameters, as JSON values (``text=False``) or as text."""
     integer = IntegerFromText if text else StrictInteger
     number = NumberFromText if text else StrictNumber
     return {
@@ -84,13 +76,12 @@ def _options_fields(text: bool) -> dict[str, fields.Field[Any]]:
     }
 
 
-PredictionQuerySchema = Schema.from_dict(_options_fields(text=True), name="PredictionQuery")
-PredictionOptionsSchema = Schema.from_dict(_options_fields(text=False), name="PredictionOptions")
+PredictionQuerySchema = Schema.from_dict(options_fields(text=True), name="PredictionQuery")
+PredictionOptionsSchema = Schema.from_dict(options_fields(text=False), name="PredictionOptions")
 
 
 class PredictionRecordSchema(Schema):
-    features = fields.Dict(keys=fields.String(), required=True, metadata={
-        "description": "One value per declared feature, nothing else."})
+    features = _ANY_MODEL.features_field()
 
 
 class PredictionRequestSchema(PredictionOptionsSchema):  # type: ignore[misc,valid-type]
@@ -248,19 +239,16 @@ def _merge(errors: dict[str, list[str]], messages: Any, prefix: str) -> None:
         errors.setdefault(prefix or "body", []).append(str(messages))
 
 
-def build_readers(spec: Mapping[str, Any]) -> PredictionReaders:
-    """Everything needed to read a prediction request for a model with ``spec``."""
-    classes: list[Any] = list(spec.get("classes") or [])
-    if spec["task"] == "binary" and not classes:
-        classes = [False, True]
-    regression = spec["task"] == "regression"
+def build_readers(rules: RecordRules) -> PredictionReaders:
+    """Everything needed to read a prediction request for a model with these rules."""
+    classes = rules.classes
     return PredictionReaders(
         query_options=PredictionQuerySchema(unknown=RAISE),
         body_options=PredictionOptionsSchema(unknown=RAISE),
-        query_features=feature_schema(spec, text=True),
-        body_features=feature_schema(spec),
-        output_text=None if regression else ChoiceFromText(classes, what="class"),
-        output_json=None if regression else Choice(classes, what="class"),
+        query_features=rules.feature_schema(text=True),
+        body_features=rules.feature_schema(),
+        output_text=None if classes is None else ChoiceFromText(classes, what="class"),
+        output_json=None if classes is None else Choice(classes, what="class"),
     )
 
 
@@ -268,7 +256,7 @@ def prediction_readers(entry: Any) -> PredictionReaders:
     """The readers of a cached model entry, built on first use and kept with it."""
     readers: PredictionReaders | None = entry.derived.get("prediction_readers")
     if readers is None:
-        readers = build_readers(entry.spec)
+        readers = build_readers(rules_of(entry))
         entry.derived["prediction_readers"] = readers
     return readers
 

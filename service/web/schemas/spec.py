@@ -20,20 +20,20 @@ from marshmallow import (
     validates_schema,
 )
 
+import engine
 from service.usecases.common import MODEL_NAME_PATTERN
+from service.usecases.predictions import OPTION_NAMES
 from service.web.schemas.fields import StrictBoolean, StrictInteger, StrictNumber
 
 # Feature and target names become JSON keys, CSV headers, query parameters and
 # parts of error paths (``records.3.features.x``): no dots, no spaces.
 FIELD_NAME_PATTERN = r"[A-Za-z_][A-Za-z0-9_]{0,63}"
-# Query parameters of GET predictions and the CSV key column: a feature may
-# not take these names or it could not be sent.
-RESERVED_FIELD_NAMES = frozenset(
-    {"key", "explain", "version", "output", "steps", "samples", "noise", "seed", "baseline"}
-)
-TASKS = ("binary", "multiclass", "regression")
-FEATURE_TYPES = ("numeric", "categorical", "boolean")
-ACTIVATIONS = ("tanh", "logistic", "relu")
+# Query parameters of GET predictions and the CSV key column (and "baseline",
+# reserved with them from the start): a feature may not take these names or it
+# could not be sent.
+RESERVED_FIELD_NAMES = frozenset({"key", "baseline", *OPTION_NAMES})
+# The longest level or class (a string): what a record's value may then be.
+MAX_VALUE_LENGTH = 200
 MAX_FEATURES = 1000
 MAX_LEVELS = 1000
 MAX_CLASSES = 1000
@@ -42,28 +42,52 @@ MAX_WIDTH = 4096
 
 
 def _field_name(**kwargs: Any) -> fields.String:
+    reserved = sorted(RESERVED_FIELD_NAMES)
     return fields.String(
         validate=[
             validate.Regexp(f"^{FIELD_NAME_PATTERN}$", error="Use letters, digits and _ "
                             "(not starting with a digit), at most 64 characters."),
-            validate.NoneOf(sorted(RESERVED_FIELD_NAMES), error="This name is reserved."),
+            validate.NoneOf(reserved, error="This name is reserved."),
         ],
+        metadata={"not": {"enum": reserved}},
         **kwargs,
     )
+
+
+def _only(kind: str, *, requires: tuple[str, ...] = (), refuses: tuple[str, ...] = ()
+          ) -> dict[str, Any]:
+    """JSON Schema: a feature of type ``kind`` has ``requires`` and none of ``refuses``."""
+    variant: dict[str, Any] = {"properties": {"type": {"enum": [kind]}}}
+    if requires:
+        variant["required"] = list(requires)
+    if refuses:
+        variant["not"] = {"anyOf": [{"required": [key]} for key in refuses]}
+    return variant
 
 
 class FeatureSchema(Schema):
     class Meta:
         unknown = RAISE
 
+    # What ``_fits_type`` checks, as the document states it (min < max it cannot state).
+    DOCUMENTED_RULES = {
+        "description": "A declared feature. A numeric one may give min < max and a unit; a "
+        "categorical one lists its distinct levels.",
+        "oneOf": [
+            _only("numeric", refuses=("levels",)),
+            _only("categorical", requires=("levels",), refuses=("min", "max", "unit")),
+            _only("boolean", refuses=("levels", "min", "max", "unit")),
+        ],
+    }
+
     name = _field_name(required=True)
-    type = fields.String(required=True, validate=validate.OneOf(FEATURE_TYPES))
+    type = fields.String(required=True, validate=validate.OneOf(engine.FEATURE_TYPES))
     min = StrictNumber()
     max = StrictNumber()
     unit = fields.String(validate=validate.Length(max=32))
     levels = fields.List(
-        fields.String(validate=validate.Length(min=1, max=200)),
-        validate=validate.Length(min=1, max=MAX_LEVELS),
+        fields.String(validate=validate.Length(min=1, max=MAX_VALUE_LENGTH)),
+        validate=validate.Length(min=1, max=MAX_LEVELS), metadata={"uniqueItems": True},
     )
 
     @validates_schema
@@ -92,14 +116,16 @@ class TrainingSchema(Schema):
     class Meta:
         unknown = RAISE
 
-    optimizer = fields.String(validate=validate.OneOf(("sgd", "adam")))
+    optimizer = fields.String(validate=validate.OneOf(engine.OPTIMIZERS))
     learning_rate = StrictNumber(minimum=0, exclusive_minimum=True, maximum=10)
     momentum = StrictNumber(minimum=0, maximum=0.999999)
     nesterov = StrictBoolean()
     l2 = StrictNumber(minimum=0, maximum=10)
     clip_norm = StrictNumber(minimum=0, exclusive_minimum=True, allow_none=True)
-    lr_schedule = fields.String(validate=validate.OneOf(("constant", "invscaling")))
-    power_t = StrictNumber(minimum=0, maximum=10)
+    lr_schedule = fields.String(validate=validate.OneOf(engine.LR_SCHEDULES), metadata={
+        "description": "`inverse_power`: the rate at step t = 1, 2, ... is "
+        "learning_rate / t ** decay_exponent."})
+    decay_exponent = StrictNumber(minimum=0, maximum=10)
     batch_size = StrictInteger(minimum=1, maximum=65_536)
     max_epochs = StrictInteger(minimum=1, maximum=100_000)
     patience = StrictInteger(minimum=1, maximum=100_000)
@@ -109,14 +135,55 @@ class TrainingSchema(Schema):
     holdout_fraction = StrictNumber(minimum=0, maximum=0.9)
     checkpoint_every = StrictInteger(minimum=1, maximum=100_000_000)
 
+    def handle_error(self, error: ValidationError, data: Any, **kwargs: Any) -> None:
+        """Name the new spelling when a request uses an option's old one."""
+        messages = error.messages
+        if not isinstance(data, dict) or not isinstance(messages, dict):
+            raise error
+        renamed = dict(messages)
+        for old, new in engine.LEGACY_TRAINING_KEYS.items():
+            if old in data and old in renamed:
+                renamed[old] = [f"Spelled {new} now."]
+        schedule = data.get("lr_schedule")
+        if isinstance(schedule, str) and schedule in engine.LEGACY_LR_SCHEDULES:
+            renamed["lr_schedule"] = [
+                f"Spelled {engine.LEGACY_LR_SCHEDULES[schedule]!r} now."]
+        raise ValidationError(renamed, data=error.data, valid_data=error.valid_data)
+
+
+# A class is a string, an integer or a boolean; all classes of a model are of
+# one of these types. As JSON Schema: the ``items`` of one of these arrays.
+CLASS_TYPES: list[dict[str, Any]] = [
+    {"type": "string", "minLength": 1, "maxLength": MAX_VALUE_LENGTH},
+    {"type": "integer"},
+    {"type": "boolean"},
+]
+
 
 class ClassLabel(fields.Field[Any]):
-    """A class: a string, an integer or a boolean."""
+    """A class: a string, an integer (``2.0`` is the integer 2: JSON has one
+    number type) or a boolean."""
+
+    def __init__(self, **kwargs: Any) -> None:
+        super().__init__(**kwargs)
+        self.metadata = {"oneOf": CLASS_TYPES, **self.metadata}
 
     def _deserialize(self, value: Any, attr: str | None, data: Any, **kwargs: Any) -> Any:
-        if isinstance(value, str) and 1 <= len(value) <= 200 or isinstance(value, bool | int):
+        if isinstance(value, float) and value.is_integer():
+            return int(value)
+        if (isinstance(value, str) and 1 <= len(value) <= MAX_VALUE_LENGTH
+                or isinstance(value, bool | int)):
             return value
-        raise ValidationError("A class is a string (1 to 200 characters), integer or boolean.")
+        raise ValidationError(
+            f"A class is a string (1 to {MAX_VALUE_LENGTH} characters), integer or boolean.")
+
+
+def _task(task: str, **properties: Any) -> dict[str, Any]:
+    """JSON Schema: what a spec of ``task`` may say of ``properties``."""
+    variant: dict[str, Any] = {"properties": {"task": {"enum": [task]}, **properties}}
+    if task == "multiclass":
+        variant["required"] = ["classes"]
+    return variant
 
 
 class ModelSpecSchema(Schema):
@@ -124,6 +191,22 @@ class ModelSpecSchema(Schema):
 
     class Meta:
         unknown = RAISE
+
+    # What ``_consistent`` checks, as the document states it; feature names that
+    # differ and a target that is not one of them it can only say in words.
+    DOCUMENTED_RULES = {
+        "description": "A model spec. Feature names are distinct and the target is none "
+        "of them. Classes: a binary model has two (default [false, true]), a multiclass "
+        "model lists them, a regression model has none; only a binary model chooses its "
+        "loss.",
+        "oneOf": [
+            _task("binary", classes={"maxItems": 2}),
+            _task("multiclass", classes={"type": "array"},
+                  loss={"enum": list(engine.LOSSES["multiclass"])}),
+            _task("regression", classes={"type": ["array", "null"], "maxItems": 0},
+                  loss={"enum": list(engine.LOSSES["regression"])}),
+        ],
+    }
 
     name = fields.String(
         required=True,
@@ -133,10 +216,11 @@ class ModelSpecSchema(Schema):
             "at most 64 characters.",
         ),
     )
-    task = fields.String(required=True, validate=validate.OneOf(TASKS))
+    task = fields.String(required=True, validate=validate.OneOf(engine.TASKS))
     target = _field_name(required=True)
     classes = fields.List(
-        ClassLabel(), allow_none=True, validate=validate.Length(min=2, max=MAX_CLASSES)
+        ClassLabel(), allow_none=True, validate=validate.Length(min=2, max=MAX_CLASSES),
+        metadata={"uniqueItems": True, "anyOf": [{"items": kind} for kind in CLASS_TYPES]},
     )
     features = fields.List(
         fields.Nested(FeatureSchema),
@@ -146,10 +230,10 @@ class ModelSpecSchema(Schema):
     hidden_layers = fields.List(
         StrictInteger(minimum=1, maximum=MAX_WIDTH), validate=validate.Length(max=MAX_LAYERS)
     )
-    activation = fields.String(validate=validate.OneOf(ACTIVATIONS))
-    loss = fields.String(validate=validate.OneOf(("cross_entropy", "squared_error")))
+    activation = fields.String(validate=validate.OneOf(engine.ACTIVATIONS))
+    loss = fields.String(validate=validate.OneOf(engine.LOSSES["binary"]))
     training = fields.Nested(TrainingSchema)
-    promotion = fields.String(validate=validate.OneOf(("auto", "manual")))
+    promotion = fields.String(validate=validate.OneOf(engine.PROMOTIONS))
 
     @validates_schema
     def _consistent(self, data: dict[str, Any], **kwargs: Any) -> None:
@@ -168,9 +252,7 @@ class ModelSpecSchema(Schema):
                 errors.setdefault("classes", []).append("Classes must all be of one type.")
             elif len(set(classes)) != len(classes):
                 errors.setdefault("classes", []).append("Classes must be distinct.")
-        if "loss" in data and task != "binary" and data["loss"] != (
-            "squared_error" if task == "regression" else "cross_entropy"
-        ):
+        if "loss" in data and task in engine.LOSSES and data["loss"] not in engine.LOSSES[task]:
             errors["loss"] = ["Only a binary model chooses its loss."]
         names = [f.get("name") for f in data.get("features", [])]
         duplicates = sorted(n for n, count in Counter(names).items() if count > 1)

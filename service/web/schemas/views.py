@@ -6,9 +6,10 @@ out (flask-smorest dumps each view's return value through its schema).
 
 from __future__ import annotations
 
-from marshmallow import RAISE, Schema, fields, validate
+from marshmallow import RAISE, Schema, fields
 
 from service.web.schemas.fields import StrictBoolean
+from service.web.schemas.rules import RecordRules, batch_schema_class
 from service.web.schemas.spec import ModelSpecSchema
 
 
@@ -40,20 +41,21 @@ class ModelListSchema(Schema):
     models = fields.List(fields.Nested(ModelSchema), required=True)
 
 
-class RecordDocSchema(Schema):
-    """The generic record shape; each model validates its own fields."""
-
-    key = fields.String(metadata={"description": "Optional, unique per model."})
-    features = fields.Dict(
-        keys=fields.String(), required=True,
-        metadata={"description": "One value per declared feature, nothing else."},
-    )
-    label = fields.Raw(required=True, metadata={"description": "A class, or a number."})
+# The ingest body as the document states it: generated from the rules every
+# model shares (each model publishes its own at GET /v1/models/{name}/schema).
+RecordBatchSchema = batch_schema_class(fields.Nested(RecordRules.any_model().record_schema()))
 
 
-class RecordBatchDocSchema(Schema):
-    records = fields.List(fields.Nested(RecordDocSchema), required=True,
-                          validate=validate.Length(min=1))  # an empty batch is refused
+class ModelDocumentsSchema(Schema):
+    """GET /v1/models/{name}/schema: one model's own JSON Schema documents."""
+
+    model = fields.String(required=True)
+    record = fields.Dict(required=True, metadata={
+        "description": "JSON Schema 2020-12 of one labelled record of this model."})
+    prediction_request = fields.Dict(required=True, metadata={
+        "description": "JSON Schema 2020-12 of the body of POST .../predictions."})
+    outcome = fields.Dict(required=True, metadata={
+        "description": "JSON Schema 2020-12 of an outcome: a case key and its label."})
 
 
 class IngestResultSchema(Schema):

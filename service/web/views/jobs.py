@@ -15,7 +15,7 @@ blueprint = Blueprint("jobs", __name__, url_prefix="/v1", description="Retrainin
 
 @blueprint.route("/models/<name>/retrain", methods=["POST"])
 @requires("admin")
-@blueprint.arguments(RetrainRequestSchema)
+@blueprint.arguments(RetrainRequestSchema, required=False)
 @blueprint.response(202, JobEnvelopeSchema, headers={"Location": {"schema": {"type": "string"}}})
 def retrain(body: dict[str, Any], name: str) -> tuple[dict[str, Any], dict[str, str]]:
     """Queue a full retrain; follow the Location header to watch it."""

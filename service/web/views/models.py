@@ -1,14 +1,19 @@
-"""/v1/models: create (admin), list and show (predict)."""
+"""/v1/models: create (admin), list, show and publish a model's own schema (predict)."""
 
 from __future__ import annotations
 
 from typing import Any
 
+from flask import current_app
+
 from service.usecases import models
+from service.usecases.predictions import find_model
 from service.web.auth import requires
-from service.web.extensions import get_database
+from service.web.extensions import get_database, get_version_cache
+from service.web.schemas.json_schema import limits, model_documents
+from service.web.schemas.rules import rules_of
 from service.web.schemas.spec import ModelSpecSchema
-from service.web.schemas.views import ModelListSchema, ModelSchema
+from service.web.schemas.views import ModelDocumentsSchema, ModelListSchema, ModelSchema
 from service.web.views.base import Blueprint
 
 blueprint = Blueprint("models", __name__, url_prefix="/v1/models", description="Models.")
@@ -37,3 +42,17 @@ def list_models() -> dict[str, Any]:
 def get_model(name: str) -> dict[str, Any]:
     """One model: spec, active version, record counts and trainer position."""
     return models.get_model(get_database(), name)
+
+
+@blueprint.route("/<name>/schema", methods=["GET"])
+@requires("predict")
+@blueprint.response(200, ModelDocumentsSchema)
+def get_model_schema(name: str) -> dict[str, Any]:
+    """JSON Schema 2020-12 documents of this model's record, prediction request and
+    outcome, generated from the rules the API checks them with."""
+    entry = find_model(get_version_cache(), name)
+    documents: dict[str, Any] | None = entry.derived.get("json_schemas")
+    if documents is None:
+        documents = model_documents(entry.name, rules_of(entry), **limits(current_app.config))
+        entry.derived["json_schemas"] = documents
+    return documents

@@ -7,16 +7,14 @@ built once) and dumps its answer straight to JSON.
 
 from __future__ import annotations
 
-from typing import Any, cast
+from typing import Any
 
 import orjson
-from flask import Flask, Response, current_app, request
-from flask.blueprints import BlueprintSetupState
+from flask import Response, current_app, request
 
 from service.usecases.predictions import find_model, predict
-from service.versions.cache import VersionCache
 from service.web.auth import requires
-from service.web.extensions import get_database
+from service.web.extensions import get_version_cache
 from service.web.schemas.predictions import (
     PredictionBatchSchema,
     PredictionQuerySchema,
@@ -29,8 +27,6 @@ from service.web.views.base import Blueprint, read_json_body
 blueprint = Blueprint(
     "predictions", __name__, url_prefix="/v1/models", description="Predictions."
 )
-
-CACHE_KEY = "keelson.version_cache"
 
 
 FEATURE_PARAMETERS = {
@@ -49,23 +45,6 @@ BATCH_BODY = {
 }
 
 
-@blueprint.record_once
-def _make_cache(state: BlueprintSetupState) -> None:
-    # Made with the app, so a bad setting fails create_app, not the first request.
-    app = cast(Flask, state.app)
-    app.extensions[CACHE_KEY] = VersionCache(
-        get_database(app).read,
-        max_age=float(app.config["KEELSON_ACTIVE_STALENESS_SECONDS"]),
-        capacity=int(app.config["KEELSON_VERSION_CACHE_SIZE"]),
-    )
-
-
-def version_cache(app: Flask | None = None) -> VersionCache:
-    """The app's version cache (one per app, shared by its threads)."""
-    cache: VersionCache = (app if app is not None else current_app).extensions[CACHE_KEY]
-    return cache
-
-
 def _json(body: dict[str, Any]) -> Response:
     # Dumped here rather than through the answer schema (the schema documents
     # this exact shape; tests/service/test_predictions_api.py holds the two
@@ -81,7 +60,7 @@ def _json(body: dict[str, Any]) -> Response:
 @blueprint.response(200, PredictionSchema)
 def get_prediction(name: str) -> Response:
     """Score one record given as query parameters, and explain the score."""
-    cache = version_cache()
+    cache = get_version_cache()
     entry = find_model(cache, name)
     features, options = prediction_readers(entry).read_query(request.args)
     number, (answer,) = predict(cache, entry, (features,), options)
@@ -95,7 +74,7 @@ def get_prediction(name: str) -> Response:
 @blueprint.response(200, PredictionBatchSchema)
 def post_predictions(name: str) -> Response:
     """Score a batch of records, in input order, each with its explanation."""
-    cache = version_cache()
+    cache = get_version_cache()
     entry = find_model(cache, name)
     body = read_json_body(request)
     limit = int(current_app.config["KEELSON_MAX_PREDICTION_BATCH"])
