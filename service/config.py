@@ -185,6 +185,14 @@ SETTINGS: tuple[Setting, ...] = (
             "seconds in-flight requests get after SIGTERM"),
     Setting("KEELSON_KEEPALIVE", SERVER, 5, whole_number,
             "seconds an idle keep-alive connection stays open"),
+    Setting("KEELSON_HEADER_TIMEOUT", SERVER, 10.0, positive_number,
+            "seconds a client has to send a request head, from its first byte (408 after)"),
+    Setting("KEELSON_BODY_TIMEOUT", SERVER, 60.0, positive_number,
+            "seconds a client has to send a body once its head is in (408 after)"),
+    Setting("KEELSON_SEND_TIMEOUT", SERVER, 30.0, positive_number,
+            "seconds a client has to take an answer before the connection is closed"),
+    Setting("KEELSON_MAX_HEAD_BYTES", SERVER, 32 * 1024, positive_whole_number,
+            "largest request head in bytes (431 beyond)"),
     Setting("KEELSON_REUSE_PORT", SERVER, True, flag,
             "`1`: each API process listens on its own socket (`SO_REUSEPORT`), so the "
             "kernel spreads connections evenly, and `keelson serve` refuses an address "

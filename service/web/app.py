@@ -11,8 +11,10 @@ from flask_smorest.spec.plugins import integerconverter2paramschema
 from werkzeug.routing import IntegerConverter
 
 from service.config import load_config
-from service.web import auth, observability, problems
+from service.web import auth, observability, paths, problems
+from service.web.body_limit import BoundedRequest
 from service.web.extensions import init_database, init_version_cache
+from service.web.headers import SECURITY_HEADERS
 from service.web.openapi import DocumentingPlugin, openapi_document
 from service.web.schemas.views import ProblemSchema
 from service.web.views import jobs, models, ops, predictions, records, versions
@@ -27,13 +29,6 @@ BLUEPRINTS = [
     jobs.blueprint,
 ]
 
-SECURITY_HEADERS = {
-    "X-Content-Type-Options": "nosniff",
-    "X-Frame-Options": "DENY",
-    "Referrer-Policy": "no-referrer",
-    "Content-Security-Policy": "default-src 'none'; frame-ancestors 'none'",
-    "Cache-Control": "no-store",
-}
 # The largest id or number a path can name: job ids and version numbers are
 # 32-bit INTEGER columns (PostgreSQL refuses a larger parameter: it was a 500).
 MAX_PATH_INTEGER = 2**31 - 1
@@ -66,6 +61,8 @@ class Api(flask_smorest.Api):  # type: ignore[misc]  # flask-smorest ships no ty
 def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     """Build the API app; ``config`` overrides the environment (tests pass one)."""
     app = Flask("keelson", static_folder=None)
+    app.request_class = BoundedRequest
+    paths.init_app(app)
     app.url_map.converters["int"] = BoundedIntegerConverter
     settings = load_config(config)
     app.config.update(settings)

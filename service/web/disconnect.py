@@ -21,10 +21,10 @@ from typing import Any
 _PEEK = socket.MSG_PEEK | socket.MSG_DONTWAIT
 
 
-def connection_closed(sock: socket.socket) -> bool:
+def connection_closed(sock: Any) -> bool:
     """Whether the peer has closed or reset ``sock`` (nothing is read from it)."""
     try:
-        return sock.recv(1, _PEEK) == b""
+        return bool(sock.recv(1, _PEEK) == b"")
     except (BlockingIOError, InterruptedError):
         return False  # open, nothing waiting: the client is waiting for us
     except OSError:
@@ -35,6 +35,8 @@ def client_gone_probe(environ: Mapping[str, Any]) -> Callable[[], bool] | None:
     """A function telling whether this request's client has gone, or None
     when the server does not say which socket the client is on."""
     sock = environ.get("gunicorn.socket")
-    if not isinstance(sock, socket.socket):
+    # A socket, or what Keelson's own worker class hands a thread in its place
+    # (service/web/transport/connection.py: it passes recv to the socket).
+    if not callable(getattr(sock, "recv", None)):
         return None
     return lambda: connection_closed(sock)

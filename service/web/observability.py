@@ -39,12 +39,21 @@ from pythonjsonlogger.json import JsonFormatter
 
 from service.config import read_setting
 from service.web.auth import public
+from service.web.redaction import redacted_query
 
 REQUEST_ID_HEADER = "X-Request-Id"
 # A caller's id is echoed only when it is short and plain, so it cannot smuggle
 # newlines or markup into logs and headers.
 _SANE_REQUEST_ID = re.compile(r"^[A-Za-z0-9._:-]{1,128}$")
 _UNMATCHED_ROUTE = "<unmatched>"
+# Every label value is from a closed set, whatever clients send: a method
+# outside the standard ones (RFC 9110 section 9, and PATCH from RFC 5789) is
+# counted as OTHER, a path as its route template or <unmatched>, a status as
+# the code the app chose. One label value per random method made /metrics
+# grow without bound.
+KNOWN_METHODS = frozenset(
+    ("GET", "HEAD", "POST", "PUT", "DELETE", "CONNECT", "OPTIONS", "TRACE", "PATCH"))
+OTHER_METHOD = "OTHER"
 _STARTED = "keelson.request_started"
 _REQUEST_ID = "keelson.request_id"
 _log = logging.getLogger("keelson.observability")
@@ -72,6 +81,15 @@ def request_metrics() -> tuple[Counter, Histogram]:
     return requests, latency
 
 
+@functools.cache
+def transport_refusals() -> Counter:
+    """Requests the server answered itself, before the app: unparsable, too
+    large or too slow (service.web.transport), by status code."""
+    return Counter("keelson_http_refused_total",
+                   "Requests the server answered itself before the app (unparsable, too "
+                   "large or too slow), by status code.", ["status"])
+
+
 def init_app(app: Flask) -> None:
     """Bind metrics, request ids and the /metrics route to ``app``."""
     folder = multiprocess_dir()
@@ -91,6 +109,8 @@ def init_app(app: Flask) -> None:
         rule = current.url_rule
         route = rule.rule if rule is not None else _UNMATCHED_ROUTE
         method, status = current.method, response.status_code
+        if method not in KNOWN_METHODS:
+            method = OTHER_METHOD
         try:
             counter = counters.get((method, route, status))
             if counter is None:
@@ -141,10 +161,13 @@ def _request_id_of(environ: dict[str, Any]) -> str:
     """The id of the request of ``environ``, fixed on first use."""
     request_id: str | None = environ.get(_REQUEST_ID)
     if request_id is None:
-        given = environ.get("HTTP_X_REQUEST_ID", "")
-        request_id = environ[_REQUEST_ID] = (
-            given if given and _SANE_REQUEST_ID.match(given) else _new_request_id())
+        request_id = environ[_REQUEST_ID] = request_id_for(environ.get("HTTP_X_REQUEST_ID"))
     return request_id
+
+
+def request_id_for(given: str | None) -> str:
+    """The caller's id when it sent a sane one, else a new one."""
+    return given if given and _SANE_REQUEST_ID.match(given) else _new_request_id()
 
 
 def current_request_id() -> str | None:
@@ -194,26 +217,20 @@ class RequestIdFilter(logging.Filter):
         return True
 
 
-# RFC 6750 section 2.3 lets clients put a bearer token in the query string as
-# access_token; Keelson does not accept it there, but a client that tries must
-# not leave its token in the access log.
-_QUERY_SECRET = re.compile(r"(?i)((?:^|[?&])(?:access_)?token=)[^&\s]*")
-
-
-def _redacted(text: Any) -> Any:
-    return _QUERY_SECRET.sub(r"\1[redacted]", text) if isinstance(text, str) else text
-
-
 class AccessFields(logging.Filter):
     """Turns gunicorn's access-log atoms into JSON fields (method, path, status,
-    duration, request id) instead of one pre-formatted string; tokens sent in
+    duration, request id) instead of one pre-formatted string; secrets sent in
     the query string are redacted from the line and the fields."""
 
     def filter(self, record: logging.LogRecord) -> bool:
         atoms = record.args if isinstance(record.args, Mapping) else {}
-        if atoms and "token=" in str(atoms.get("q", "")).lower():
-            atoms = {**atoms, "q": _redacted(atoms.get("q")), "r": _redacted(atoms.get("r"))}
-            record.args = atoms
+        query = atoms.get("q")
+        if query and isinstance(query, str):
+            safe = redacted_query(query)
+            if safe != query:
+                line = str(atoms.get("r", ""))
+                atoms = {**atoms, "q": safe, "r": line.replace(f"?{query}", f"?{safe}", 1)}
+                record.args = atoms
         if atoms:
             record.remote_addr = atoms.get("h")
             record.method = atoms.get("m")

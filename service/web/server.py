@@ -46,13 +46,19 @@ _prometheus_values.ValueClass = _prometheus_values.get_value_class()  # type: ig
 from gunicorn.glogging import Logger  # noqa: E402
 
 from service.web.observability import logging_config  # noqa: E402
+from service.web.transport.limits import TransportLimits  # noqa: E402
+from service.web.transport.worker import BufferingWorker  # noqa: E402
 
 bind = [f"{_setting('KEELSON_HOST')}:{_setting('KEELSON_PORT')}"]
 workers = _setting("KEELSON_WEB_WORKERS")
-# Threads let one worker keep connections alive and overlap database waits;
-# NumPy releases the GIL in its inner loops.
-worker_class = "gthread"
+# gthread, with every request read whole by the worker's event loop before a
+# thread handles it (docs/transport.md): slow or stalled clients hold no
+# thread. Threads let one worker overlap database waits; NumPy releases the
+# GIL in its inner loops.
+worker_class = BufferingWorker.configured(TransportLimits.from_settings(_setting))
 threads = _setting("KEELSON_THREADS")
+# Answers go through the worker's buffered writes, never os.sendfile.
+sendfile = False
 timeout = _setting("KEELSON_TIMEOUT")
 graceful_timeout = _setting("KEELSON_GRACEFUL_TIMEOUT")
 keepalive = _setting("KEELSON_KEEPALIVE")

@@ -105,8 +105,13 @@ def test_tokens_never_reach_the_server_logs(sqlite_url: str, tmp_path: Path) -> 
                                                                         "label": True}]}),
                 ("POST", "/v1/models/pump-risk/records", {"records": [{"bad": 1}]}),
                 ("GET", "/v1/models/pump-risk/predictions?x=1", None),
-                # RFC 6750 section 2.3 spelling; not accepted, and not logged either.
+                # RFC 6750 section 2.3 spelling; not accepted, and not logged either,
+                # whatever the spelling of the name.
                 ("GET", f"/v1/models?access_token={token}", None),
+                *[("GET", f"/v1/models?x=1&{name}={token}", None) for name in (
+                    "access%5Ftoken", "access%255Ftoken", "api_key", "Api-Key", "key",
+                    "token", "auth", "bearer", "authorization")],
+                ("GET", f"/v1/models/pump-risk/predictions?x=1;token={token}", None),
                 ("GET", "/nowhere", None),
             ]:
                 assert client.request(method, path, body)[0] < 500
