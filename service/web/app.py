@@ -83,6 +83,7 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     api = Api(app, spec_kwargs={"info": {"description": "Keelson HTTP API (v1)."},
                                 "marshmallow_plugin": DocumentingPlugin()})
     api.register_converter(BoundedIntegerConverter, integerconverter2paramschema)
+    api.register_converter(paths.ModelNameConverter, paths.model_name_parameter)
     api.spec.components.security_scheme("bearer", {"type": "http", "scheme": "bearer"})
     for blueprint in BLUEPRINTS:
         api.register_blueprint(blueprint)

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import logging
+import re
 from pathlib import Path
 
 import pytest
@@ -47,7 +48,7 @@ def test_the_openapi_document_validates_and_covers_every_route(api: ApiClient, a
     validate(doc)  # OpenAPI 3.0 rules, checked by openapi-spec-validator
     assert doc["openapi"].startswith("3.")
     rules = {
-        rule.rule.replace("<int:", "<").replace("<", "{").replace(">", "}")
+        re.sub(r"<(?:[^:<>]+:)?([^<>]+)>", r"{\1}", rule.rule)
         for rule in app.url_map.iter_rules()
         if rule.rule not in ("/metrics",)
     }

@@ -13,7 +13,7 @@ from service.web.views.base import Blueprint
 blueprint = Blueprint("jobs", __name__, url_prefix="/v1", description="Retraining jobs.")
 
 
-@blueprint.route("/models/<name>/retrain", methods=["POST"])
+@blueprint.route("/models/<model:name>/retrain", methods=["POST"])
 @requires("admin")
 @blueprint.arguments(RetrainRequestSchema, required=False)
 @blueprint.response(202, JobEnvelopeSchema, headers={"Location": {"schema": {"type": "string"}}})

@@ -36,7 +36,7 @@ def list_models() -> dict[str, Any]:
     return {"models": models.list_models(get_database())}
 
 
-@blueprint.route("/<name>", methods=["GET"])
+@blueprint.route("/<model:name>", methods=["GET"])
 @requires("predict")
 @blueprint.response(200, ModelSchema)
 def get_model(name: str) -> dict[str, Any]:
@@ -44,7 +44,7 @@ def get_model(name: str) -> dict[str, Any]:
     return models.get_model(get_database(), name)
 
 
-@blueprint.route("/<name>/schema", methods=["GET"])
+@blueprint.route("/<model:name>/schema", methods=["GET"])
 @requires("predict")
 @blueprint.response(200, ModelDocumentsSchema)
 def get_model_schema(name: str) -> dict[str, Any]:

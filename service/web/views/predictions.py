@@ -65,7 +65,7 @@ def _limits(started: float) -> PredictionLimits:
                             started=started, client_gone=client_gone_probe(request.environ))
 
 
-@blueprint.route("/<name>/predictions", methods=["GET"])
+@blueprint.route("/<model:name>/predictions", methods=["GET"])
 @requires("predict")
 @blueprint.doc(parameters=[FEATURE_PARAMETERS, {"in": "query", "schema": PredictionQuerySchema}])
 @blueprint.response(200, PredictionSchema)
@@ -84,7 +84,7 @@ def get_prediction(name: str) -> Response:
     return _json({"model": entry.name, "version": number, **answer})
 
 
-@blueprint.route("/<name>/predictions", methods=["POST"])
+@blueprint.route("/<model:name>/predictions", methods=["POST"])
 @requires("predict")
 @blueprint.doc(requestBody=BATCH_BODY,
                parameters=[{"in": "query", "schema": PredictionQuerySchema}])

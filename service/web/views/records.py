@@ -41,7 +41,7 @@ REQUEST_BODY = {
 }
 
 
-@blueprint.route("/<name>/records", methods=["POST"])
+@blueprint.route("/<model:name>/records", methods=["POST"])
 @requires("ingest")
 @blueprint.doc(requestBody=REQUEST_BODY)
 @blueprint.response(201, IngestResultSchema)

@@ -13,7 +13,7 @@ from service.web.views.base import Blueprint
 blueprint = Blueprint("versions", __name__, url_prefix="/v1/models", description="Versions.")
 
 
-@blueprint.route("/<name>/versions", methods=["GET"])
+@blueprint.route("/<model:name>/versions", methods=["GET"])
 @requires("predict")
 @blueprint.response(200, VersionListSchema)
 def list_versions(name: str) -> dict[str, Any]:
@@ -21,7 +21,7 @@ def list_versions(name: str) -> dict[str, Any]:
     return {"versions": versions.list_versions(get_database(), name)}
 
 
-@blueprint.route("/<name>/versions/<int:number>", methods=["GET"])
+@blueprint.route("/<model:name>/versions/<int:number>", methods=["GET"])
 @requires("predict")
 @blueprint.response(200, VersionSchema)
 def get_version(name: str, number: int) -> dict[str, Any]:
@@ -29,7 +29,7 @@ def get_version(name: str, number: int) -> dict[str, Any]:
     return versions.get_version(get_database(), name, number)
 
 
-@blueprint.route("/<name>/versions/<int:number>/promote", methods=["POST"])
+@blueprint.route("/<model:name>/versions/<int:number>/promote", methods=["POST"])
 @requires("admin")
 @blueprint.response(200, VersionSchema)
 def promote_version(name: str, number: int) -> dict[str, Any]:
