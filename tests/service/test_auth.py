@@ -54,6 +54,23 @@ def test_every_route_is_in_the_scope_table_and_every_row_is_a_route(app: Flask) 
     assert set(table.values()) <= {NO_TOKEN, *SCOPES}
 
 
+def test_the_openapi_document_states_the_documented_scopes(api: ApiClient) -> None:
+    """Each operation's ``x-scope`` and ``security`` (OpenAPI 3.0 Security
+    Requirement Object: an empty list is no authentication) say what the table says."""
+    doc = api.request("GET", "/openapi.json", 200, token=None)
+    stated = {}
+    for template, operations in doc["paths"].items():
+        for method, operation in operations.items():
+            if method == "parameters":  # shared by the path's operations, not one
+                continue
+            needs = operation.get("x-scope", NO_TOKEN)
+            assert (needs == NO_TOKEN) == (operation["security"] == []), (method, template)
+            stated[route_key(method.upper(), template)] = needs
+    table = documented_scopes()
+    # /metrics is served beside the API, not described in its document.
+    assert stated == {key: scope for key, scope in table.items() if key[1] != "/metrics"}
+
+
 @pytest.fixture
 def matrix_api(api: ApiClient) -> ApiClient:
     create_model(api)
