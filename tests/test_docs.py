@@ -1,5 +1,6 @@
 """The project's own documents point at things that exist, and the HTTP
-contract's scope table is the one the app enforces.
+contract's scope table is the one the views declare (tests/service/test_auth.py
+checks that the app behaves so).
 
 Our own contract (docs/http-api.md, "Auth and scopes"); no outside source.
 """
@@ -12,6 +13,7 @@ from pathlib import Path
 from flask import Flask
 
 from service.web import auth
+from tests.contract import NO_TOKEN, documented_scopes, route_key
 
 ROOT = Path(__file__).resolve().parents[1]
 DOCUMENTS = [ROOT / "README.md", ROOT / "DEVELOPERS.md", *sorted((ROOT / "docs").glob("*.md"))]
@@ -33,31 +35,18 @@ def test_every_repository_path_a_document_names_exists() -> None:
     assert missing == {}
 
 
-def _documented_scopes() -> dict[tuple[str, str], str]:
-    text = (ROOT / "docs" / "http-api.md").read_text()
-    section = text[text.index("## Auth and scopes"):text.index("## Errors")]
-    table: dict[tuple[str, str], str] = {}
-    for line in section.splitlines():
-        if not line.startswith("| `"):
-            continue
-        routes, scope = (cell.strip() for cell in line.strip().strip("|").split("|"))
-        for route in re.findall(r"`([A-Z]+) ([^`]+)`", routes):
-            table[(route[0], re.sub(r"\{[^}]+\}", "{}", route[1]))] = scope
-    return table
-
-
-def _enforced_scopes(app: Flask) -> dict[tuple[str, str], str]:
-    enforced: dict[tuple[str, str], str] = {}
+def _declared_scopes(app: Flask) -> dict[tuple[str, str], str]:
+    declared: dict[tuple[str, str], str] = {}
     for rule in app.url_map.iter_rules():
         scope = auth.declared_scope(app.view_functions.get(rule.endpoint))
-        path = re.sub(r"<[^>]+>", "{}", rule.rule)
         for method in sorted((rule.methods or set()) - {"HEAD", "OPTIONS"}):
-            enforced[(method, path)] = "none" if scope == auth.PUBLIC else str(scope)
-    return enforced
+            declared[route_key(method, rule.rule)] = (
+                NO_TOKEN if scope == auth.PUBLIC else str(scope))
+    return declared
 
 
-def test_the_documented_scopes_are_the_enforced_ones(sqlite_url: str) -> None:
+def test_the_documented_scopes_are_the_declared_ones(sqlite_url: str) -> None:
     from service.web.app import create_app
 
     app = create_app({"KEELSON_DATABASE_URL": sqlite_url})
-    assert _documented_scopes() == _enforced_scopes(app)
+    assert documented_scopes() == _declared_scopes(app)

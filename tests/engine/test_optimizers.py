@@ -65,8 +65,41 @@ def test_adam_matches_torch_adam():
     np.testing.assert_allclose(opt.params, tw.detach().numpy(), rtol=1e-12, atol=1e-14)
 
 
+def torch_clipped(gradient: np.ndarray, max_norm: float) -> np.ndarray:
+    """The gradient after torch.nn.utils.clip_grad_norm_ (reference library), in float64."""
+    tensor = torch.zeros(gradient.size, dtype=torch.float64, requires_grad=True)
+    tensor.grad = torch.tensor(gradient, dtype=torch.float64)
+    torch.nn.utils.clip_grad_norm_([tensor], max_norm)
+    return tensor.grad.numpy()
+
+
+# clip_grad_norm_ scales by max_norm / (norm + 1e-6) (PyTorch 2.13 source,
+# torch/nn/utils/clip_grad.py), we by max_norm / norm: the two differ by the
+# factor 1 + 1e-6 / norm, not by rounding (float64 on both sides). So a clipped
+# gradient agrees to a relative 1e-6 / norm and no closer (30 -> 2.99999994 at
+# norm 50); an unclipped one is the same bits (its factor is 1 on both sides).
+TORCH_CLIP_EPSILON = 1e-6
+
+
+@pytest.mark.parametrize("gradient", [[30.0, 40.0], [0.3, 0.4], [-7.0, 0.5, 12.0, 3.25]])
+def test_clipping_matches_torch_clip_grad_norm(gradient):
+    """Reference library: torch.nn.utils.clip_grad_norm_ (max_norm 5, the L2 norm)."""
+    gradient = np.array(gradient)
+    norm = float(np.linalg.norm(gradient))
+    opt = SGD(gradient.size, training(learning_rate=1.0, momentum=0.0, l2=0.0, clip_norm=5.0))
+    opt.grad[:] = gradient
+    opt.step_()  # learning rate 1 from zero weights: the weights are minus the step
+    ours, theirs = -opt.params, torch_clipped(gradient, 5.0)
+    if norm <= 5.0:
+        assert np.array_equal(ours, theirs)
+    else:
+        np.testing.assert_allclose(ours, theirs, rtol=1.01 * TORCH_CLIP_EPSILON / norm, atol=0)
+        assert np.linalg.norm(ours) == pytest.approx(5.0, rel=1e-15)
+        assert not np.array_equal(ours, theirs)  # the tolerance above is the epsilon's
+
+
 def test_clipping_rescales_the_gradient_to_the_norm_limit():
-    """Gradient-norm clipping as torch.nn.utils.clip_grad_norm_ (reference library)."""
+    """Our rule exactly, the 3-4-5 triangle by hand: norm 50 clipped to 5 is a tenth."""
     opt = SGD(2, training(learning_rate=1.0, momentum=0.0, l2=0.0, clip_norm=5.0))
     opt.grad[:] = [30.0, 40.0]  # norm 50
     opt.step_()

@@ -1,8 +1,12 @@
-"""Bearer tokens (RFC 6750) on every route: an auth matrix built from the
-app's own URL map, so a route added later is covered without editing this."""
+"""Bearer tokens (RFC 6750) on every route: an auth matrix over the app's own
+URL map, each route held to the scope docs/http-api.md gives it (our own
+contract, read by tests/contract.py), never to the scope its view declares; so
+a route that declares the wrong scope fails here, and a route added later is
+covered without editing this."""
 
 from __future__ import annotations
 
+import hashlib
 import re
 from collections.abc import Iterator
 
@@ -13,25 +17,58 @@ from sqlalchemy import select
 from service.errors import InvalidInputError, NotFoundError
 from service.store.tables import TokenRow
 from service.usecases.tokens import create_token, list_tokens, revoke_token
-from service.web.auth import PUBLIC, SCOPES, declared_scope, hash_token
+from service.web.auth import SCOPES, declared_scope
 from service.web.extensions import get_database
+from tests.contract import NO_TOKEN, documented_scopes, route_key
 from tests.service.conftest import build_app
 from tests.service.helpers import ApiClient, create_model
 
 PATH_VALUES = {"name": "pump-risk", "number": "1", "job_id": "1", "id": "1"}
-# A token holding every scope but the one a route needs.
+# A token holding every scope but the one a route needs (so every lower one).
 WRONG = {"admin": ("ingest", "predict"), "ingest": ("predict",), "predict": ("ingest",)}
 
 
-def routes(app: Flask) -> Iterator[tuple[str, str, str | None]]:
-    """(method, concrete path, declared scope) for every route of the app."""
+def app_routes(app: Flask) -> Iterator[tuple[str, str, str]]:
+    """(method, rule, concrete path) for every route of the app."""
     for rule in app.url_map.iter_rules():
         path = re.sub(
             r"<(?:[^:<>]+:)?([^<>]+)>", lambda m: PATH_VALUES.get(m.group(1), "x"), rule.rule
         )
-        scope = declared_scope(app.view_functions[rule.endpoint])
         for method in sorted((rule.methods or set()) - {"HEAD", "OPTIONS"}):
-            yield method, path, scope
+            yield method, rule.rule, path
+
+
+def routes(app: Flask) -> Iterator[tuple[str, str, str]]:
+    """(method, concrete path, documented scope) for every route of the app."""
+    table = documented_scopes()
+    for method, rule, path in app_routes(app):
+        yield method, path, table[route_key(method, rule)]
+
+
+def test_every_route_is_in_the_scope_table_and_every_row_is_a_route(app: Flask) -> None:
+    served = {route_key(method, rule) for method, rule, _ in app_routes(app)}
+    table = documented_scopes()
+    assert sorted(served - set(table)) == []  # served, but no documented scope
+    assert sorted(set(table) - served) == []  # documented, but not served
+    assert len(served) >= 16
+    assert set(table.values()) <= {NO_TOKEN, *SCOPES}
+
+
+def test_the_openapi_document_states_the_documented_scopes(api: ApiClient) -> None:
+    """Each operation's ``x-scope`` and ``security`` (OpenAPI 3.0 Security
+    Requirement Object: an empty list is no authentication) say what the table says."""
+    doc = api.request("GET", "/openapi.json", 200, token=None)
+    stated = {}
+    for template, operations in doc["paths"].items():
+        for method, operation in operations.items():
+            if method == "parameters":  # shared by the path's operations, not one
+                continue
+            needs = operation.get("x-scope", NO_TOKEN)
+            assert (needs == NO_TOKEN) == (operation["security"] == []), (method, template)
+            stated[route_key(method.upper(), template)] = needs
+    table = documented_scopes()
+    # /metrics is served beside the API, not described in its document.
+    assert stated == {key: scope for key, scope in table.items() if key[1] != "/metrics"}
 
 
 @pytest.fixture
@@ -41,17 +78,16 @@ def matrix_api(api: ApiClient) -> ApiClient:
 
 
 def test_every_route_declares_a_scope(app: Flask) -> None:
-    found = list(routes(app))
-    assert len(found) >= 12
-    undeclared = [(m, p) for m, p, scope in found if scope is None]
+    """Fail closed needs a declaration on every view; whether it is the right one
+    is the auth matrix's question."""
+    undeclared = [rule.rule for rule in app.url_map.iter_rules()
+                  if declared_scope(app.view_functions[rule.endpoint]) is None]
     assert undeclared == []
-    assert {scope for _, _, scope in found} <= {PUBLIC, *SCOPES}
 
 
-def test_the_public_routes_are_exactly_the_contracts(app: Flask) -> None:
-    public = {path for _, path, scope in routes(app) if scope == PUBLIC}
-    assert public <= {"/healthz", "/readyz", "/metrics", "/openapi.json"}
-    assert {"/healthz", "/readyz", "/openapi.json"} <= public
+def test_the_public_routes_are_exactly_the_contracts() -> None:
+    public = {path for (_, path), scope in documented_scopes().items() if scope == NO_TOKEN}
+    assert public == {"/healthz", "/readyz", "/metrics", "/openapi.json"}
 
 
 def test_the_auth_matrix(matrix_api: ApiClient, app: Flask) -> None:
@@ -60,11 +96,10 @@ def test_the_auth_matrix(matrix_api: ApiClient, app: Flask) -> None:
     right = {scope: api.token(scope, name=scope) for scope in SCOPES}
     checked = 0
     for method, path, scope in routes(app):
-        if scope == PUBLIC:
+        if scope == NO_TOKEN:
             response = api.client.open(path, method=method)
             assert response.status_code not in (401, 403), (method, path)
             continue
-        assert scope is not None
         # No token: 401 with a Bearer challenge (RFC 6750 section 3).
         response = api.client.open(path, method=method)
         assert response.status_code == 401, (method, path)
@@ -106,8 +141,10 @@ def test_tokens_are_stored_only_as_their_sha256(app: Flask) -> None:
     row, plaintext = create_token(get_database(app), "ingester", ["ingest"])
     with get_database(app).read() as session:
         stored = session.scalars(select(TokenRow)).one()
-    # FIPS 180-4 SHA-256, as hashlib computes it.
-    assert stored.token_hash == hash_token(plaintext) == row.token_hash
+    # FIPS 180-4 SHA-256 of the token's UTF-8 bytes, hex (docs/http-api.md), as the
+    # standard library's hashlib computes it, not as our own hash_token does.
+    assert stored.token_hash == hashlib.sha256(plaintext.encode()).hexdigest()
+    assert row.token_hash == stored.token_hash
     assert len(stored.token_hash) == 64 and plaintext not in stored.token_hash
     assert stored.scopes == ["ingest"]
     assert len(plaintext) >= 40
