@@ -107,4 +107,4 @@ def test_the_smallest_spacing_keeps_bytes_per_record_under_the_floor() -> None:
     floor = 65_536
     spacing = min_checkpoint_every(spec, floor)
     assert snapshot_bytes(spec) / spacing <= floor < snapshot_bytes(spec) / (spacing - 1)
-    assert min_checkpoint_every(_spec(hidden=[4]), floor) == 1
+    assert min_checkpoint_every(_spec("regression", hidden=[4]), floor) == 1
