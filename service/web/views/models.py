@@ -2,11 +2,15 @@
 
 from __future__ import annotations
 
+import functools
+from collections.abc import Callable
 from typing import Any
 
-from flask import current_app
+from flask import current_app, request
 
+from service.errors import InvalidInputError
 from service.usecases import models
+from service.usecases.model_limits import ModelLimits, spec_bytes_error
 from service.usecases.predictions import find_model
 from service.web.auth import requires
 from service.web.extensions import get_database, get_version_cache
@@ -19,13 +23,31 @@ from service.web.views.base import Blueprint
 blueprint = Blueprint("models", __name__, url_prefix="/v1/models", description="Models.")
 
 
+def _spec_bytes_bounded(view: Callable[..., Any]) -> Callable[..., Any]:
+    """Refuse a spec over KEELSON_MAX_SPEC_BYTES before it is parsed (a
+    megabyte of levels would cost seconds to validate only to be refused)."""
+
+    @functools.wraps(view)
+    def bounded(*args: Any, **kwargs: Any) -> Any:
+        limits = ModelLimits.from_config(current_app.config)
+        problem = spec_bytes_error(len(request.get_data(cache=True)), limits)
+        if problem is not None:
+            raise InvalidInputError("The model is larger than this server allows.",
+                                    errors={"body": [problem]})
+        return view(*args, **kwargs)
+
+    return bounded
+
+
 @blueprint.route("", methods=["POST"])
 @requires("admin")
+@_spec_bytes_bounded
 @blueprint.arguments(ModelSpecSchema)
 @blueprint.response(201, ModelSchema)
 def create_model(spec: dict[str, Any]) -> dict[str, Any]:
-    """Create a model from its spec."""
-    return models.create_model(get_database(), spec)
+    """Create a model from its spec (size limits: docs/http-api.md, "Models")."""
+    return models.create_model(get_database(), spec,
+                               ModelLimits.from_config(current_app.config))
 
 
 @blueprint.route("", methods=["GET"])
