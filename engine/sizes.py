@@ -25,7 +25,7 @@ from typing import Any
 
 from engine.metrics import AUC_BINS
 from engine.network import Network
-from engine.optimizers import Adam, SGD
+from engine.optimizers import SGD, Adam
 
 FLOAT_BYTES = 8
 _STATE_VECTORS = {"sgd": SGD.state_vectors, "adam": Adam.state_vectors}

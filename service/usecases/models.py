@@ -52,10 +52,17 @@ def get_model(db: Database, name: str) -> dict[str, Any]:
         return _views(session, [row])[0]
 
 
-def list_models(db: Database) -> list[dict[str, Any]]:
+def list_models(db: Database, *, limit: int, after: str | None = None
+                ) -> tuple[list[dict[str, Any]], str | None]:
+    """Up to ``limit`` models named after ``after``, by name, and the name to
+    ask after for the next page (None when there is none)."""
+    query = select(ModelRow).order_by(ModelRow.name).limit(limit + 1)
+    if after is not None:
+        query = query.where(ModelRow.name > after)
     with db.read() as session:
-        rows = list(session.scalars(select(ModelRow).order_by(ModelRow.name)))
-        return _views(session, rows)
+        rows = list(session.scalars(query))
+        views = _views(session, rows[:limit])
+    return views, (views[-1]["name"] if len(rows) > limit else None)
 
 
 def _views(session: Session, rows: list[ModelRow]) -> list[dict[str, Any]]:

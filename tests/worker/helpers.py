@@ -22,9 +22,9 @@ from typing import Any
 from sqlalchemy import func, select
 
 from engine import Learner
+from service.config import DEFAULTS
 from service.store.database import Database, make_engine, make_sessionmaker
 from service.store.tables import ModelRow, RecordRow, TrainerRow, VersionRow
-from service.config import DEFAULTS
 from service.usecases.model_limits import ModelLimits
 from service.usecases.models import create_model
 from service.worker import run_worker

@@ -7,6 +7,7 @@ from collections.abc import Callable
 from typing import Any
 
 from flask import current_app, request
+from marshmallow import RAISE
 
 from service.errors import InvalidInputError
 from service.usecases import models
@@ -15,6 +16,7 @@ from service.usecases.predictions import find_model
 from service.web.auth import requires
 from service.web.extensions import get_database, get_version_cache
 from service.web.schemas.json_schema import limits, model_documents
+from service.web.schemas.paging import ModelPageSchema
 from service.web.schemas.rules import rules_of
 from service.web.schemas.spec import ModelSpecSchema
 from service.web.schemas.views import ModelDocumentsSchema, ModelListSchema, ModelSchema
@@ -52,10 +54,12 @@ def create_model(spec: dict[str, Any]) -> dict[str, Any]:
 
 @blueprint.route("", methods=["GET"])
 @requires("predict")
+@blueprint.arguments(ModelPageSchema, location="query", as_kwargs=True, unknown=RAISE)
 @blueprint.response(200, ModelListSchema)
-def list_models() -> dict[str, Any]:
-    """Every model, by name."""
-    return {"models": models.list_models(get_database())}
+def list_models(limit: int, after: str | None = None) -> dict[str, Any]:
+    """The models, by name, a page at a time (follow `next`)."""
+    page, following = models.list_models(get_database(), limit=limit, after=after)
+    return {"models": page, "next": following}
 
 
 @blueprint.route("/<name>", methods=["GET"])
