@@ -28,6 +28,7 @@ from __future__ import annotations
 
 import csv
 import io
+import json
 import os
 import zlib
 from collections import Counter
@@ -40,6 +41,9 @@ from flask import Flask
 from hypothesis import HealthCheck, assume, given, settings
 from hypothesis import strategies as st
 
+import engine
+from service.config import DEFAULTS
+from service.usecases.model_limits import ModelLimits, size_errors
 from service.web.app import create_app
 from service.web.extensions import get_database, get_version_cache
 from tests.service.helpers import ADMIN_TOKEN, ApiClient, create_model, record
@@ -185,17 +189,29 @@ OPERATIONS = _operations()
 
 
 def _states_only_in_words(spec: Any) -> bool:
-    """Whether a model spec breaks one of the three rules JSON Schema has no
-    keyword for, which the document therefore states in words (the
-    descriptions of ModelSpec and Feature): feature names are distinct, the
-    target is none of them, a numeric feature's min is below its max."""
+    """Whether a model spec breaks one of the rules JSON Schema has no keyword
+    for, which the document therefore states in words (the descriptions of
+    ModelSpec and Feature): feature names are distinct, the target is none of
+    them, a numeric feature's min is below its max, and the size limits on the
+    spec's bytes, the network's parameters and the checkpoint spacing."""
     if not isinstance(spec, dict) or not isinstance(spec.get("features"), list):
         return False
     names = [f.get("name") for f in spec["features"] if isinstance(f, dict)]
     bounds = [(f["min"], f["max"]) for f in spec["features"]
               if isinstance(f, dict) and "min" in f and "max" in f]
     return (len(set(names)) != len(names) or spec.get("target") in names
-            or any(not low < high for low, high in bounds))
+            or any(not low < high for low, high in bounds) or _too_large(spec))
+
+
+def _too_large(spec: dict[str, Any]) -> bool:
+    limits = ModelLimits.from_config(DEFAULTS)
+    if len(json.dumps(spec).encode()) > limits.spec_bytes:
+        return True
+    try:
+        full = engine.apply_defaults(spec)
+    except engine.InvalidInputError:
+        return False  # invalid for a reason the document states
+    return bool(size_errors(full, limits))
 
 
 def _aim(case: Any, data: st.DataObject, model: ModelRequests, flow: ModelRequests) -> None:
