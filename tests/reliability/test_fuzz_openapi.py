@@ -40,12 +40,14 @@ import schemathesis
 from flask import Flask
 from hypothesis import HealthCheck, assume, given, settings
 from hypothesis import strategies as st
+from marshmallow import ValidationError
 
 import engine
 from service.config import DEFAULTS
 from service.usecases.model_limits import ModelLimits, size_errors
 from service.web.app import create_app
 from service.web.extensions import get_database, get_version_cache
+from service.web.schemas.spec import ModelSpecSchema
 from tests.service.helpers import ADMIN_TOKEN, ApiClient, create_model, record
 from tests.service.predictions_factory import add_version, pump_rows, pump_rule, train_learner
 
@@ -207,9 +209,9 @@ def _too_large(spec: dict[str, Any]) -> bool:
     limits = ModelLimits.from_config(DEFAULTS)
     if len(json.dumps(spec).encode()) > limits.spec_bytes:
         return True
-    try:
-        full = engine.apply_defaults(spec)
-    except engine.InvalidInputError:
+    try:  # read as the API reads it (2.0 is the integer 2), then its defaults
+        full = engine.apply_defaults(ModelSpecSchema().load(spec))
+    except (ValidationError, engine.InvalidInputError):
         return False  # invalid for a reason the document states
     return bool(size_errors(full, limits))
 
