@@ -27,6 +27,7 @@ class Adam(Optimizer):
 
     kind = "adam"
     rows = 8
+    state_vectors = 2  # the two moments
     grad_row, params_row = 0, 1
 
     def __init__(self, n_params: int, training: Mapping[str, Any]) -> None:

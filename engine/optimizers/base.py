@@ -33,6 +33,9 @@ class Optimizer:
 
     kind = ""
     rows = 0  # rows of the buffer; subclasses name what each holds
+    # Parameter-sized vectors `state_arrays` returns (what a snapshot stores
+    # beside the weights; engine.sizes counts with it).
+    state_vectors = 0
     grad_row = 0
     params_row = 0
 

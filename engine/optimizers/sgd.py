@@ -46,6 +46,7 @@ class SGD(Optimizer):
 
     kind = "sgd"
     rows = 6
+    state_vectors = 1  # the velocity
     grad_row, params_row = 1, 2
 
     def __init__(self, n_params: int, training: Mapping[str, Any]) -> None:

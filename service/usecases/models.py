@@ -14,17 +14,24 @@ from service.errors import ConflictError, InvalidInputError
 from service.store.database import Database, transaction
 from service.store.tables import ModelRow, RecordRow, TrainerRow, VersionRow
 from service.usecases.common import find_model, model_view
+from service.usecases.model_limits import ModelLimits, size_errors
 
 
-def create_model(db: Database, validated: Mapping[str, Any]) -> dict[str, Any]:
+def create_model(db: Database, validated: Mapping[str, Any], limits: ModelLimits
+                 ) -> dict[str, Any]:
     """Store a model from a validated spec, defaults filled by the engine, with
-    its online trainer at cursor 0. ConflictError when the name is taken."""
+    its online trainer at cursor 0. InvalidInputError when it breaks a size
+    limit, ConflictError when the name is taken."""
     try:
         spec = engine.apply_defaults(validated)
     except engine.InvalidInputError as exc:
         raise InvalidInputError(
             "The model spec is invalid.", errors={exc.field or "body": [str(exc)]}
         ) from exc
+    too_large = size_errors(spec, limits)
+    if too_large:
+        raise InvalidInputError("The model is larger than this server allows.",
+                                errors=too_large)
     taken = ConflictError(f"A model named {spec['name']!r} already exists.")
     try:
         with transaction(db.write) as session:
@@ -45,10 +52,17 @@ def get_model(db: Database, name: str) -> dict[str, Any]:
         return _views(session, [row])[0]
 
 
-def list_models(db: Database) -> list[dict[str, Any]]:
+def list_models(db: Database, *, limit: int, after: str | None = None
+                ) -> tuple[list[dict[str, Any]], str | None]:
+    """Up to ``limit`` models named after ``after``, by name, and the name to
+    ask after for the next page (None when there is none)."""
+    query = select(ModelRow).order_by(ModelRow.name).limit(limit + 1)
+    if after is not None:
+        query = query.where(ModelRow.name > after)
     with db.read() as session:
-        rows = list(session.scalars(select(ModelRow).order_by(ModelRow.name)))
-        return _views(session, rows)
+        rows = list(session.scalars(query))
+        views = _views(session, rows[:limit])
+    return views, (views[-1]["name"] if len(rows) > limit else None)
 
 
 def _views(session: Session, rows: list[ModelRow]) -> list[dict[str, Any]]:

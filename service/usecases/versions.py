@@ -47,11 +47,19 @@ def _select_versions(model_id: int) -> Any:
     )
 
 
-def list_versions(db: Database, name: str) -> list[dict[str, Any]]:
+def list_versions(db: Database, name: str, *, limit: int, after: int | None = None
+                  ) -> tuple[list[dict[str, Any]], int | None]:
+    """Up to ``limit`` versions numbered above ``after``, oldest first, and the
+    number to ask after for the next page (None when there is none)."""
     with db.read() as session:
         model = find_model(session, name)
-        rows = session.execute(_select_versions(model.id).order_by(VersionRow.number))
-        return [version_view(row) for row in rows]
+        query = _select_versions(model.id).order_by(VersionRow.number).limit(limit + 1)
+        if after is not None:
+            query = query.where(VersionRow.number > after)
+        views = [version_view(row) for row in session.execute(query)]
+    if len(views) > limit:
+        return views[:limit], views[limit - 1]["number"]
+    return views, None
 
 
 def get_version(db: Database, name: str, number: int) -> dict[str, Any]:

@@ -5,8 +5,8 @@ cannot see are added here. A schema may state rules that tie its fields
 together (a binary task has two classes, only a categorical feature has
 levels) as a class attribute ``DOCUMENTED_RULES``: JSON Schema keywords merged
 into its component, next to the checks that enforce them (the fuzz tests hold
-the two together). And the batch limits are settings, so they are written
-into each app's document rather than into schemas made at import.
+the two together). And the batch and spec limits are settings, so they are
+written into each app's document rather than into schemas made at import.
 """
 
 from __future__ import annotations
@@ -27,6 +27,10 @@ from service.web import auth
 # Request bodies whose ``records`` are bounded by a setting (413 beyond it).
 LIMITED_BATCHES = {"RecordBatch": "KEELSON_MAX_RECORDS_PER_REQUEST",
                    "PredictionRequest": "KEELSON_MAX_PREDICTION_BATCH"}
+# Lists in a model spec bounded by a setting: (component, property) -> setting.
+LIMITED_SPEC_LISTS = {("ModelSpec", "features"): "KEELSON_MAX_FEATURES",
+                      ("ModelSpec", "classes"): "KEELSON_MAX_CLASSES",
+                      ("Feature", "levels"): "KEELSON_MAX_LEVELS"}
 _CONVERTER = re.compile(r"<(?:[^:<>]+:)?([^<>]+)>")
 
 
@@ -48,10 +52,12 @@ class DocumentingPlugin(MarshmallowPlugin):
 
 
 def state_limits(document: dict[str, Any], config: Any) -> None:
-    """Write this app's batch limits into ``document``."""
+    """Write this app's batch and spec limits into ``document``."""
     schemas = document.get("components", {}).get("schemas", {})
     for name, setting in LIMITED_BATCHES.items():
         schemas[name]["properties"]["records"]["maxItems"] = int(config[setting])
+    for (name, member), setting in LIMITED_SPEC_LISTS.items():
+        schemas[name]["properties"][member]["maxItems"] = int(config[setting])
 
 
 def openapi_document(app: Flask, spec: APISpec) -> Callable[[], dict[str, Any]]:

@@ -28,6 +28,7 @@ from __future__ import annotations
 
 import csv
 import io
+import json
 import os
 import zlib
 from collections import Counter
@@ -39,9 +40,14 @@ import schemathesis
 from flask import Flask
 from hypothesis import HealthCheck, assume, given, settings
 from hypothesis import strategies as st
+from marshmallow import ValidationError
 
+import engine
+from service.config import DEFAULTS
+from service.usecases.model_limits import ModelLimits, size_errors
 from service.web.app import create_app
 from service.web.extensions import get_database, get_version_cache
+from service.web.schemas.spec import ModelSpecSchema
 from tests.service.helpers import ADMIN_TOKEN, ApiClient, create_model, record
 from tests.service.predictions_factory import add_version, pump_rows, pump_rule, train_learner
 
@@ -185,17 +191,29 @@ OPERATIONS = _operations()
 
 
 def _states_only_in_words(spec: Any) -> bool:
-    """Whether a model spec breaks one of the three rules JSON Schema has no
-    keyword for, which the document therefore states in words (the
-    descriptions of ModelSpec and Feature): feature names are distinct, the
-    target is none of them, a numeric feature's min is below its max."""
+    """Whether a model spec breaks one of the rules JSON Schema has no keyword
+    for, which the document therefore states in words (the descriptions of
+    ModelSpec and Feature): feature names are distinct, the target is none of
+    them, a numeric feature's min is below its max, and the size limits on the
+    spec's bytes, the network's parameters and the checkpoint spacing."""
     if not isinstance(spec, dict) or not isinstance(spec.get("features"), list):
         return False
     names = [f.get("name") for f in spec["features"] if isinstance(f, dict)]
     bounds = [(f["min"], f["max"]) for f in spec["features"]
               if isinstance(f, dict) and "min" in f and "max" in f]
     return (len(set(names)) != len(names) or spec.get("target") in names
-            or any(not low < high for low, high in bounds))
+            or any(not low < high for low, high in bounds) or _too_large(spec))
+
+
+def _too_large(spec: dict[str, Any]) -> bool:
+    limits = ModelLimits.from_config(DEFAULTS)
+    if len(json.dumps(spec).encode()) > limits.spec_bytes:
+        return True
+    try:  # read as the API reads it (2.0 is the integer 2), then its defaults
+        full = engine.apply_defaults(ModelSpecSchema().load(spec))
+    except (ValidationError, engine.InvalidInputError):
+        return False  # invalid for a reason the document states
+    return bool(size_errors(full, limits))
 
 
 def _aim(case: Any, data: st.DataObject, model: ModelRequests, flow: ModelRequests) -> None:

@@ -67,7 +67,7 @@ def test_a_model_is_shown_and_listed_as_created(any_api: ApiClient) -> None:
 
 
 def test_an_empty_list_when_there_are_no_models(api: ApiClient) -> None:
-    assert api.request("GET", "/v1/models", 200) == {"models": []}
+    assert api.request("GET", "/v1/models", 200) == {"models": [], "next": None}
 
 
 def test_a_duplicate_name_is_a_conflict(any_api: ApiClient, any_app: Flask) -> None:

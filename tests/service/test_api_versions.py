@@ -29,7 +29,7 @@ def test_versions_are_listed_oldest_first_with_every_field(
     any_api: ApiClient, any_app: Flask
 ) -> None:
     create_model(any_api)
-    assert any_api.request("GET", VERSIONS, 200) == {"versions": []}
+    assert any_api.request("GET", VERSIONS, 200) == {"versions": [], "next": None}
     add_version(any_app, "pump-risk", 1, status="active", cursor=30, records_seen=30,
                 metrics=METRICS, active=True)
     add_version(any_app, "pump-risk", 2, parent=1, cursor=60, records_seen=60)

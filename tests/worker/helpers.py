@@ -22,8 +22,10 @@ from typing import Any
 from sqlalchemy import func, select
 
 from engine import Learner
+from service.config import DEFAULTS
 from service.store.database import Database, make_engine, make_sessionmaker
 from service.store.tables import ModelRow, RecordRow, TrainerRow, VersionRow
+from service.usecases.model_limits import ModelLimits
 from service.usecases.models import create_model
 from service.worker import run_worker
 from tests.service.helpers import ingest_raw
@@ -58,7 +60,7 @@ def numeric_spec(name: str, fields: Sequence[str], **overrides: Any) -> dict[str
 
 
 def new_model(db: Database, spec: dict[str, Any]) -> int:
-    create_model(db, spec)
+    create_model(db, spec, ModelLimits.from_config(DEFAULTS))
     with db.read() as session:
         return int(session.scalars(select(ModelRow.id).where(ModelRow.name == spec["name"])).one())
 

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import sys
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from typing import Any
 
 BAR_WIDTH = 16
@@ -77,7 +77,7 @@ def _metric_summary(metrics: Mapping[str, Any]) -> str:
     return ", ".join(shown) or "-"
 
 
-def render_versions(versions: list[Mapping[str, Any]]) -> str:
+def render_versions(versions: Sequence[Mapping[str, Any]]) -> str:
     lines = ["Versions (every one kept; promotion moves a pointer):",
              f"  {'no.':>4} {'origin':<8} {'status':<10} {'records':>8}  holdout metrics"]
     for version in versions:

@@ -48,6 +48,17 @@ class InProcessApi:
             raise DemoError(f"{method} {path} answered {response.status_code}: {body}")
         return response.get_json(silent=True), response.status_code
 
+    def every(self, path: str, key: str) -> list[dict[str, Any]]:
+        """All items of a paged list (``key``), following ``next`` page by page."""
+        items: list[dict[str, Any]] = []
+        query = ""
+        while True:
+            page, _ = self.call("GET", path + query)
+            items += page[key]
+            if page["next"] is None:
+                return items
+            query = f"?after={page['next']}"
+
 
 def run_demo(
     config: dict[str, Any], *, records: int = 5000, seed: int = 7, serve: bool = False,
@@ -77,8 +88,7 @@ def run_demo(
     send_records(api, demo_data.generate_records(records, seed), records, echo)
     train_until_current(api, config, echo, idle_seconds, retrain=retrain)
 
-    versions, _ = api.call("GET", f"/v1/models/{name}/versions")
-    echo(render_versions(versions["versions"]))
+    echo(render_versions(api.every(f"/v1/models/{name}/versions", "versions")))
     echo("")
     _show_predictions(api, echo)
     echo(CAUTIONS)
@@ -127,8 +137,7 @@ def send_records(api: InProcessApi, stream: Iterator[dict[str, Any]], total: int
 
 def _training_state(api: InProcessApi) -> tuple[dict[str, Any], list[dict[str, Any]]]:
     model, _ = api.call("GET", f"/v1/models/{demo_data.MODEL_NAME}")
-    versions, _ = api.call("GET", f"/v1/models/{demo_data.MODEL_NAME}/versions")
-    return model, versions["versions"]
+    return model, api.every(f"/v1/models/{demo_data.MODEL_NAME}/versions", "versions")
 
 
 def _is_current(model: dict[str, Any], versions: list[dict[str, Any]]) -> bool:

@@ -34,9 +34,9 @@ FIELD_NAME_PATTERN = r"[A-Za-z_][A-Za-z0-9_]{0,63}"
 RESERVED_FIELD_NAMES = frozenset({"key", "baseline", *OPTION_NAMES})
 # The longest level or class (a string): what a record's value may then be.
 MAX_VALUE_LENGTH = 200
-MAX_FEATURES = 1000
-MAX_LEVELS = 1000
-MAX_CLASSES = 1000
+# How many features, levels and classes a spec may list are settings
+# (KEELSON_MAX_FEATURES, _LEVELS, _CLASSES; checked with the network's size in
+# service.usecases.model_limits, stated in each app's OpenAPI document).
 MAX_LAYERS = 8
 MAX_WIDTH = 4096
 
@@ -87,7 +87,7 @@ class FeatureSchema(Schema):
     unit = fields.String(validate=validate.Length(max=32))
     levels = fields.List(
         fields.String(validate=validate.Length(min=1, max=MAX_VALUE_LENGTH)),
-        validate=validate.Length(min=1, max=MAX_LEVELS), metadata={"uniqueItems": True},
+        validate=validate.Length(min=1), metadata={"uniqueItems": True},
     )
 
     @validates_schema
@@ -198,7 +198,10 @@ class ModelSpecSchema(Schema):
         "description": "A model spec. Feature names are distinct and the target is none "
         "of them. Classes: a binary model has two (default [false, true]), a multiclass "
         "model lists them, a regression model has none; only a binary model chooses its "
-        "loss.",
+        "loss. The network's parameters are bounded (KEELSON_MAX_PARAMETERS), and so is "
+        "what its versions write per record: checkpoint_every is at least the snapshot's "
+        "size over KEELSON_MAX_VERSION_BYTES_PER_RECORD (422 beyond either, stating the "
+        "limit).",
         "oneOf": [
             _task("binary", classes={"maxItems": 2}),
             _task("multiclass", classes={"type": "array"},
@@ -219,13 +222,13 @@ class ModelSpecSchema(Schema):
     task = fields.String(required=True, validate=validate.OneOf(engine.TASKS))
     target = _field_name(required=True)
     classes = fields.List(
-        ClassLabel(), allow_none=True, validate=validate.Length(min=2, max=MAX_CLASSES),
+        ClassLabel(), allow_none=True, validate=validate.Length(min=2),
         metadata={"uniqueItems": True, "anyOf": [{"items": kind} for kind in CLASS_TYPES]},
     )
     features = fields.List(
         fields.Nested(FeatureSchema),
         required=True,
-        validate=validate.Length(min=1, max=MAX_FEATURES),
+        validate=validate.Length(min=1),
     )
     hidden_layers = fields.List(
         StrictInteger(minimum=1, maximum=MAX_WIDTH), validate=validate.Length(max=MAX_LAYERS)

@@ -9,6 +9,7 @@ from __future__ import annotations
 from marshmallow import RAISE, Schema, fields
 
 from service.web.schemas.fields import StrictBoolean
+from service.web.schemas.paging import NEXT
 from service.web.schemas.rules import RecordRules, batch_schema_class
 from service.web.schemas.spec import ModelSpecSchema
 
@@ -44,7 +45,10 @@ class ModelSchema(ModelSpecSchema):
 
 
 class ModelListSchema(Schema):
+    """A page of models, by name (service/web/schemas/paging.py)."""
+
     models = fields.List(fields.Nested(ModelSchema), required=True)
+    next = fields.String(required=True, allow_none=True, metadata=NEXT)
 
 
 # The ingest body as the document states it: generated from the rules every
@@ -83,7 +87,10 @@ class VersionSchema(Schema):
 
 
 class VersionListSchema(Schema):
+    """A page of a model's versions, oldest first (service/web/schemas/paging.py)."""
+
     versions = fields.List(fields.Nested(VersionSchema), required=True)
+    next = fields.Integer(required=True, allow_none=True, metadata=NEXT)
 
 
 class RetrainRequestSchema(Schema):

@@ -2,15 +2,21 @@
 
 from __future__ import annotations
 
+import functools
+from collections.abc import Callable
 from typing import Any
 
-from flask import current_app
+from flask import current_app, request
+from marshmallow import RAISE
 
+from service.errors import InvalidInputError
 from service.usecases import models
+from service.usecases.model_limits import ModelLimits, spec_bytes_error
 from service.usecases.predictions import find_model
 from service.web.auth import requires
 from service.web.extensions import get_database, get_version_cache
 from service.web.schemas.json_schema import limits, model_documents
+from service.web.schemas.paging import ModelPageSchema
 from service.web.schemas.rules import rules_of
 from service.web.schemas.spec import ModelSpecSchema
 from service.web.schemas.views import ModelDocumentsSchema, ModelListSchema, ModelSchema
@@ -19,21 +25,41 @@ from service.web.views.base import Blueprint
 blueprint = Blueprint("models", __name__, url_prefix="/v1/models", description="Models.")
 
 
+def _spec_bytes_bounded(view: Callable[..., Any]) -> Callable[..., Any]:
+    """Refuse a spec over KEELSON_MAX_SPEC_BYTES before it is parsed (a
+    megabyte of levels would cost seconds to validate only to be refused)."""
+
+    @functools.wraps(view)
+    def bounded(*args: Any, **kwargs: Any) -> Any:
+        limits = ModelLimits.from_config(current_app.config)
+        problem = spec_bytes_error(len(request.get_data(cache=True)), limits)
+        if problem is not None:
+            raise InvalidInputError("The model is larger than this server allows.",
+                                    errors={"body": [problem]})
+        return view(*args, **kwargs)
+
+    return bounded
+
+
 @blueprint.route("", methods=["POST"])
 @requires("admin")
+@_spec_bytes_bounded
 @blueprint.arguments(ModelSpecSchema)
 @blueprint.response(201, ModelSchema)
 def create_model(spec: dict[str, Any]) -> dict[str, Any]:
-    """Create a model from its spec."""
-    return models.create_model(get_database(), spec)
+    """Create a model from its spec (size limits: docs/http-api.md, "Models")."""
+    return models.create_model(get_database(), spec,
+                               ModelLimits.from_config(current_app.config))
 
 
 @blueprint.route("", methods=["GET"])
 @requires("predict")
+@blueprint.arguments(ModelPageSchema, location="query", as_kwargs=True, unknown=RAISE)
 @blueprint.response(200, ModelListSchema)
-def list_models() -> dict[str, Any]:
-    """Every model, by name."""
-    return {"models": models.list_models(get_database())}
+def list_models(limit: int, after: str | None = None) -> dict[str, Any]:
+    """The models, by name, a page at a time (follow `next`)."""
+    page, following = models.list_models(get_database(), limit=limit, after=after)
+    return {"models": page, "next": following}
 
 
 @blueprint.route("/<model:name>", methods=["GET"])

@@ -4,9 +4,12 @@ from __future__ import annotations
 
 from typing import Any
 
+from marshmallow import RAISE
+
 from service.usecases import versions
 from service.web.auth import requires
 from service.web.extensions import get_database
+from service.web.schemas.paging import VersionPageSchema
 from service.web.schemas.views import VersionListSchema, VersionSchema
 from service.web.views.base import Blueprint
 
@@ -15,10 +18,12 @@ blueprint = Blueprint("versions", __name__, url_prefix="/v1/models", description
 
 @blueprint.route("/<model:name>/versions", methods=["GET"])
 @requires("predict")
+@blueprint.arguments(VersionPageSchema, location="query", as_kwargs=True, unknown=RAISE)
 @blueprint.response(200, VersionListSchema)
-def list_versions(name: str) -> dict[str, Any]:
-    """Every version of a model, oldest first."""
-    return {"versions": versions.list_versions(get_database(), name)}
+def list_versions(name: str, limit: int, after: int | None = None) -> dict[str, Any]:
+    """A model's versions, oldest first, a page at a time (follow `next`)."""
+    page, following = versions.list_versions(get_database(), name, limit=limit, after=after)
+    return {"versions": page, "next": following}
 
 
 @blueprint.route("/<model:name>/versions/<int:number>", methods=["GET"])
