@@ -85,7 +85,13 @@ def test_scores_are_taken_before_each_step():
     X, Y = learner.encode(rows), learner.encode_labels(labels)
     before = learner.predict(X[:1])[0, 1]
     scores = learner.learn(X, Y)
-    assert scores[0, 0] == before
+    after = learner.predict(X[:1])[0, 1]
+    # One row through the batch path and through the per-record kernel: BLAS
+    # may sum the products in another order (matrix-matrix against
+    # matrix-vector, chosen per CPU), so they agree to rounding, not to the bit.
+    # The step itself moves the score by far more than that.
+    np.testing.assert_allclose(scores[0, 0], before, rtol=1e-13, atol=0)
+    assert abs(after - before) > 1e-6
 
 
 def test_input_mean_does_not_depend_on_how_the_stream_is_cut():
