@@ -4,6 +4,11 @@ Python's parser accepts ``NaN``, ``Infinity`` and ``-Infinity``; JSON does not
 (RFC 8259 section 6). They are caught while parsing and reported at their
 field path (422), so a client learns *which* value was wrong. Bodies must be
 UTF-8 with a JSON media type (else 415), and nest at most ``MAX_DEPTH`` deep.
+A string or member name spelling a lone surrogate breaks the text rule
+(``service.web.text``) and is reported at its path the same way (422).
+
+A body that cannot be read is answered in our own words (where it broke), not
+with the parser's message.
 """
 
 from __future__ import annotations
@@ -13,11 +18,16 @@ import re
 from typing import Any
 
 from service.errors import InvalidInputError, MalformedError, UnsupportedMediaError
+from service.web.text import NOT_SCALAR_TEXT, non_scalar_paths
 
 MAX_DEPTH = 32
 _OTHER_BYTES = bytes(b for b in range(256) if b not in b'[]{}"')
 _STRING = re.compile(rb'"[^"]*"')
 _INNERMOST = re.compile(rb"\[\]|\{\}")
+# A JSON escape of a surrogate (RFC 8259 section 7: "\u" and four hex
+# digits); only a body holding one can break the text rule, so only such a
+# body is walked. A valid pair matches too, and the walk then finds nothing.
+_SURROGATE_ESCAPE = re.compile(rb"\\u[dD][89a-fA-F]")
 
 
 class NonFiniteLiteral:
@@ -69,7 +79,7 @@ def loads_strict(data: bytes) -> Any:
     try:
         text = data.decode("utf-8")
     except UnicodeDecodeError as exc:
-        raise MalformedError(f"The body is not UTF-8 (RFC 8259 section 8.1): {exc}") from exc
+        raise MalformedError(not_utf8("The body", exc, "RFC 8259 section 8.1")) from None
     if nesting_depth_exceeds(data):
         raise MalformedError(f"The body nests deeper than {MAX_DEPTH} levels.")
     found = False
@@ -83,15 +93,27 @@ def loads_strict(data: bytes) -> Any:
         value = json.loads(text, parse_constant=non_finite)
     except RecursionError as exc:
         raise MalformedError("The body nests too deeply.") from exc
-    except ValueError as exc:
-        raise MalformedError(f"The body is not valid JSON: {exc}") from exc
+    except json.JSONDecodeError as exc:
+        raise MalformedError(
+            f"The body is not valid JSON: line {exc.lineno}, column {exc.colno}.") from None
+    except ValueError:  # an integer beyond what the parser reads (thousands of digits)
+        raise MalformedError("The body is not valid JSON: a number has too many digits.") from None
+    errors: dict[str, list[str]] = {}
     if found:
-        errors = {
-            path or "body": [f"{literal} is not a JSON number (RFC 8259 section 6)."]
-            for path, literal in _non_finite_paths(value, "")
-        }
-        raise InvalidInputError("The body holds numbers JSON does not allow.", errors=errors)
+        for path, literal in _non_finite_paths(value, ""):
+            errors[path or "body"] = [f"{literal} is not a JSON number (RFC 8259 section 6)."]
+    if _SURROGATE_ESCAPE.search(data) is not None:
+        for path in non_scalar_paths(value):
+            errors.setdefault(path, []).append(NOT_SCALAR_TEXT)
+    if errors:
+        raise InvalidInputError("The body holds numbers JSON does not allow." if found else
+                                "The body holds text that is not valid Unicode.", errors=errors)
     return value
+
+
+def not_utf8(what: str, exc: UnicodeDecodeError, source: str) -> str:
+    """Where bytes that are not UTF-8 begin, in our words (byte 1 is the first)."""
+    return f"{what} is not UTF-8 ({source}): byte {exc.start + 1} is not part of a UTF-8 character."
 
 
 def _non_finite_paths(value: Any, path: str) -> list[tuple[str, str]]:
