@@ -78,8 +78,9 @@ def describe(exc: BaseException) -> str:
 
 def log_text(exc: BaseException) -> str:
     """What the log says of ``exc``: everything ``describe`` leaves out."""
-    if isinstance(exc, ModelFault) and exc.detail:
-        return f"{exc} ({exc.detail})"
+    detail = getattr(exc, "detail", None) if is_expected(exc) else None
+    if detail:
+        return f"{exc} ({detail})"
     return str(exc) if is_expected(exc) else f"{type(exc).__name__}: {exc}"
 
 
