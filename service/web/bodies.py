@@ -5,7 +5,7 @@ Python's parser accepts ``NaN``, ``Infinity`` and ``-Infinity``; JSON does not
 field path (422), so a client learns *which* value was wrong. Bodies must be
 UTF-8 with a JSON media type (else 415), and nest at most ``MAX_DEPTH`` deep.
 A string or member name spelling a lone surrogate breaks the text rule
-(``service.web.text``) and is reported at its path the same way (422).
+(``service.text``) and is reported at its path the same way (422).
 
 A body that cannot be read is answered in our own words (where it broke), not
 with the parser's message.
@@ -18,7 +18,7 @@ import re
 from typing import Any
 
 from service.errors import InvalidInputError, MalformedError, UnsupportedMediaError
-from service.web.text import NOT_SCALAR_TEXT, non_scalar_paths
+from service.text import NOT_SCALAR_TEXT, non_scalar_paths
 
 MAX_DEPTH = 32
 _OTHER_BYTES = bytes(b for b in range(256) if b not in b'[]{}"')

@@ -8,7 +8,7 @@ in testing they surface instead, so a test sees the real failure.
 
 Rendering an envelope cannot fail on the text it carries: a field path or a
 message quoting text that breaks the text rule (a lone surrogate, refused by
-``service.web.text``) is shown escaped, so the answer is always UTF-8.
+``service.text``) is shown escaped, so the answer is always UTF-8.
 """
 
 from __future__ import annotations
@@ -24,7 +24,7 @@ from sqlalchemy import exc as sa_exc
 from werkzeug.exceptions import HTTPException
 
 from service.errors import KeelsonError
-from service.web.text import shown_value
+from service.text import shown_value
 
 PROBLEM_MIMETYPE = "application/problem+json"
 # RFC 9457 section 4.2.1: "about:blank" means the status code says it all.

@@ -6,7 +6,7 @@ U+FFFD in the path and keeps them undecoded (``%ED%A0%80``, the bytes that
 would spell the lone surrogate U+D800) in a query parameter, so a value could
 arrive as text the client never sent. Such a target is refused (400), from the
 raw target and before authentication, like a body that is not UTF-8: the text
-rule (``service.web.text``) holds at this door too.
+rule (``service.text``) holds at this door too.
 """
 
 from __future__ import annotations

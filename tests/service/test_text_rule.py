@@ -15,7 +15,11 @@ import json
 from typing import Any
 
 import pytest
+from flask import Flask
 
+from service.errors import InvalidInputError, NotFoundError
+from service.usecases.tokens import create_token, list_tokens, revoke_token
+from service.web.extensions import get_database
 from service.web.problems import problem
 from tests.service.helpers import PUMP_SPEC, ApiClient, create_model, model_spec, record
 
@@ -173,3 +177,20 @@ def test_broken_json_is_answered_in_our_words_with_line_and_column(api: ApiClien
                        content_type="application/json")
     assert body["detail"] == ("The body is not UTF-8 (RFC 8259 section 8.1): "
                               "byte 11 is not part of a UTF-8 character.")
+
+
+def test_a_token_name_that_is_not_unicode_text_is_refused(any_app: Flask) -> None:
+    # Python reads command-line bytes that are not UTF-8 as lone surrogates
+    # (PEP 383): b"ops\xff" arrives as "ops\udcff".
+    with pytest.raises(InvalidInputError) as refused:
+        create_token(get_database(any_app), "ops\udcff", ["admin"])
+    assert list(refused.value.errors or {}) == ["name"]
+    assert list_tokens(get_database(any_app)) == []
+
+
+def test_revoking_by_a_name_that_is_not_unicode_text_finds_none(any_app: Flask) -> None:
+    with pytest.raises(NotFoundError):
+        revoke_token(get_database(any_app), "ops\udcff")
+    # "²" is a digit to str.isdigit, but no number int() reads: a name, matching none.
+    with pytest.raises(NotFoundError):
+        revoke_token(get_database(any_app), "²")

@@ -12,8 +12,10 @@ hold one; only a JSON escape can bring one in.
 So the rule is checked where text enters: JSON bodies as they are parsed
 (``service.web.bodies``, every member name and string value, the error naming
 its path); the request target (``service.web.request_target``: percent-decoded,
-the path and the query must be UTF-8); CSV bodies are decoded strictly as
-UTF-8. Everything past those doors may assume scalar text.
+the path and the query must be UTF-8); CSV bodies and files are decoded
+strictly as UTF-8; a token's name from the command line (``usecases.tokens``;
+Python reads undecodable argument bytes as lone surrogates). Everything past
+those doors may assume scalar text.
 
 Any answer that shows such text (an error naming a field it refused) shows it
 escaped, as the six characters ``\\ud800`` (``shown``): an answer is always
