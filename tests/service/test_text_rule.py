@@ -16,10 +16,14 @@ from typing import Any
 
 import pytest
 from flask import Flask
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from service.errors import InvalidInputError, NotFoundError
 from service.usecases.tokens import create_token, list_tokens, revoke_token
 from service.web.extensions import get_database
+from service.text import is_scalar_text
+from service.web.bodies import loads_strict, may_hold_lone_surrogates
 from service.web.problems import problem
 from tests.service.helpers import PUMP_SPEC, ApiClient, create_model, model_spec, record
 
@@ -194,3 +198,22 @@ def test_revoking_by_a_name_that_is_not_unicode_text_finds_none(any_app: Flask) 
     # "²" is a digit to str.isdigit, but no number int() reads: a name, matching none.
     with pytest.raises(NotFoundError):
         revoke_token(get_database(any_app), "²")
+
+
+# Pieces of JSON string text: surrogate escapes (high, low, upper case), an
+# escaped backslash (which makes "\\ud83d" plain text), other escapes, letters.
+PIECES = ["\\ud83d", "\\udca7", "\\uD800", "\\uDFFF", "\\\\", "\\u00e9", "u", "d83d", "a", "é"]
+
+
+@settings(max_examples=400, deadline=None)
+@given(st.lists(st.sampled_from(PIECES), max_size=8))
+def test_the_body_prefilter_never_misses_a_lone_surrogate(pieces: list[str]) -> None:
+    data = ('{"k": "' + "".join(pieces) + '"}').encode()
+    value = json.loads(data)["k"]
+    if not is_scalar_text(value):
+        assert may_hold_lone_surrogates(data), data
+        with pytest.raises(InvalidInputError) as refused:
+            loads_strict(data)
+        assert list(refused.value.errors or {}) == ["k"]
+    else:
+        assert loads_strict(data) == {"k": value}
