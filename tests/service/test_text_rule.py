@@ -24,6 +24,7 @@ from service.usecases.tokens import create_token, list_tokens, revoke_token
 from service.web.extensions import get_database
 from service.text import is_scalar_text
 from service.web.bodies import loads_strict, may_hold_lone_surrogates
+from service.web.observability import request_id_for
 from service.web.problems import problem
 from tests.service.helpers import PUMP_SPEC, ApiClient, create_model, model_spec, record
 
@@ -217,3 +218,8 @@ def test_the_body_prefilter_never_misses_a_lone_surrogate(pieces: list[str]) -> 
         assert list(refused.value.errors or {}) == ["k"]
     else:
         assert loads_strict(data) == {"k": value}
+
+
+def test_a_request_id_with_a_trailing_newline_is_not_echoed() -> None:
+    assert request_id_for("pump-7") == "pump-7"
+    assert request_id_for("pump-7\n") != "pump-7\n"
