@@ -111,8 +111,9 @@ forwarded_allow_ips = _setting("FORWARDED_ALLOW_IPS")
 
 
 # prometheus_client's sample files: <kind>_<pid>.db. Only these are removed, so
-# a folder shared with anything else loses nothing else.
-_SAMPLE_FILE = re.compile(r"(counter|gauge_[a-z]+|histogram|summary)_\d+\.db")  # fullmatch: "$" lets a final "\n" by
+# a folder shared with anything else loses nothing else. Matched whole
+# (fullmatch): "$" would let a final newline by.
+_SAMPLE_FILE = re.compile(r"(counter|gauge_[a-z]+|histogram|summary)_\d+\.db")
 
 
 def on_starting(server: Any) -> None:

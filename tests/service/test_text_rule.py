@@ -20,10 +20,10 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from service.errors import InvalidInputError, NotFoundError
-from service.usecases.tokens import create_token, list_tokens, revoke_token
-from service.web.extensions import get_database
 from service.text import is_scalar_text
+from service.usecases.tokens import create_token, list_tokens, revoke_token
 from service.web.bodies import loads_strict, may_hold_lone_surrogates
+from service.web.extensions import get_database
 from service.web.observability import request_id_for
 from service.web.problems import problem
 from tests.service.helpers import PUMP_SPEC, ApiClient, create_model, model_spec, record

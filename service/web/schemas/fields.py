@@ -59,9 +59,10 @@ class WholeMatch(validate.Regexp):
 
     def __init__(self, pattern: str, *, error: str | None = None) -> None:
         super().__init__(f"^{pattern}$", error=error)
+        self.whole = re.compile(f"^{pattern}$")
 
     def __call__(self, value: Any) -> Any:
-        if not isinstance(value, str) or self.regex.fullmatch(value) is None:
+        if not isinstance(value, str) or self.whole.fullmatch(value) is None:
             raise ValidationError(self._format_error(value))
         return value
 
