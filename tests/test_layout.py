@@ -1,7 +1,7 @@
 """The layout holds: layers import only downwards, modules stay small, and the
 service's root holds only what belongs to no part.
 
-Layers, lowest first: engine <- config, errors, process <- store <- versions
+Layers, lowest first: engine <- config, errors, process, text <- store <- versions
 <- usecases <- web <- worker <- tools. A module may import its own layer and
 any below it; ``service/__main__`` and ``tools`` may import anything. Imports
 inside functions count too (a lazy import is still a dependency).
@@ -16,7 +16,7 @@ from pathlib import Path
 ROOT = Path(__file__).resolve().parents[1]
 ENGINE, SERVICE = ROOT / "engine", ROOT / "service"
 LAYERS = {
-    "service.config": 1, "service.errors": 1, "service.process": 1,
+    "service.config": 1, "service.errors": 1, "service.process": 1, "service.text": 1,
     "service.store": 2,
     "service.versions": 3,
     "service.usecases": 4,
@@ -26,7 +26,7 @@ LAYERS = {
     "service.__main__": 8,
 }
 MAX_LINES = 400
-SERVICE_ROOT_MODULES = {"__init__", "__main__", "config", "errors", "process"}
+SERVICE_ROOT_MODULES = {"__init__", "__main__", "config", "errors", "process", "text"}
 SERVICE_PARTS = {"store", "versions", "usecases", "web", "worker", "tools"}
 
 

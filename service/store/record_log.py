@@ -76,7 +76,12 @@ def fetch_chunk(session: Session, query: Any) -> RecordChunk:
 
 class UnreadableRecord(ValueError):
     """A stored record whose features or label cannot be decoded (a damaged
-    row): the message names the record."""
+    row): the message names the record; ``detail`` is what the decoder said
+    (for the log, not for an answer)."""
+
+    def __init__(self, message: str, detail: str | None = None) -> None:
+        super().__init__(message)
+        self.detail = detail
 
 
 def _decode_named(values: Sequence[Any], seqs: Sequence[int], what: str) -> list[Any]:
@@ -91,7 +96,7 @@ def _decode_named(values: Sequence[Any], seqs: Sequence[int], what: str) -> list
                 None if value is None else decode_json(value)
             except ValueError as exc:
                 raise UnreadableRecord(
-                    f"record {seq} cannot be read: its {what} not valid JSON ({exc})"
+                    f"record {seq} cannot be read: its {what} not valid JSON", str(exc)
                 ) from None
         raise
 

@@ -23,7 +23,7 @@ import click
 
 from service.errors import InvalidInputError, KeelsonError
 
-_RECORD_PATH = re.compile(r"^records\.(\d+)(.*)$")
+_RECORD_PATH = re.compile(r"records\.(\d+)(.*)", re.DOTALL)  # fullmatch: "$" lets a final "\n" by
 MAX_ERRORS_SHOWN = 20
 # After an import this large, PostgreSQL's planner statistics are refreshed at
 # once rather than when autovacuum next gets to them: until then the worker's
@@ -106,7 +106,7 @@ def _by_line(errors: dict[str, list[str]] | None, lines: list[int]) -> dict[str,
     """``records.3.features.x`` -> ``line 17: features.x`` (line numbers of the file)."""
     named: dict[str, list[str]] = {}
     for path, messages in (errors or {}).items():
-        match = _RECORD_PATH.match(path)
+        match = _RECORD_PATH.fullmatch(path)
         if match and int(match.group(1)) < len(lines):
             rest = match.group(2).lstrip(".")
             where = f"line {lines[int(match.group(1))]}" + (f" {rest}" if rest else "")

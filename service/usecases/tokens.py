@@ -16,6 +16,7 @@ from sqlalchemy import select
 from service.errors import InvalidInputError, NotFoundError
 from service.store.database import Database, transaction
 from service.store.tables import TokenRow, utcnow
+from service.text import NOT_SCALAR_TEXT, is_scalar_text
 
 SCOPES = ("ingest", "predict", "admin")  # admin implies the others
 TOKEN_BYTES = 32  # 256 bits of randomness: guessing is not an attack
@@ -34,6 +35,8 @@ def create_token(db: Database, name: str, scopes: Iterable[str]) -> tuple[TokenR
     errors: dict[str, list[str]] = {}
     if not name or len(name) > MAX_NAME_LENGTH:
         errors["name"] = [f"A name of 1 to {MAX_NAME_LENGTH} characters is required."]
+    elif not is_scalar_text(name):
+        errors["name"] = [NOT_SCALAR_TEXT]
     if not wanted:
         errors["scopes"] = ["At least one scope is required."]
     unknown = [s for s in wanted if s not in SCOPES]
@@ -61,10 +64,12 @@ def revoke_token(db: Database, id_or_name: int | str) -> list[TokenRow]:
     Returns the revoked rows; raises NotFoundError when nothing matched.
     """
     query = select(TokenRow).where(TokenRow.revoked_at.is_(None))
-    if isinstance(id_or_name, int) or str(id_or_name).isdigit():
+    if isinstance(id_or_name, int) or (id_or_name.isascii() and id_or_name.isdigit()):
         query = query.where(TokenRow.id == int(id_or_name))
-    else:
+    elif is_scalar_text(id_or_name):
         query = query.where(TokenRow.name == id_or_name)
+    else:  # no stored name is such text (create_token refuses it)
+        raise NotFoundError(f"No live token matches {id_or_name!r}.")
     with transaction(db.write) as session:
         rows = list(session.scalars(query))
         if not rows:

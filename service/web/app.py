@@ -11,7 +11,7 @@ from flask_smorest.spec.plugins import integerconverter2paramschema
 from werkzeug.routing import IntegerConverter
 
 from service.config import load_config
-from service.web import auth, observability, paths, problems
+from service.web import auth, observability, paths, problems, request_target
 from service.web.body_limit import BoundedRequest
 from service.web.extensions import init_database, init_version_cache
 from service.web.headers import SECURITY_HEADERS
@@ -63,6 +63,7 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     app = Flask("keelson", static_folder=None)
     app.request_class = BoundedRequest
     paths.init_app(app)
+    request_target.init_app(app)
     app.url_map.converters["int"] = BoundedIntegerConverter
     settings = load_config(config)
     app.config.update(settings)

@@ -69,15 +69,27 @@ def parse_csv_records(
                 record["key"] = row[key_column]
             raw.append(record)
     except csv.Error as exc:
+        what = _broken(str(exc))
         raise MalformedError(
-            f"The CSV is broken at line {reader.line_num}: {exc}.",
-            errors={f"records.{max(reader.line_num - 2, 0)}": [str(exc)]},
-        ) from exc
+            f"The CSV is broken at line {reader.line_num}: {what}.",
+            errors={f"records.{max(reader.line_num - 2, 0)}": [f"{what[0].upper()}{what[1:]}."]},
+        ) from None
     if errors:
         raise InvalidInputError("Some CSV rows have the wrong number of fields.", errors=errors)
     if not raw:
         raise InvalidInputError("The CSV holds no records.", errors={"records": [NO_RECORDS]})
     return (rules or rules_for(spec)).load_records(raw, text=True)
+
+
+def _broken(reason: str) -> str:
+    """What the csv module found, in our words (its own text names its internals)."""
+    if "expected after" in reason:
+        return "a quoted field goes on after its closing quote (RFC 4180 section 2)"
+    if "end of data" in reason:
+        return "a quoted field is never closed (RFC 4180 section 2)"
+    if "field limit" in reason:
+        return f"a field is longer than {csv.field_size_limit()} characters"
+    return "the line is not RFC 4180 CSV"
 
 
 def _check_header(header: list[str], features: list[str], target: str) -> None:

@@ -44,7 +44,7 @@ from service.web.redaction import redacted_query
 REQUEST_ID_HEADER = "X-Request-Id"
 # A caller's id is echoed only when it is short and plain, so it cannot smuggle
 # newlines or markup into logs and headers.
-_SANE_REQUEST_ID = re.compile(r"^[A-Za-z0-9._:-]{1,128}$")
+_SANE_REQUEST_ID = re.compile(r"[A-Za-z0-9._:-]{1,128}")  # fullmatch: "$" lets a final "\n" by
 _UNMATCHED_ROUTE = "<unmatched>"
 # Every label value is from a closed set, whatever clients send: a method
 # outside the standard ones (RFC 9110 section 9, and PATCH from RFC 5789) is
@@ -167,7 +167,7 @@ def _request_id_of(environ: dict[str, Any]) -> str:
 
 def request_id_for(given: str | None) -> str:
     """The caller's id when it sent a sane one, else a new one."""
-    return given if given and _SANE_REQUEST_ID.match(given) else _new_request_id()
+    return given if given and _SANE_REQUEST_ID.fullmatch(given) else _new_request_id()
 
 
 def current_request_id() -> str | None:

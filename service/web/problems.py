@@ -5,6 +5,10 @@ with ``type``, ``title``, ``status``, ``detail`` and, for validation errors,
 ``errors``: field paths mapped to lists of messages. Never an HTML page.
 Unexpected exceptions are logged with their traceback and answered without it;
 in testing they surface instead, so a test sees the real failure.
+
+Rendering an envelope cannot fail on the text it carries: a field path or a
+message quoting text that breaks the text rule (a lone surrogate, refused by
+``service.text``) is shown escaped, so the answer is always UTF-8.
 """
 
 from __future__ import annotations
@@ -20,6 +24,7 @@ from sqlalchemy import exc as sa_exc
 from werkzeug.exceptions import HTTPException
 
 from service.errors import KeelsonError
+from service.text import shown_value
 
 PROBLEM_MIMETYPE = "application/problem+json"
 # RFC 9457 section 4.2.1: "about:blank" means the status code says it all.
@@ -52,9 +57,11 @@ def problem(
         body["errors"] = dict(errors)
     if members:
         body.update(members)
-    response = Response(
-        json.dumps(body, ensure_ascii=False), status=status, mimetype=PROBLEM_MIMETYPE
-    )
+    try:
+        data = json.dumps(body, ensure_ascii=False).encode("utf-8")
+    except UnicodeEncodeError:  # rare: only text the rule refuses cannot be encoded
+        data = json.dumps(shown_value(body), ensure_ascii=False).encode("utf-8")
+    response = Response(data, status=status, mimetype=PROBLEM_MIMETYPE)
     for name, value in (headers or {}).items():
         response.headers[name] = value
     return response

@@ -111,8 +111,9 @@ forwarded_allow_ips = _setting("FORWARDED_ALLOW_IPS")
 
 
 # prometheus_client's sample files: <kind>_<pid>.db. Only these are removed, so
-# a folder shared with anything else loses nothing else.
-_SAMPLE_FILE = re.compile(r"^(counter|gauge_[a-z]+|histogram|summary)_\d+\.db$")
+# a folder shared with anything else loses nothing else. Matched whole
+# (fullmatch): "$" would let a final newline by.
+_SAMPLE_FILE = re.compile(r"(counter|gauge_[a-z]+|histogram|summary)_\d+\.db")
 
 
 def on_starting(server: Any) -> None:
@@ -128,7 +129,7 @@ def on_starting(server: Any) -> None:
             f"{a[0]}:{a[1]}" if isinstance(a, tuple) else str(a) for a in server.cfg.address))
     _METRICS_DIR.mkdir(parents=True, exist_ok=True)
     for entry in _METRICS_DIR.iterdir():
-        if entry.is_file() and _SAMPLE_FILE.match(entry.name):
+        if entry.is_file() and _SAMPLE_FILE.fullmatch(entry.name):
             entry.unlink()
 
 

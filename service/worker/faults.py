@@ -34,14 +34,22 @@ from service.versions.writes import lock_trainer
 MAX_FAULT_TEXT = 1000
 
 
+# What an answer shows of a failure we did not foresee: the exception's own
+# text may name internals (a class, a query, a file path); the log has it all.
+UNEXPECTED = "an unexpected error; the worker's log has the details"
+
+
 class ModelFault(Exception):
     """This model cannot be loaded or trained for now; the message says why,
     in words an operator can act on. ``head_id``: the head version the try
-    started from, when the fault is the head's."""
+    started from, when the fault is the head's. ``detail``: what a library
+    said of it, for the log only."""
 
-    def __init__(self, message: str, head_id: int | None = None) -> None:
+    def __init__(self, message: str, head_id: int | None = None,
+                 detail: str | None = None) -> None:
         super().__init__(message)
         self.head_id = head_id
+        self.detail = detail
 
 
 ANY_HEAD: Any = object()  # record_fault: whatever the trainer's head is now
@@ -62,10 +70,18 @@ def is_expected(exc: BaseException) -> bool:
 
 
 def describe(exc: BaseException) -> str:
-    """The fault text for ``exc``: its own message when we wrote it, the
-    exception's type and message otherwise (never a traceback)."""
-    text = str(exc) if is_expected(exc) else f"{type(exc).__name__}: {exc}"
-    return text[:MAX_FAULT_TEXT]
+    """The fault text for ``exc`` that is stored and shown (``trainer.error``,
+    a job's ``error``): its own message when we wrote it, a plain sentence of
+    ours otherwise (never an exception's type, text or traceback)."""
+    return (str(exc) if is_expected(exc) else UNEXPECTED)[:MAX_FAULT_TEXT]
+
+
+def log_text(exc: BaseException) -> str:
+    """What the log says of ``exc``: everything ``describe`` leaves out."""
+    detail = getattr(exc, "detail", None) if is_expected(exc) else None
+    if detail:
+        return f"{exc} ({detail})"
+    return str(exc) if is_expected(exc) else f"{type(exc).__name__}: {exc}"
 
 
 def back_off_seconds(count: int, first: float, largest: float) -> float:
@@ -111,7 +127,8 @@ def load_spec(session: Session, model_id: int) -> dict[str, Any]:
     try:
         row = session.get(ModelRow, model_id)
     except ValueError as exc:  # the JSON does not decode (orjson's error is one)
-        raise ModelFault(f"the model's stored spec cannot be read: {exc}") from None
+        raise ModelFault("the model's stored spec cannot be read: it is not valid JSON text",
+                         detail=str(exc)) from None
     if row is None:
         raise ModelFault("the model no longer exists")
     spec = row.spec

@@ -19,13 +19,16 @@ from sqlalchemy.orm import Session, sessionmaker
 from engine import TrainingCancelled
 from service.store.database import transaction
 from service.versions.writes import Fenced
-from service.worker.faults import describe, is_expected
+from service.worker.faults import describe, is_expected, log_text
 from service.worker.jobs import fail_job, requeue_job, retry_job
 from service.worker.leasing import claim_job, renew_job
 from service.worker.retrain import run_retrain
 from service.worker.settings import WorkerSettings
 
 log = logging.getLogger("keelson.worker")
+# What a job shows when the database cut an attempt short; the driver's own
+# text (which may quote SQL) goes to the log only.
+DATABASE_INTERRUPTED = "a database error interrupted the job; the worker's log has the details"
 
 
 class JobRunner:
@@ -84,13 +87,12 @@ class JobRunner:
             # deadlock detection or a lost connection): try it again.
             log.warning("job %s: database error, queued again: %s", job_id, exc.orig)
             try:
-                retry_job(self.writes, job_id, self.worker_id,
-                          f"{type(exc.orig).__name__}: {exc.orig}")
+                retry_job(self.writes, job_id, self.worker_id, DATABASE_INTERRUPTED)
             except Exception:  # its lease runs out and a worker claims it again
                 log.exception("job %s: queueing it again failed", job_id)
         except Exception as exc:
             if is_expected(exc):  # a fault of the model's, said in full by its message
-                log.warning("job %s: failed: %s", job_id, exc)
+                log.warning("job %s: failed: %s", job_id, log_text(exc))
             else:
                 log.exception("job %s: failed", job_id)
             try:

@@ -29,7 +29,7 @@ from service.process import stop_on_signals
 from service.store.database import make_engine, make_sessionmaker, transaction
 from service.store.record_log import decode_json
 from service.versions.writes import Fenced
-from service.worker.faults import ANY_HEAD, describe, is_expected, record_fault
+from service.worker.faults import ANY_HEAD, describe, is_expected, log_text, record_fault
 from service.worker.job_runner import JobRunner
 from service.worker.leasing import (
     claim_trainers,
@@ -164,16 +164,16 @@ class Worker:
                                  self.settings.retry_seconds, self.settings.retry_max_seconds,
                                  head_id)
         except Exception:  # the lease runs out and the model is tried again then
-            log.exception("model %s: recording its fault failed: %s", model_id, text)
+            log.exception("model %s: recording its fault failed: %s", model_id, log_text(exc))
             return
         if fault is None:
             log.warning("model %s: failed, but another worker holds it or its head moved "
-                        "since; not backed off: %s", model_id, text)
+                        "since; not backed off: %s", model_id, log_text(exc))
             return
         # One line per try: a traceback only with the first try of a failure
         # we did not foresee (a fault of ours reads well on its own).
         log.warning("model %s: %s (try %s failed): %s; next try in %.3g s", model_id,
-                    FAULT_LOG, fault.count, text, fault.delay,
+                    FAULT_LOG, fault.count, log_text(exc), fault.delay,
                     exc_info=exc if fault.count == 1 and not is_expected(exc) else None)
 
     def _database_answers(self) -> bool:

@@ -45,7 +45,7 @@ from service.versions.compare import (
 from service.versions.decide import PromotionContext, decide
 from service.versions.holdout import HoldoutWindow, evaluate, json_metrics
 from service.versions.writes import NewVersion, write_retrain_version
-from service.worker.faults import load_spec
+from service.worker.faults import ModelFault, load_spec
 from service.worker.jobs import report_progress
 from service.worker.settings import WorkerSettings
 
@@ -75,7 +75,7 @@ def run_retrain(
         active = session.get(VersionRow, active_version_id) if (
             warm_start and active_version_id) else None
         if n_train == 0:
-            raise ValueError("the model has no train records to retrain on")
+            raise ModelFault("the model has no train records to retrain on")
         if active is not None:
             learner = Learner.from_bytes(active.snapshot)
             encoder, parent_id = encoder_of(learner), active.id

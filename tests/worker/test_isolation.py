@@ -244,7 +244,7 @@ def test_a_retrain_of_a_damaged_model_fails_saying_why_and_the_next_job_runs(
         failed = wait_until(lambda: finished(broken), timeout=30)
         succeeded = wait_until(lambda: finished(fine), timeout=60)
     assert failed["status"] == "failed"
-    assert failed["error"].startswith("the model's stored spec cannot be read: ")
+    assert failed["error"] == "the model's stored spec cannot be read: it is not valid JSON text"
     assert succeeded["status"] == "succeeded" and succeeded["version"] is not None
     db.engine.dispose()
 

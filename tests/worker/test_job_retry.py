@@ -5,6 +5,7 @@ Common practice for transient database errors, no source."""
 
 from __future__ import annotations
 
+import logging
 from typing import Any
 
 import pytest
@@ -65,5 +66,27 @@ def test_a_job_whose_every_attempt_meets_a_database_error_fails_with_it(
         wait_until(lambda: get_job(db, job_id)["status"] == "failed")
     job = get_job(db, job_id)
     assert len(calls) == MAX_JOB_ATTEMPTS
-    assert job["error"] == "Exception: deadlock detected" and job["version"] is None
+    # The driver's text (here it would quote SQL) is for the log, not the answer.
+    assert job["error"] == job_runner.DATABASE_INTERRUPTED and job["version"] is None
+    db.engine.dispose()
+
+
+def test_a_job_failed_by_an_unexpected_error_shows_our_words_and_logs_the_detail(
+        database_url: str, monkeypatch: pytest.MonkeyPatch,
+        caplog: pytest.LogCaptureFixture) -> None:
+    caplog.set_level(logging.INFO, logger="keelson.worker")
+    inside = "SELECT secret FROM /srv/keelson/state.db"
+
+    def breaks(*args: Any, **kwargs: Any) -> Any:
+        raise KeyError(inside)
+
+    monkeypatch.setattr(job_runner, "run_retrain", breaks)
+    db, job_id = setup(database_url, "broken")
+    with worker_thread(database_url):
+        wait_until(lambda: get_job(db, job_id)["status"] == "failed")
+    job = get_job(db, job_id)
+    assert job["error"] == "an unexpected error; the worker's log has the details"
+    logged = [r for r in caplog.records if r.getMessage() == f"job {job_id}: failed"]
+    assert len(logged) == 1 and logged[0].exc_info is not None
+    assert inside in str(logged[0].exc_info[1])
     db.engine.dispose()

@@ -15,7 +15,7 @@ import sys
 from collections.abc import Sequence
 from typing import Any
 
-from marshmallow import ValidationError, fields
+from marshmallow import ValidationError, fields, validate
 
 _JSON_NUMBER = re.compile(r"-?(?:0|[1-9][0-9]*)(?:\.[0-9]+)?(?:[eE][+-]?[0-9]+)?")
 _DIGITS = re.compile(r"-?[0-9]{1,20}")  # read exactly as an integer
@@ -44,6 +44,27 @@ def _finite(value: float | int) -> float:
     if not math.isfinite(number):
         raise ValidationError(NON_FINITE)
     return number
+
+
+class WholeMatch(validate.Regexp):
+    """A string that ``pattern`` (given without anchors) matches whole.
+
+    marshmallow's ``Regexp`` uses ``re.match``, and Python's ``$`` also matches
+    before a final newline: ``"station-risk\\n"`` passed ``^...$`` and became a
+    look-alike name no URL reaches. This matches with ``re.fullmatch``. The
+    published pattern stays ``^...$``: JSON Schema patterns are ECMA-262 regular
+    expressions (JSON Schema 2020-12 validation, section 6.3.3), where ``$``
+    matches only at the very end.
+    """
+
+    def __init__(self, pattern: str, *, error: str | None = None) -> None:
+        super().__init__(f"^{pattern}$", error=error)
+        self.whole = re.compile(f"^{pattern}$")
+
+    def __call__(self, value: Any) -> Any:
+        if not isinstance(value, str) or self.whole.fullmatch(value) is None:
+            raise ValidationError(self._format_error(value))
+        return value
 
 
 class StrictNumber(fields.Field[Any]):

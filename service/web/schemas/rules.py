@@ -38,6 +38,7 @@ from service.web.schemas.fields import (
     NumberFromText,
     StrictBoolean,
     StrictNumber,
+    WholeMatch,
 )
 from service.web.schemas.spec import FIELD_NAME_PATTERN, MAX_VALUE_LENGTH
 
@@ -78,7 +79,7 @@ def key_field(**kwargs: Any) -> fields.String:
         validate.Length(min=1, max=MAX_KEY_LENGTH),
         # PostgreSQL text cannot hold U+0000 (it was a 500 there); refused on
         # every backend so both store the same keys.
-        validate.Regexp(r"^[^\x00]*$", error="A key cannot contain U+0000 (NUL)."),
+        WholeMatch(r"[^\x00]*", error="A key cannot contain U+0000 (NUL)."),
     ], metadata={"description": f"The case key, unique per model: 1 to {MAX_KEY_LENGTH} "
                  "characters, no U+0000."}, **kwargs)
 
@@ -150,7 +151,7 @@ class RecordRules:
         if self.features is not None:
             return fields.Nested(self.feature_schema(text=text), required=True)
         return fields.Dict(
-            keys=fields.String(validate=validate.Regexp(f"^{FIELD_NAME_PATTERN}$")),
+            keys=fields.String(validate=WholeMatch(FIELD_NAME_PATTERN)),
             values=self.label.field(), required=True,
             metadata={"description": "One value per declared feature of the model, nothing "
                       "else; GET /v1/models/{name}/schema states each one."})

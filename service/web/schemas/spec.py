@@ -23,7 +23,7 @@ from marshmallow import (
 import engine
 from service.usecases.common import MODEL_NAME_PATTERN
 from service.usecases.predictions import OPTION_NAMES
-from service.web.schemas.fields import StrictBoolean, StrictInteger, StrictNumber
+from service.web.schemas.fields import StrictBoolean, StrictInteger, StrictNumber, WholeMatch
 
 # Feature and target names become JSON keys, CSV headers, query parameters and
 # parts of error paths (``records.3.features.x``): no dots, no spaces.
@@ -45,7 +45,7 @@ def _field_name(**kwargs: Any) -> fields.String:
     reserved = sorted(RESERVED_FIELD_NAMES)
     return fields.String(
         validate=[
-            validate.Regexp(f"^{FIELD_NAME_PATTERN}$", error="Use letters, digits and _ "
+            WholeMatch(FIELD_NAME_PATTERN, error="Use letters, digits and _ "
                             "(not starting with a digit), at most 64 characters."),
             validate.NoneOf(reserved, error="This name is reserved."),
         ],
@@ -213,8 +213,8 @@ class ModelSpecSchema(Schema):
 
     name = fields.String(
         required=True,
-        validate=validate.Regexp(
-            f"^{MODEL_NAME_PATTERN}$",
+        validate=WholeMatch(
+            MODEL_NAME_PATTERN,
             error="Use lowercase letters, digits and -, starting with a letter or digit, "
             "at most 64 characters.",
         ),

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import logging
 from typing import Any
 
 from flask import Response, current_app, jsonify
@@ -14,6 +15,7 @@ from service.web.schemas.views import StatusSchema
 from service.web.views.base import Blueprint
 
 blueprint = Blueprint("ops", __name__, description="Operations.")
+log = logging.getLogger(__name__)
 
 
 class NotReadyError(KeelsonError):
@@ -37,7 +39,9 @@ def readyz() -> dict[str, Any]:
     try:
         current = schema_is_current(database.engine)
     except Exception as exc:  # any failure to reach the database means not ready
-        raise NotReadyError(f"The database is unreachable: {type(exc).__name__}.") from exc
+        # The answer is public: what failed, and how, is for the log.
+        log.warning("readiness: the database is unreachable: %s", type(exc).__name__)
+        raise NotReadyError("The database is unreachable.") from exc
     if not current:
         raise NotReadyError("The database schema is not current; run `keelson db upgrade`.")
     return {"status": "ready"}

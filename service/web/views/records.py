@@ -17,7 +17,7 @@ from service.errors import MalformedError, UnsupportedMediaError
 from service.usecases.predictions import find_model
 from service.usecases.records import CheckedRecords, ModelChangedError, ingest_records
 from service.web.auth import requires
-from service.web.bodies import is_json_mimetype
+from service.web.bodies import is_json_mimetype, not_utf8
 from service.web.csv_records import parse_csv_records
 from service.web.extensions import get_database, get_version_cache
 from service.web.schemas.rules import rules_of
@@ -79,5 +79,5 @@ def _csv_text() -> str:
         raise UnsupportedMediaError("CSV bodies must be UTF-8.")
     try:
         return request.get_data().decode("utf-8")
-    except UnicodeDecodeError as exc:
-        raise MalformedError(f"The CSV is not UTF-8: {exc}") from exc
+    except UnicodeDecodeError as exc:  # strictly UTF-8: no lone surrogate gets in
+        raise MalformedError(not_utf8("The CSV", exc, "RFC 3629")) from None
