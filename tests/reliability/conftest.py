@@ -1,3 +1,3 @@
 """The service tests' app fixtures, shared with the reliability tests."""
 
-from tests.service.conftest import api, app  # noqa: F401  (pytest fixtures)
+from tests.service.conftest import any_api, any_app, api, app  # noqa: F401  (pytest fixtures)
