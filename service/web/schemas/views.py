@@ -125,8 +125,11 @@ class ProblemSchema(Schema):
     detail = fields.String(required=True)
     errors = fields.Dict(
         keys=fields.String(), values=fields.List(fields.String()),
-        metadata={"description": "Field path -> messages, for invalid input."},
+        metadata={"description": "Field path -> messages, for invalid input: the first "
+                  "100 paths, each with its first 3 messages."},
     )
+    errors_omitted = fields.Integer(metadata={
+        "description": "How many more field paths were at fault than `errors` lists."})
     budget = fields.Integer(metadata={
         "description": "`urn:keelson:problem:over-budget`: the budget units a prediction "
         "request may cost (KEELSON_PREDICTION_BUDGET)."})

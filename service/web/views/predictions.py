@@ -80,8 +80,9 @@ def get_prediction(name: str) -> Response:
     cache = get_version_cache()
     entry = find_model(cache, name)
     features, options = prediction_readers(entry).read_query(request.args)
-    number, (answer,) = predict(cache, entry, (features,), options, _limits(started))
-    return _json({"model": entry.name, "version": number, **answer})
+    number, baseline, (answer,) = predict(cache, entry, (features,), options,
+                                          _limits(started))
+    return _json({"model": entry.name, "version": number, "baseline": baseline, **answer})
 
 
 @blueprint.route("/<name>/predictions", methods=["POST"])
@@ -102,5 +103,7 @@ def post_predictions(name: str) -> Response:
     body = read_json_body(request)
     limit = int(current_app.config["KEELSON_MAX_PREDICTION_BATCH"])
     rows, options = prediction_readers(entry).read_body(body, request.args, limit)
-    number, answers = predict(cache, entry, rows, options, _limits(started), batch=True)
-    return _json({"model": entry.name, "version": number, "results": answers})
+    number, baseline, answers = predict(cache, entry, rows, options, _limits(started),
+                                        batch=True)
+    return _json({"model": entry.name, "version": number, "baseline": baseline,
+                  "results": answers})
