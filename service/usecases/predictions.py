@@ -13,6 +13,7 @@ from dataclasses import dataclass, fields
 from typing import Any
 
 import numpy as np
+import orjson
 
 import engine
 from service.errors import ConflictError, KeelsonError, NotFoundError
@@ -111,7 +112,8 @@ def predict(
     if limits is not None:
         network = learner.network
         limits.check_cost(len(rows), options.explain, options.steps, options.samples,
-                          network.params.size, sum(network.sizes[1:]))
+                          network.params.size, sum(network.sizes[1:]),
+                          answer_bytes(learner, len(rows), options.explain != "none"))
     encoded = learner.encode(rows)
     scores = learner.predict(encoded)
     classes = learner.classes if learner.task != "regression" else None
@@ -144,6 +146,36 @@ def predict(
                                 "explanation") from None
         answers.append({"result": result, "explanation": explanation})
     return loaded.number, baseline, answers
+
+
+# The longest number an answer holds ("-2.2250738585072014e-308") and its
+# separator; the members every record's answer has beside its numbers and
+# names (member names, the method, the brackets).
+NUMBER_BYTES = 25
+RECORD_BYTES = 160
+
+
+def answer_bytes(learner: Any, records: int, explained: bool) -> int:
+    """At most how many bytes the answer of ``records`` rows takes: per record
+    a probability per class (each named) or a value, and when ``explained``
+    an attribution per field; once, the baseline. Priced into the request's
+    budget (prediction_limits.py); it costs less than one record's answer."""
+    per_record = RECORD_BYTES + NUMBER_BYTES
+    if learner.task != "regression":
+        keys = [class_key(c) for c in learner.classes]
+        # The probabilities' keys, and the label and the explained output (at
+        # most 6 bytes a character, quoted).
+        longest = 2 + 6 * max(map(len, keys))
+        per_record += len(orjson.dumps(keys)) + 2 * longest + NUMBER_BYTES * len(keys)
+    once = RECORD_BYTES
+    if explained:
+        encoder = learner.encoder
+        fields = orjson.dumps(encoder.fields)
+        per_record += len(fields) + NUMBER_BYTES * (len(encoder.fields) + 3)
+        levels = [str(level) for name in encoder.fields for level in encoder.levels.get(name, ())]
+        once += len(fields) + len(orjson.dumps(levels)) + NUMBER_BYTES * (
+            len(encoder.fields) + len(levels))
+    return once + records * per_record
 
 
 def _overflow(learner: Any, row: Mapping[str, Any], encoded: Any, index: int, batch: bool,

@@ -15,11 +15,13 @@ reliability table quotes.
 from __future__ import annotations
 
 import json
+from collections.abc import Iterator
 from typing import Any
 
 import numpy as np
 import pytest
 
+from service.usecases.prediction_limits import ANSWER_BYTE_COST
 from service.web.schemas.spec import MAX_VALUE_LENGTH
 from tests.service.helpers import ApiClient
 from tests.service.predictions_factory import add_version, train_learner
@@ -66,6 +68,12 @@ def error_answer(api: ApiClient, path: str, body: Any, what: str) -> dict[str, A
     assert answered < MIB, (what, answered)
     problem: dict[str, Any] = json.loads(api.last.data)
     return problem
+
+
+@pytest.fixture(scope="module", autouse=True)
+def figures() -> Iterator[None]:
+    yield
+    print("\nanswer size figures:", json.dumps(FIGURES))
 
 
 @pytest.fixture
@@ -133,15 +141,21 @@ def test_a_huge_echoed_value_is_cut_short(stations: ApiClient, where: str) -> No
     assert len(problem["errors"]) == 1
 
 
-def test_many_huge_unknown_field_names_stay_under_a_mebibyte(stations: ApiClient) -> None:
-    # 150 names of 100,000 characters each: 15 MB of names, each a field path.
+@pytest.mark.parametrize(("names", "length", "character"), [
+    (150, 100_000, "x"),
+    # JSON writes a control character in 6 bytes (\u0001): the dearest to echo.
+    (2000, 1000, "\u0001"),
+])
+def test_many_long_unknown_field_names_stay_under_a_mebibyte(
+        stations: ApiClient, names: int, length: int, character: str) -> None:
+    # Up to 15 MB of names, each a field path of its own.
     features: dict[str, Any] = {"station": "station-001", "flow_lps": 1.0, "has_vfd": False}
-    features.update({f"{i:03d}" + "x" * 100_000: 1.0 for i in range(150)})
+    features.update({f"{i:04d}" + character * length: 1.0 for i in range(names)})
     problem = error_answer(stations, "/v1/models/stations/records",
                            {"records": [{"features": features, "label": "alarm-001"}]},
-                           "150 unknown names of 100,000 characters")
-    assert len(problem["errors"]) == LISTED and problem["errors_omitted"] == 50
-    assert all(len(path) <= MAX_VALUE_LENGTH + 100 for path in problem["errors"])
+                           f"{names:,} unknown names of {length:,} {character!r}")
+    assert len(problem["errors"]) == LISTED and problem["errors_omitted"] == names - LISTED
+    assert all(len(path) <= MAX_VALUE_LENGTH for path in problem["errors"])
 
 
 def test_bad_prediction_records_are_capped_too(stations: ApiClient) -> None:
@@ -168,6 +182,31 @@ def test_a_large_prediction_batch_answers_a_bounded_multiple_of_its_size(
     ratio = answered / asked
     FIGURES[f"1,000 predictions, {explain}"] = {
         "request_bytes": asked, "answer_bytes": answered, "ratio": round(ratio, 2)}
-    print("answer size figures:", json.dumps(FIGURES))
     assert ratio < RATIO, (asked, answered)
     assert len(json.loads(any_api.last.data)["results"]) == 1000
+
+
+def test_an_answer_too_large_for_the_budget_is_refused_before_any_work(
+        any_api: ApiClient) -> None:
+    # 1,000 classes named with 200 characters each, one boolean feature: each
+    # record's probabilities take some 220 KB, so 1,000 records of 33 bytes
+    # each once drew a 224 MB answer. The answer's size counts in the budget.
+    classes = [f"alarm-{i:03d}-" + "x" * 190 for i in range(1000)]
+    spec = {"name": "wide", "task": "multiclass", "target": "alarm", "classes": classes,
+            "features": [{"name": "has_vfd", "type": "boolean"}]}
+    any_api.request("POST", "/v1/models", 201, json_body=spec)
+    learner = train_learner(spec, [{"has_vfd": i % 2 == 0} for i in range(2000)],
+                            lambda row: classes[0] if row["has_vfd"] else classes[1], passes=1)
+    add_version(any_api.app, "wide", learner.to_bytes())
+    records = {"records": [{"features": {"has_vfd": True}}] * 1000, "explain": "none"}
+    problem = error_answer(any_api, "/v1/models/wide/predictions", records,
+                           "1,000 records of a 1,000-class model")
+    assert problem["type"] == "urn:keelson:problem:over-budget"
+    assert problem["cost"] > problem["budget"] and "answer" in problem["detail"]
+    # A few records of it are answered: within the bytes the budget pays for
+    # (16 MB at the default budget; service/usecases/prediction_limits.py).
+    records["records"] = records["records"][:10]
+    asked, answered = sent(any_api, "POST", "/v1/models/wide/predictions", records, 200)
+    FIGURES["10 records of a 1,000-class model"] = {
+        "request_bytes": asked, "answer_bytes": answered, "ratio": round(answered / asked)}
+    assert answered <= problem["budget"] // ANSWER_BYTE_COST
