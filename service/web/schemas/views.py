@@ -135,6 +135,7 @@ class ProblemSchema(Schema):
         "request may cost (KEELSON_PREDICTION_BUDGET)."})
     cost = fields.Integer(metadata={
         "description": "`urn:keelson:problem:over-budget`: what the request would cost: "
-        "records x (rows evaluated per record + 8) x (parameters + 100 x units)."})
+        "records x (rows evaluated per record + 8) x (parameters + 100 x units) + 500 x "
+        "the bytes its answer may take."})
     deadline_seconds = fields.Float(metadata={
         "description": "`urn:keelson:problem:deadline-exceeded`: the deadline that passed."})

@@ -73,8 +73,8 @@ def get_prediction(name: str) -> Response:
     """Score one record given as query parameters, and explain the score.
 
     Refused with 422 (`urn:keelson:problem:over-budget`, the figures in
-    `budget` and `cost`) when its cost (evaluations x network parameters) is
-    over the budget per request, and with 422
+    `budget` and `cost`) when its cost (evaluations x network parameters, and
+    the answer's bytes) is over the budget per request, and with 422
     (`urn:keelson:problem:output-overflow`) when the output overflows."""
     started = time.monotonic()
     cache = get_version_cache()
@@ -93,8 +93,10 @@ def get_prediction(name: str) -> Response:
 def post_predictions(name: str) -> Response:
     """Score a batch of records, in input order, each with its explanation.
 
-    The request's cost is records x evaluations per record x network
-    parameters; over the budget it is refused with 422
+    The explanations' `baseline`, the same for every record, is answered once
+    beside the `results`. The request's cost is records x evaluations per
+    record x network parameters, plus the bytes its answer may take; over the
+    budget it is refused with 422
     (`urn:keelson:problem:over-budget`) before any work. Past its deadline it
     ends with 503 (`urn:keelson:problem:deadline-exceeded`, `Retry-After`)."""
     started = time.monotonic()
