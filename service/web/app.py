@@ -8,9 +8,10 @@ from typing import Any
 import flask_smorest
 from flask import Flask
 from flask_smorest.spec.plugins import integerconverter2paramschema
-from werkzeug.routing import IntegerConverter
+from werkzeug.routing import IntegerConverter, UnicodeConverter
 
 from service.config import load_config
+from service.usecases.common import MODEL_NAME_PATTERN
 from service.web import auth, observability, paths, problems
 from service.web.body_limit import BoundedRequest
 from service.web.extensions import init_database, init_version_cache
@@ -41,6 +42,13 @@ class BoundedIntegerConverter(IntegerConverter):
     def __init__(self, map: Any, fixed_digits: int = 0, min: int | None = None,
                  max: int | None = MAX_PATH_INTEGER, signed: bool = False) -> None:
         super().__init__(map, fixed_digits, min, max, signed)
+
+
+def name_schema(_converter: Any) -> dict[str, Any]:
+    """A ``<name>`` path segment as documented: every one names a model, so
+    it is a model name (any other string is a 404, and one holding an encoded
+    slash or backslash a 400: service/web/paths.py)."""
+    return {"type": "string", "pattern": f"^{MODEL_NAME_PATTERN}$"}
 
 
 class Api(flask_smorest.Api):  # type: ignore[misc]  # flask-smorest ships no types
@@ -83,6 +91,7 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     api = Api(app, spec_kwargs={"info": {"description": "Keelson HTTP API (v1)."},
                                 "marshmallow_plugin": DocumentingPlugin()})
     api.register_converter(BoundedIntegerConverter, integerconverter2paramschema)
+    api.register_converter(UnicodeConverter, name_schema)
     api.spec.components.security_scheme("bearer", {"type": "http", "scheme": "bearer"})
     for blueprint in BLUEPRINTS:
         api.register_blueprint(blueprint)
