@@ -208,7 +208,11 @@ class Choice(fields.Field[Any]):
 
     def unknown(self, value: Any) -> str:
         """The message for a value that is none of the choices."""
-        shown = clip(repr(value), ECHOED_CHARS)
+        if isinstance(value, str) and len(value) > ECHOED_CHARS:
+            # Cut before its repr is made: a bad value may be megabytes long.
+            shown = f"{value[:ECHOED_CHARS]!r}... ({len(value):,} characters)"
+        else:
+            shown = clip(repr(value), ECHOED_CHARS + 2)  # a string's quotes
         if len(self.choices) <= LISTED_CHOICES:
             return f"Unknown {self.what} {shown}; expected one of {self.choices!r}."
         every = _ALL_OF.get(self.what, f"{self.what}s of this field")
