@@ -184,7 +184,8 @@ SETTINGS: tuple[Setting, ...] = (
             "effect within this)"),
     Setting("KEELSON_PREDICTION_BUDGET", API, 8_000_000_000, positive_whole_number,
             "largest cost of one prediction request, about records x rows evaluated per "
-            "record x parameters (422 beyond; README, \"Request budget\")"),
+            "record x parameters, plus 500 per byte its answer may take (422 beyond; "
+            "README, \"Request budget\")"),
     Setting("KEELSON_PREDICTION_DEADLINE_SECONDS", API, 10.0, positive_number,
             "seconds a prediction request may compute before it answers 503"),
     Setting("KEELSON_HOST", SERVER, "127.0.0.1", text, "address the API listens on"),

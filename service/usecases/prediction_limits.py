@@ -21,9 +21,21 @@ of the development machine in every request of 1,000 records that took 0.3 s
 or more, for networks from 20-16-1 to 20-1024-1024-1024-1 and every method,
 where a plain records x rows x parameters count varied from 0.09 to 26 ns.
 (Smaller requests pay a fixed 10 to 25 us per record that the batch limit
-bounds to a few tens of milliseconds.) A request over
-``KEELSON_PREDICTION_BUDGET`` is refused before any work (422, the figures in
-the answer); the default, 8e9, keeps a request under about 2 s of one core.
+bounds to a few tens of milliseconds.)
+
+The answer counts too: ANSWER_BYTE_COST units per byte it may take (an
+estimate from above, made before any work by ``usecases.predictions``). A
+model's answer to a small record can be large (1,000 classes named with 200
+characters: 220 KB of probabilities per record of 33 bytes, so a 33 KB
+request once drew a 224 MB answer). Building and sending an answer took 3.7
+to 15 ns a byte (16 to 300 units); a byte is charged more, 500, on purpose:
+at the default budget no answer exceeds 16 MB, the largest request body,
+while an ordinary answer of 1,000 records (some 600 bytes each) costs 3e8,
+under 4 % of the budget.
+
+A request over ``KEELSON_PREDICTION_BUDGET`` is refused before any work (422,
+the figures in the answer); the default, 8e9, keeps a request under about
+2 s of one core.
 
 A request within budget can still be slow on a busy host: its deadline
 (``KEELSON_PREDICTION_DEADLINE_SECONDS``, from the moment the view started) is
@@ -69,6 +81,7 @@ class ClientGoneError(KeelsonError):
 
 PASS_ROWS = 8
 UNIT_COST = 100
+ANSWER_BYTE_COST = 500
 
 
 def rows_per_record(explain: str, steps: int, samples: int) -> int:
@@ -101,19 +114,23 @@ class PredictionLimits:
     _next_peek: float = 0.0
 
     def check_cost(self, records: int, explain: str, steps: int, samples: int,
-                   parameters: int, units: int) -> None:
-        """OverBudgetError, before any work, when the request costs too much."""
-        cost = request_cost(records, explain, steps, samples, parameters, units)
+                   parameters: int, units: int, answer_bytes: int = 0) -> None:
+        """OverBudgetError, before any work, when the request costs too much:
+        its computation, and ``answer_bytes``, at most what its answer takes."""
+        compute = request_cost(records, explain, steps, samples, parameters, units)
+        cost = compute + ANSWER_BYTE_COST * answer_bytes
         if cost <= self.budget:
             return
         rows = rows_per_record(explain, steps, samples)
         raise OverBudgetError(
             f"This request would cost {cost:,} budget units, over the budget of "
-            f"{self.budget:,} per request: {records:,} records x {rows:,} "
-            f"row{'s' if rows != 1 else ''} evaluated per record (explain={explain}) x "
-            f"{parameters + UNIT_COST * units:,} for a network of {parameters:,} parameters "
-            f"and {units:,} units. Send fewer records per request, lower steps or samples, "
-            "or explain with gradient or none.",
+            f"{self.budget:,} per request: {compute:,} to compute ({records:,} records x "
+            f"{rows:,} row{'s' if rows != 1 else ''} evaluated per record "
+            f"(explain={explain}) x {parameters + UNIT_COST * units:,} for a network of "
+            f"{parameters:,} parameters and {units:,} units) and "
+            f"{ANSWER_BYTE_COST * answer_bytes:,} for an answer of up to {answer_bytes:,} "
+            f"bytes ({ANSWER_BYTE_COST} a byte). Send fewer records per request, lower steps "
+            "or samples, or explain with gradient or none.",
             members={"budget": self.budget, "cost": cost},
         )
 

@@ -13,6 +13,7 @@ from dataclasses import dataclass, fields
 from typing import Any
 
 import numpy as np
+import orjson
 
 import engine
 from service.errors import ConflictError, KeelsonError, NotFoundError
@@ -91,8 +92,14 @@ def predict(
     limits: PredictionLimits | None = None,
     *,
     batch: bool = False,
-) -> tuple[int, list[dict[str, Any]]]:
-    """The serving version's number and ``{"result", "explanation"}`` per row, in order.
+) -> tuple[int, dict[str, Any] | None, list[dict[str, Any]]]:
+    """The serving version's number, the explanations' baseline (None when
+    nothing is explained) and ``{"result", "explanation"}`` per row, in order.
+
+    The baseline is the version's own (the mean of what it learned from), the
+    same for every row: answered once, not per row, where a categorical
+    field's {level: share} made each record's answer kilobytes long (a 2.2 MB
+    request once drew a 95.7 MB answer).
 
     Engine inference allocates per call and keeps no state between calls, so
     one cached network serves concurrent requests without a lock. ``limits``
@@ -105,11 +112,13 @@ def predict(
     if limits is not None:
         network = learner.network
         limits.check_cost(len(rows), options.explain, options.steps, options.samples,
-                          network.params.size, sum(network.sizes[1:]))
+                          network.params.size, sum(network.sizes[1:]),
+                          answer_bytes(learner, len(rows), options.explain != "none"))
     encoded = learner.encode(rows)
     scores = learner.predict(encoded)
     classes = learner.classes if learner.task != "regression" else None
     answers = []
+    baseline = None
     for index in range(len(rows)):
         if index and limits is not None:
             limits.between_records(index, len(rows))
@@ -125,15 +134,48 @@ def predict(
         explanation = None
         if options.explain != "none":
             try:
-                explanation = _explanation(learner.explain(
+                explained = learner.explain(
                     encoded[index], method=options.explain, output=output,
                     steps=options.steps, samples=options.samples, noise=options.noise,
-                    seed=options.seed))
+                    seed=options.seed)
+                explanation = _explanation(explained)
+                if baseline is None:
+                    baseline = {name: _baseline(v) for name, v in explained.baseline.items()}
             except NonFiniteOutputError:
                 raise _overflow(learner, rows[index], encoded[index], index, batch,
                                 "explanation") from None
         answers.append({"result": result, "explanation": explanation})
-    return loaded.number, answers
+    return loaded.number, baseline, answers
+
+
+# The longest number an answer holds ("-2.2250738585072014e-308") and its
+# separator; the members every record's answer has beside its numbers and
+# names (member names, the method, the brackets).
+NUMBER_BYTES = 25
+RECORD_BYTES = 160
+
+
+def answer_bytes(learner: Any, records: int, explained: bool) -> int:
+    """At most how many bytes the answer of ``records`` rows takes: per record
+    a probability per class (each named) or a value, and when ``explained``
+    an attribution per field; once, the baseline. Priced into the request's
+    budget (prediction_limits.py); it costs less than one record's answer."""
+    per_record = RECORD_BYTES + NUMBER_BYTES
+    if learner.task != "regression":
+        keys = [class_key(c) for c in learner.classes]
+        # The probabilities' keys, and the label and the explained output (at
+        # most 6 bytes a character, quoted).
+        longest = 2 + 6 * max(map(len, keys))
+        per_record += len(orjson.dumps(keys)) + 2 * longest + NUMBER_BYTES * len(keys)
+    once = RECORD_BYTES
+    if explained:
+        encoder = learner.encoder
+        fields = orjson.dumps(encoder.fields)
+        per_record += len(fields) + NUMBER_BYTES * (len(encoder.fields) + 3)
+        levels = [str(level) for name in encoder.fields for level in encoder.levels.get(name, ())]
+        once += len(fields) + len(orjson.dumps(levels)) + NUMBER_BYTES * (
+            len(encoder.fields) + len(levels))
+    return once + records * per_record
 
 
 def _overflow(learner: Any, row: Mapping[str, Any], encoded: Any, index: int, batch: bool,
@@ -206,7 +248,6 @@ def _explanation(explained: Any) -> dict[str, Any]:
         "method": explained.method,
         "output": explained.output,
         "attributions": {name: _finite(v) for name, v in explained.attributions.items()},
-        "baseline": {name: _baseline(v) for name, v in explained.baseline.items()},
         "completeness_gap": None if gap is None else _finite(gap),
         "value": _finite(explained.value),
         "baseline_value": _finite(explained.baseline_value),

@@ -6,6 +6,12 @@ with ``type``, ``title``, ``status``, ``detail`` and, for validation errors,
 Unexpected exceptions are logged with their traceback and answered without it;
 in testing they surface instead, so a test sees the real failure.
 
+Every answer stays under 1 MiB whatever the request (a 34 KB ingest once drew
+a 102 MB 422): ``problem`` lists the first ``MAX_LISTED_ERRORS`` field paths
+and counts the rest in ``errors_omitted``, and cuts every path, message and
+detail short (``clip``). Where messages are made, they echo no long lists
+either (service/web/schemas/fields.py).
+
 Rendering an envelope cannot fail on the text it carries: a field path or a
 message quoting text that breaks the text rule (a lone surrogate, refused by
 ``service.text``) is shown escaped, so the answer is always UTF-8.
@@ -32,6 +38,15 @@ BLANK = "about:blank"
 VALIDATION_TYPE = "urn:keelson:problem:invalid-input"
 # Headers of an HTTP error worth keeping on the problem answer.
 _KEPT_HEADERS = ("Allow", "WWW-Authenticate", "Retry-After")
+# The size caps of an answer, in characters. JSON spends at most 6 bytes on a
+# character (a control character as \u0001), so the listed errors take at most
+# 100 x (200 + 3 x 300) x 6 = 660,000 bytes and the detail 12,000: with the
+# fixed members, under 1 MiB (tests/reliability/test_answer_sizes.py).
+MAX_LISTED_ERRORS = 100
+MAX_MESSAGES_PER_PATH = 3
+MAX_PATH_CHARS = 200
+MAX_MESSAGE_CHARS = 300
+MAX_DETAIL_CHARS = 2000
 
 log = logging.getLogger(__name__)
 
@@ -51,10 +66,12 @@ def problem(
         "type": type_ or (VALIDATION_TYPE if errors else BLANK),
         "title": title or HTTPStatus(status).phrase,
         "status": status,
-        "detail": detail,
+        "detail": clip(detail, MAX_DETAIL_CHARS),
     }
     if errors:
-        body["errors"] = dict(errors)
+        body["errors"], omitted = _listed(errors)
+        if omitted:
+            body["errors_omitted"] = omitted
     if members:
         body.update(members)
     try:
@@ -65,6 +82,30 @@ def problem(
     for name, value in (headers or {}).items():
         response.headers[name] = value
     return response
+
+
+def clip(text: str, limit: int) -> str:
+    """``text`` cut to at most ``limit`` characters, saying how long it was."""
+    if len(text) <= limit:
+        return text
+    note = f"... ({len(text):,} characters)"
+    return text[:max(limit - len(note), 0)] + note
+
+
+def _listed(errors: Mapping[str, list[str]]) -> tuple[dict[str, list[str]], int]:
+    """The first field paths and their first messages, each cut short, and
+    how many paths were left out."""
+    listed: dict[str, list[str]] = {}
+    for taken, (path, messages) in enumerate(errors.items()):
+        if taken == MAX_LISTED_ERRORS:
+            return listed, len(errors) - taken
+        # Two long paths may share their first characters: the later one
+        # joins the messages of the first rather than replacing them.
+        shown = listed.setdefault(clip(path, MAX_PATH_CHARS), [])
+        for message in messages[:MAX_MESSAGES_PER_PATH]:
+            if len(shown) < MAX_MESSAGES_PER_PATH:
+                shown.append(clip(message, MAX_MESSAGE_CHARS))
+    return listed, 0
 
 
 def flatten_messages(messages: Any, prefix: str = "") -> dict[str, list[str]]:

@@ -102,9 +102,11 @@ def served_output(api: ApiClient, name: str, features: Mapping[str, float],
 
 def explained(api: ApiClient, name: str, features: Mapping[str, float],
               **params: Any) -> dict[str, Any]:
+    """The answer's explanation, with the answer's baseline (answered once
+    beside it) put in as ``baseline``."""
     query = {**{k: repr(v) for k, v in features.items()}, **params}
-    explanation: dict[str, Any] = api.request(
-        "GET", f"/v1/models/{name}/predictions?{urlencode(query)}", 200)["explanation"]
+    body = api.request("GET", f"/v1/models/{name}/predictions?{urlencode(query)}", 200)
+    explanation: dict[str, Any] = {**body["explanation"], "baseline": body["baseline"]}
     return explanation
 
 

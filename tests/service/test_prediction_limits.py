@@ -10,13 +10,14 @@ from flask import Flask
 
 from engine import Learner
 from service.usecases.prediction_limits import (
+    ANSWER_BYTE_COST,
     PASS_ROWS,
     UNIT_COST,
     ClientGoneError,
     PredictionLimits,
     request_cost,
 )
-from service.usecases.predictions import PredictionOptions, find_model, predict
+from service.usecases.predictions import PredictionOptions, answer_bytes, find_model, predict
 from service.web.disconnect import client_gone_probe, connection_closed
 from service.web.extensions import get_database, get_version_cache
 from tests.service.conftest import build_app
@@ -30,6 +31,10 @@ OVER_BUDGET = "urn:keelson:problem:over-budget"
 
 
 def served(app: Flask, hidden: list[int] | None = None) -> ApiClient:
+    return serving(app, hidden)[0]
+
+
+def serving(app: Flask, hidden: list[int] | None = None) -> tuple[ApiClient, Learner]:
     api = ApiClient(app)
     created = create_model(api, **({"hidden_layers": hidden} if hidden else {}))
     if hidden and sum(hidden) > 1000:  # too big to train in a test: fresh weights serve
@@ -37,7 +42,12 @@ def served(app: Flask, hidden: list[int] | None = None) -> ApiClient:
     else:
         learner = train_learner(created, pump_rows(64), pump_rule, passes=1)
     add_version(app, "pump-risk", learner.to_bytes())
-    return api
+    return api, learner
+
+
+def answer_cost(learner: Learner, records: int, explained: bool = True) -> int:
+    """What the answer of ``records`` rows adds to a request's cost."""
+    return ANSWER_BYTE_COST * answer_bytes(learner, records, explained)
 
 
 def test_the_cost_counts_records_rows_and_network_size() -> None:
@@ -55,7 +65,7 @@ def test_the_reported_costly_request_is_refused_before_any_work(sqlite_url: str)
     some 300 times the default budget. Its 2.1 million parameters are beyond
     today's default size limit, so this server allows more."""
     app = build_app(sqlite_url, KEELSON_MAX_PARAMETERS=3_000_000)
-    api = served(app, hidden=[1024, 1024, 1024])
+    api, learner = serving(app, hidden=[1024, 1024, 1024])
     body = api.request("POST", PATH, 422, json_body={
         "records": [{"features": ROW}] * 1000, "steps": 1024})
     assert body["type"] == OVER_BUDGET
@@ -63,7 +73,8 @@ def test_the_reported_costly_request_is_refused_before_any_work(sqlite_url: str)
     # 4 inputs (a number, a categorical field of 2 levels, a boolean), 3 x 1024, 1 output.
     parameters = (4 + 1) * 1024 + 2 * (1024 + 1) * 1024 + (1024 + 1) * 1
     units = 3 * 1024 + 1
-    assert body["cost"] == 1000 * (1024 + 3 + PASS_ROWS) * (parameters + UNIT_COST * units)
+    assert body["cost"] == 1000 * (1024 + 3 + PASS_ROWS) * (parameters + UNIT_COST * units) \
+        + answer_cost(learner, 1000)
     assert "8,000,000,000" in body["detail"] and f"{body['cost']:,}" in body["detail"]
     # One record of it fits (it takes well under the 2 s the budget allows).
     api.request("POST", PATH, 200, json_body={"records": [{"features": ROW}],
@@ -72,19 +83,26 @@ def test_the_reported_costly_request_is_refused_before_any_work(sqlite_url: str)
 
 
 def test_the_budget_is_a_setting_and_every_method_is_counted(sqlite_url: str) -> None:
-    app = build_app(sqlite_url, KEELSON_PREDICTION_BUDGET=200_000)
-    api = served(app)
+    budget = 600_000
+    app = build_app(sqlite_url, KEELSON_PREDICTION_BUDGET=budget)
+    api, learner = serving(app)
     # The pump model: 4 inputs, 32-16 hidden, 1 output: 705 parameters, 49 units.
     size = (4 + 1) * 32 + (32 + 1) * 16 + (16 + 1) * 1 + UNIT_COST * 49
-    assert (2 + PASS_ROWS) * size < 200_000 < (64 + 3 + PASS_ROWS) * size
+    one = answer_cost(learner, 1)
+    assert (2 + PASS_ROWS) * size + one < budget < (64 + 3 + PASS_ROWS) * size + one
     api.request("GET", f"{PATH}?{QUERY}&explain=gradient", 200)
     body = api.request("GET", f"{PATH}?{QUERY}", 422)  # integrated gradients, 64 steps
-    assert (body["budget"], body["cost"]) == (200_000, (64 + 3 + PASS_ROWS) * size)
+    assert (body["budget"], body["cost"]) == (budget, (64 + 3 + PASS_ROWS) * size + one)
+    assert (8 + 2 + PASS_ROWS) * size + one < budget < (32 + 2 + PASS_ROWS) * size + one
     api.request("GET", f"{PATH}?{QUERY}&explain=smoothgrad&samples=8", 200)
     api.request("GET", f"{PATH}?{QUERY}&explain=smoothgrad&samples=32", 422)
-    api.request("POST", PATH, 200, json_body={"records": [{"features": ROW}] * 30,
+    # Without explanations: each record's answer, a few hundred bytes, costs
+    # more than its one row of computation.
+    assert 3 * size + answer_cost(learner, 3, False) < budget
+    assert 3 * (2 + PASS_ROWS) * size + answer_cost(learner, 3) > budget
+    api.request("POST", PATH, 200, json_body={"records": [{"features": ROW}] * 3,
                                               "explain": "none"})
-    api.request("POST", PATH, 422, json_body={"records": [{"features": ROW}] * 30,
+    api.request("POST", PATH, 422, json_body={"records": [{"features": ROW}] * 3,
                                               "explain": "gradient"})
     get_database(app).engine.dispose()
 

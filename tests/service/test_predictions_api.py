@@ -54,8 +54,14 @@ def explanation_body(learner: Learner, features: Mapping[str, Any], method: str,
                      **kwargs: Any) -> dict[str, Any]:
     e = learner.explain(features, method=method, output=output, **kwargs)
     return {"method": method, "output": e.output, "attributions": e.attributions,
-            "baseline": e.baseline, "completeness_gap": e.completeness_gap,
+            "completeness_gap": e.completeness_gap,
             "value": e.value, "baseline_value": e.baseline_value}
+
+
+def baseline_of(learner: Learner) -> dict[str, Any]:
+    """The reference input of every explanation the version answers: its input
+    mean in raw units, answered once per answer (not per record)."""
+    return learner.encoder.raw_baseline(learner.input_mean)
 
 
 def pump_answers(learner: Learner, rows: list[dict[str, Any]], *, method: str =
@@ -85,7 +91,8 @@ def test_get_answers_the_contract_body_with_integrated_gradients(any_api: ApiCli
     learner = pump_version(any_api)
     body = any_api.request("GET", f"{PATH}?{PUMP_QUERY}", 200)
     assert any_api.last.mimetype == "application/json"
-    assert body == {"model": "pump-risk", "version": 1, **pump_answer(learner, PUMP)}
+    assert body == {"model": "pump-risk", "version": 1, "baseline": baseline_of(learner),
+                    **pump_answer(learner, PUMP)}
     assert body["explanation"]["completeness_gap"] < 1e-3
     assert PredictionSchema().validate(body) == {}
 
@@ -96,6 +103,7 @@ def test_every_explanation_method_is_served(api: ApiClient, method: str) -> None
     learner = pump_version(api)
     body = api.request("GET", f"{PATH}?{PUMP_QUERY}&explain={method}", 200)
     assert body == {"model": "pump-risk", "version": 1,
+                    "baseline": None if method == "none" else baseline_of(learner),
                     **pump_answer(learner, PUMP, method=method)}
     if method == "none":
         assert body["explanation"] is None  # documented: null, the key stays
@@ -119,7 +127,8 @@ def test_post_scores_a_batch_in_input_order(any_api: ApiClient) -> None:
     rows = pump_rows(5, seed=11)
     body = any_api.request("POST", PATH, 200, json_body={
         "records": [{"features": row} for row in rows], "explain": "gradient"})
-    assert body == {"model": "pump-risk", "version": 1,
+    # The baseline, the same for every record, once beside the results.
+    assert body == {"model": "pump-risk", "version": 1, "baseline": baseline_of(learner),
                     "results": pump_answers(learner, rows, method="gradient")}
     assert PredictionBatchSchema().validate(body) == {}
 
@@ -144,7 +153,7 @@ def test_boolean_classes_are_spelled_false_and_true(api: ApiClient) -> None:
     body = api.request("GET", f"{PATH}?{PUMP_QUERY}&output=true&explain=gradient", 200)
     p_false, p_true = learner.predict(learner.encode([PUMP]))[0].tolist()
     assert body == {
-        "model": "pump-risk", "version": 1,
+        "model": "pump-risk", "version": 1, "baseline": baseline_of(learner),
         "result": {"label": p_true > p_false, "probabilities": {"false": p_false,
                                                                 "true": p_true}},
         "explanation": explanation_body(learner, PUMP, "gradient", True),
@@ -165,7 +174,8 @@ def test_regression_answers_a_value(api: ApiClient) -> None:
     body = api.request("GET", "/v1/models/flow/predictions?a=3.5&b=-1", 200)
     x = {"a": 3.5, "b": -1.0}
     value = learner.predict(learner.encode([x]))[0, 0]
-    assert body == {"model": "flow", "version": 1, "result": {"value": value},
+    assert body == {"model": "flow", "version": 1, "baseline": baseline_of(learner),
+                    "result": {"value": value},
                     "explanation": explanation_body(learner, x, "integrated_gradients", None)}
     assert body["explanation"]["output"] is None
 
@@ -175,9 +185,11 @@ def test_a_pinned_version_answers_while_another_is_active(any_api: ApiClient) ->
     first = pump_version(any_api, passes=1)
     second = pump_version(any_api, passes=4, seed=5)
     body = any_api.request("GET", f"{PATH}?{PUMP_QUERY}&version=1", 200)
-    assert body == {"model": "pump-risk", "version": 1, **pump_answer(first, PUMP)}
+    assert body == {"model": "pump-risk", "version": 1, "baseline": baseline_of(first),
+                    **pump_answer(first, PUMP)}
     body = any_api.request("GET", f"{PATH}?{PUMP_QUERY}", 200)
-    assert body == {"model": "pump-risk", "version": 2, **pump_answer(second, PUMP)}
+    assert body == {"model": "pump-risk", "version": 2, "baseline": baseline_of(second),
+                    **pump_answer(second, PUMP)}
     missing = any_api.request("GET", f"{PATH}?{PUMP_QUERY}&version=9", 404)
     assert missing["errors"] == {"version": ["No version 9."]}
     assert missing["status"] == 404
@@ -341,5 +353,7 @@ def test_the_openapi_document_describes_both_prediction_routes(api: ApiClient) -
     assert request_schema["required"] == ["records"]
     assert set(request_schema["properties"]) == set(parameters) - {"features"} | {"records"}
     explanation = doc["components"]["schemas"]["Explanation"]
-    assert set(explanation["required"]) == {"method", "output", "attributions", "baseline",
+    assert set(explanation["required"]) == {"method", "output", "attributions",
                                             "completeness_gap", "value", "baseline_value"}
+    for answer in ("Prediction", "PredictionBatch"):
+        assert "baseline" in doc["components"]["schemas"][answer]["required"]

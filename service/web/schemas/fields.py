@@ -17,6 +17,8 @@ from typing import Any
 
 from marshmallow import ValidationError, fields, validate
 
+from service.web.problems import clip
+
 _JSON_NUMBER = re.compile(r"-?(?:0|[1-9][0-9]*)(?:\.[0-9]+)?(?:[eE][+-]?[0-9]+)?")
 _DIGITS = re.compile(r"-?[0-9]{1,20}")  # read exactly as an integer
 NON_FINITE = "NaN and Infinity are not numbers JSON allows (RFC 8259 section 6)."
@@ -26,6 +28,12 @@ FALSE_TEXT = frozenset({"false", "0"})
 # one, and the documents say so, so "any number" always has these bounds.
 LARGEST = sys.float_info.max
 LARGEST_INT = int(LARGEST)
+# A message names the allowed choices only when they are this few, and echoes
+# at most this many characters of a bad value: a 34 KB ingest of bad records
+# once drew a 102 MB answer, each record repeating a field's 300 levels.
+LISTED_CHOICES = 10
+ECHOED_CHARS = 60
+_ALL_OF = {"level": "levels of this field", "class": "classes of the model"}
 
 
 def _document(field: fields.Field[Any], **values: Any) -> None:
@@ -216,9 +224,21 @@ class Choice(fields.Field[Any]):
     def _deserialize(self, value: Any, attr: str | None, data: Any, **kwargs: Any) -> Any:
         found = choose(self.lookup, value)
         if found is MISSING:
-            raise ValidationError(
-                f"Unknown {self.what} {value!r}; expected one of {self.choices!r}.")
+            raise ValidationError(self.unknown(value))
         return found
+
+    def unknown(self, value: Any) -> str:
+        """The message for a value that is none of the choices."""
+        if isinstance(value, str) and len(value) > ECHOED_CHARS:
+            # Cut before its repr is made: a bad value may be megabytes long.
+            shown = f"{value[:ECHOED_CHARS]!r}... ({len(value):,} characters)"
+        else:
+            shown = clip(repr(value), ECHOED_CHARS + 2)  # a string's quotes
+        if len(self.choices) <= LISTED_CHOICES:
+            return f"Unknown {self.what} {shown}; expected one of {self.choices!r}."
+        every = _ALL_OF.get(self.what, f"{self.what}s of this field")
+        return (f"Unknown {self.what} {shown}: not one of the {len(self.choices):,} {every}; "
+                "GET /v1/models/{name}/schema lists them.")
 
 
 class ChoiceFromText(Choice):

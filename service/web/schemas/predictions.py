@@ -276,9 +276,6 @@ class ExplanationSchema(Schema):
     attributions = fields.Dict(keys=fields.String(), values=fields.Float(), required=True,
                                metadata={"description": "Declared feature -> attribution, "
                                          "in output units."})
-    baseline = fields.Dict(keys=fields.String(), values=fields.Raw(), required=True, metadata={
-        "description": "The reference input: numbers in raw units, booleans as the share "
-        "of true, categorical fields as {level: share}."})
     completeness_gap = fields.Float(required=True, allow_none=True, metadata={
         "description": "Integrated gradients: |sum(attributions) - (value - baseline_value)|."})
     value = fields.Float(required=True, metadata={"description": "f(input) explained."})
@@ -291,12 +288,24 @@ class ScoredRecordSchema(Schema):
         "description": "null when explain=none."})
 
 
+def baseline_field() -> fields.Dict:
+    """The reference input every explanation of an answer is measured from,
+    answered once beside the records (the same for all of them)."""
+    return fields.Dict(keys=fields.String(), values=fields.Raw(), required=True,
+                       allow_none=True, metadata={
+        "description": "The reference input of every explanation: the mean of the inputs "
+        "the version learned from, numbers in raw units, booleans as the share of true, "
+        "categorical fields as {level: share}; null when explain=none."})
+
+
 class PredictionSchema(ScoredRecordSchema):
     model = fields.String(required=True)
     version = fields.Integer(required=True)
+    baseline = baseline_field()
 
 
 class PredictionBatchSchema(Schema):
     model = fields.String(required=True)
     version = fields.Integer(required=True)
+    baseline = baseline_field()
     results = fields.List(fields.Nested(ScoredRecordSchema), required=True)

@@ -132,13 +132,17 @@ class ProblemSchema(Schema):
     detail = fields.String(required=True)
     errors = fields.Dict(
         keys=fields.String(), values=fields.List(fields.String()),
-        metadata={"description": "Field path -> messages, for invalid input."},
+        metadata={"description": "Field path -> messages, for invalid input: the first "
+                  "100 paths, each with its first 3 messages."},
     )
+    errors_omitted = fields.Integer(metadata={
+        "description": "How many more field paths were at fault than `errors` lists."})
     budget = fields.Integer(metadata={
         "description": "`urn:keelson:problem:over-budget`: the budget units a prediction "
         "request may cost (KEELSON_PREDICTION_BUDGET)."})
     cost = fields.Integer(metadata={
         "description": "`urn:keelson:problem:over-budget`: what the request would cost: "
-        "records x (rows evaluated per record + 8) x (parameters + 100 x units)."})
+        "records x (rows evaluated per record + 8) x (parameters + 100 x units) + 500 x "
+        "the bytes its answer may take."})
     deadline_seconds = fields.Float(metadata={
         "description": "`urn:keelson:problem:deadline-exceeded`: the deadline that passed."})

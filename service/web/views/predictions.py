@@ -73,15 +73,16 @@ def get_prediction(name: str) -> Response:
     """Score one record given as query parameters, and explain the score.
 
     Refused with 422 (`urn:keelson:problem:over-budget`, the figures in
-    `budget` and `cost`) when its cost (evaluations x network parameters) is
-    over the budget per request, and with 422
+    `budget` and `cost`) when its cost (evaluations x network parameters, and
+    the answer's bytes) is over the budget per request, and with 422
     (`urn:keelson:problem:output-overflow`) when the output overflows."""
     started = time.monotonic()
     cache = get_version_cache()
     entry = find_model(cache, name)
     features, options = prediction_readers(entry).read_query(request.args)
-    number, (answer,) = predict(cache, entry, (features,), options, _limits(started))
-    return _json({"model": entry.name, "version": number, **answer})
+    number, baseline, (answer,) = predict(cache, entry, (features,), options,
+                                          _limits(started))
+    return _json({"model": entry.name, "version": number, "baseline": baseline, **answer})
 
 
 @blueprint.route("/<model:name>/predictions", methods=["POST"])
@@ -92,8 +93,10 @@ def get_prediction(name: str) -> Response:
 def post_predictions(name: str) -> Response:
     """Score a batch of records, in input order, each with its explanation.
 
-    The request's cost is records x evaluations per record x network
-    parameters; over the budget it is refused with 422
+    The explanations' `baseline`, the same for every record, is answered once
+    beside the `results`. The request's cost is records x evaluations per
+    record x network parameters, plus the bytes its answer may take; over the
+    budget it is refused with 422
     (`urn:keelson:problem:over-budget`) before any work. Past its deadline it
     ends with 503 (`urn:keelson:problem:deadline-exceeded`, `Retry-After`)."""
     started = time.monotonic()
@@ -102,5 +105,7 @@ def post_predictions(name: str) -> Response:
     body = read_json_body(request)
     limit = int(current_app.config["KEELSON_MAX_PREDICTION_BATCH"])
     rows, options = prediction_readers(entry).read_body(body, request.args, limit)
-    number, answers = predict(cache, entry, rows, options, _limits(started), batch=True)
-    return _json({"model": entry.name, "version": number, "results": answers})
+    number, baseline, answers = predict(cache, entry, rows, options, _limits(started),
+                                        batch=True)
+    return _json({"model": entry.name, "version": number, "baseline": baseline,
+                  "results": answers})
