@@ -22,7 +22,9 @@ import numpy as np
 import pytest
 
 from service.usecases.prediction_limits import ANSWER_BYTE_COST
+from service.web.extensions import get_database
 from service.web.schemas.spec import MAX_VALUE_LENGTH
+from tests.service.conftest import build_app
 from tests.service.helpers import ADMIN_TOKEN, ApiClient
 from tests.service.predictions_factory import add_version, train_learner
 
@@ -74,6 +76,17 @@ def error_answer(api: ApiClient, path: str, body: Any, what: str) -> dict[str, A
 def figures() -> Iterator[None]:
     yield
     print("\nanswer size figures:", json.dumps(FIGURES))
+
+
+@pytest.fixture
+def any_api(database_url: str) -> Iterator[ApiClient]:
+    """A server whose operator raised the model size limits: the models here
+    are beyond the defaults (300 levels, 1,000 long class names), and the
+    answers must stay bounded all the same."""
+    app = build_app(database_url, KEELSON_MAX_LEVELS=1000, KEELSON_MAX_CLASSES=1000,
+                    KEELSON_MAX_SPEC_BYTES=1_000_000)
+    yield ApiClient(app)
+    get_database(app).engine.dispose()
 
 
 @pytest.fixture
