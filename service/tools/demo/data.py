@@ -91,24 +91,36 @@ def failure_probability(features: dict[str, Any]) -> float:
     return _logistic(logit)
 
 
-def generate_records(count: int, seed: int = 7) -> Iterator[dict[str, Any]]:
+def generate_records(count: int, seed: int = 7, *, first_week: int = 0,
+                     heat_wave_stations: frozenset[int] = frozenset(),
+                     heat_wave_c: float = 0.0) -> Iterator[dict[str, Any]]:
     """``count`` labelled pump-weeks, in week order, as API records with keys.
 
-    The same ``(count, seed)`` always gives the same records, so sending them
-    twice stores nothing new (the keys repeat).
+    The same arguments always give the same records, so sending them twice
+    stores nothing new (the keys repeat). The seed draws the fleet (each
+    pump's family, drive and duty) and then its weeks; ``first_week`` starts
+    the weeks later, the same fleet with weeks of their own (the second act
+    scores pump-weeks after the training ones), and the stations in
+    ``heat_wave_stations`` (numbered from 1) run ``heat_wave_c`` hotter bearings
+    through the weather alone: the failure rule still sees the temperature.
     """
     rng = np.random.default_rng(seed)
     pumps = STATIONS * PUMPS_PER_STATION
     family = rng.choice(len(FAMILIES), size=pumps, p=FAMILY_SHARES)
     has_vfd = rng.random(pumps) < 0.4
     busy = rng.random(pumps) < 0.2
+    if first_week:
+        rng = np.random.default_rng([seed, first_week])
     for index in range(count):
-        pump, week = index % pumps, index // pumps
+        pump, week = index % pumps, first_week + index // pumps
+        station = pump // PUMPS_PER_STATION + 1
         wear, e1, e2 = rng.standard_normal(3)
+        hotter = heat_wave_c if station in heat_wave_stations else 0.0
         features = {
             "vibration_rms": round(float(np.clip(math.exp(math.log(3.5) + 0.45 * wear
                                                           + 0.35 * e1), 0.2, 45.0)), 2),
-            "bearing_temp_c": round(float(np.clip(58.0 + 7.0 * wear + 8.0 * e2, 5.0, 120.0)), 1),
+            "bearing_temp_c": round(float(np.clip(58.0 + hotter + 7.0 * wear + 8.0 * e2,
+                                                   5.0, 120.0)), 1),
             "motor_current_dev_pct": round(float(np.clip(rng.normal(0.0, 4.0), -40, 40)), 1),
             "hours_since_service": round(float(rng.uniform(0.0, 9000.0))),
             "starts_per_day": int(rng.poisson(12.0 if busy[pump] else 6.0)),
@@ -116,7 +128,6 @@ def generate_records(count: int, seed: int = 7) -> Iterator[dict[str, Any]]:
             "has_vfd": bool(has_vfd[pump]),
         }
         failed = rng.random() < failure_probability(features)
-        station = pump // PUMPS_PER_STATION + 1
         yield {
             "key": f"st{station:02d}-p{pump % PUMPS_PER_STATION + 1}-w{week + 1:03d}",
             "features": features,
