@@ -19,6 +19,7 @@ from werkzeug.datastructures import MultiDict
 
 from service.errors import InvalidInputError, TooLargeError
 from service.usecases.predictions import (
+    CASE_KEY,
     DEFAULT_EXPLAIN,
     DEFAULT_NOISE,
     DEFAULT_SAMPLES,
@@ -28,7 +29,6 @@ from service.usecases.predictions import (
     MAX_SAMPLES,
     MAX_STEPS,
     MIN_STEPS,
-    CASE_KEY,
     OPTION_NAMES,
     QUERY_NAMES,
     PredictionOptions,
