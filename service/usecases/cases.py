@@ -110,13 +110,18 @@ def _stored_features(session: Session, model_id: int, keys: list[str]
     return dict(find_cases(session, model_id, keys, ScoredCaseRow.features))
 
 
-def find_cases(session: Session, model_id: int, keys: Sequence[str], *columns: Any
-               ) -> list[Any]:
+def find_cases(session: Session, model_id: int, keys: Sequence[str], *columns: Any,
+               lock: bool = False) -> list[Any]:
     """``(key, *columns)`` of the model's cases named by ``keys``, in one
-    query on PostgreSQL (an array parameter), in chunks on SQLite."""
+    query on PostgreSQL (an array parameter), in chunks on SQLite. ``lock``:
+    lock those rows until the transaction ends (PostgreSQL; a SQLite write
+    transaction holds the database lock already), so retention cannot delete
+    a case an outcome is being joined with (service/worker/retention.py)."""
     unique = list(dict.fromkeys(keys))
     query = select(ScoredCaseRow.key, *columns).where(ScoredCaseRow.model_id == model_id)
     if session.get_bind().dialect.name == "postgresql":
+        if lock:
+            query = query.with_for_update()
         return list(session.execute(query.where(
             ScoredCaseRow.key == any_(bindparam("keys", unique, type_=ARRAY(String))))))
     found: list[Any] = []

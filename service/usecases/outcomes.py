@@ -89,7 +89,7 @@ def _accept(session: Session, model: ModelRow, outcomes: Sequence[Mapping[str, A
     found = {row.key: row for row in find_cases(
         session, model.id, [o["key"] for o in outcomes], ScoredCaseRow.id,
         ScoredCaseRow.features, ScoredCaseRow.version_id, ScoredCaseRow.output,
-        ScoredCaseRow.scored_at, ScoredCaseRow.outcome)}
+        ScoredCaseRow.scored_at, ScoredCaseRow.outcome, lock=True)}
     _refuse_unknown(outcomes, found)
     known: dict[str, Any] = {key: row.outcome for key, row in found.items()
                              if row.outcome is not None}
