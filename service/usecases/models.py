@@ -66,6 +66,13 @@ def list_models(db: Database, *, limit: int, after: str | None = None
     return views, (views[-1]["name"] if len(rows) > limit else None)
 
 
+def model_states(db: Database) -> list[dict[str, Any]]:
+    """Every model as GET /v1/models answers it (the metrics read their counts,
+    lags and active versions at scrape time), in three queries."""
+    with db.read() as session:
+        return _views(session, list(session.scalars(select(ModelRow).order_by(ModelRow.name))))
+
+
 def _views(session: Session, rows: list[ModelRow]) -> list[dict[str, Any]]:
     """Model answers with their active version numbers, cursors and lags,
     in three queries however many models there are."""

@@ -18,6 +18,7 @@ from service.usecases.records import ModelChangedError
 from service.web.auth import requires
 from service.web.bodies import is_json_mimetype
 from service.web.csv_outcomes import parse_csv_outcomes
+from service.web.domain_metrics import count_received
 from service.web.extensions import get_database, get_version_cache
 from service.web.schemas.rules import RecordRules, rules_of
 from service.web.schemas.views import IngestResultSchema
@@ -73,4 +74,5 @@ def post_outcomes(name: str) -> dict[str, Any]:
     except ModelChangedError:
         cache.forget(name)  # the client's retry is checked against the model as it is
         raise
+    count_received(entry.name, result.accepted)
     return {"accepted": result.accepted, "duplicates": result.duplicates}

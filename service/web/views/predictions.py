@@ -18,6 +18,7 @@ from service.usecases.prediction_limits import PredictionLimits
 from service.usecases.predictions import find_model, predict
 from service.web.auth import requires
 from service.web.disconnect import client_gone_probe
+from service.web.domain_metrics import count_served
 from service.web.extensions import get_database, get_version_cache
 from service.web.schemas.predictions import (
     PredictionBatchSchema,
@@ -85,6 +86,7 @@ def get_prediction(name: str) -> Response:
                                           _limits(started))
     if key is not None:
         _keep(entry.id, number, [key], [features], [answer], ["key"])
+    count_served(entry.name, number, options.explain, 1)
     return _json({"model": entry.name, "version": number, "baseline": baseline, **answer})
 
 
@@ -114,6 +116,7 @@ def post_predictions(name: str) -> Response:
         keyed = [i for i, key in enumerate(keys) if key is not None]
         _keep(entry.id, number, [keys[i] for i in keyed], [rows[i] for i in keyed],
               [answers[i] for i in keyed], [f"records.{i}.key" for i in keyed])
+    count_served(entry.name, number, options.explain, len(rows))
     return _json({"model": entry.name, "version": number, "baseline": baseline,
                   "results": answers})
 
