@@ -247,8 +247,8 @@ SETTINGS: tuple[Setting, ...] = (
             "days a scored case waits for its outcome; older ones without an outcome are "
             "deleted by the worker, in batches"),
     Setting("KEELSON_BENCH_POSTGRES_URL", TOOLS, None, text,
-            "PostgreSQL server `keelson bench http` and `keelson bench worker` also "
-            "measure on (in a scratch database; same as `--postgres-url`)"),
+            "PostgreSQL server `keelson bench http`, `keelson bench worker` and `keelson "
+            "bench cases` also measure on (in a scratch database; same as `--postgres-url`)"),
 )
 BY_NAME: dict[str, Setting] = {setting.name: setting for setting in SETTINGS}
 

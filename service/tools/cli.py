@@ -368,6 +368,23 @@ def bench_worker(as_json: bool, records: int, postgres_url: str | None,
                            postgres_url=postgres_url, progress=_progress), as_json)
 
 
+@bench.command("cases")
+@click.option("--json", "as_json", is_flag=True, help="One JSON object.")
+@click.option("--duration", type=click.IntRange(1, 600), default=5, show_default=True,
+              help="Seconds per measured round (two rounds each, alternating).")
+@click.option("--connections", type=click.IntRange(1, 1024), default=8, show_default=True)
+@click.option("--postgres-url", default=_bench_postgres_url,
+              help="Also measure on this PostgreSQL server (a scratch database is made) "
+                   "[env KEELSON_BENCH_POSTGRES_URL].")
+def bench_cases(as_json: bool, duration: int, connections: int, postgres_url: str | None
+                ) -> None:
+    """Keyed against unkeyed explained predictions, and outcome ingest (needs wrk)."""
+    from service.tools.bench.cases import run_cases_bench
+
+    emit(run_cases_bench(duration=duration, connections=connections,
+                         postgres_url=postgres_url, progress=_progress), as_json)
+
+
 def _progress(message: str) -> None:
     click.echo(message, err=True)
 
