@@ -127,6 +127,11 @@ def _measure(url: str, scratch: Path, wrk: str, duration: int, connections: int,
                 script = _key_script(scratch / f"{name}.lua", f"w{round_}", keyed)
                 figures[name].append(_wrk(wrk, base + target, [auth], script, duration,
                                           connections, server))
+        # Each keyed request stored a case of its own (wrk counts the answers
+        # it read; a few more may have been in flight when a round ended).
+        figures["cases_stored_by_keyed_rounds"] = _cases_stored(url)
+        figures["keyed_requests_answered"] = sum(f["requests"]
+                                                 for f in figures["predict_keyed"])
         progress(f"[{backend}] scoring {outcome_batches} x {OUTCOME_BATCH} keyed cases")
         figures["outcome_ingest"] = _outcomes(base, token, outcome_batches)
     unkeyed_rate = sum(f["requests_per_s"] for f in figures["predict_unkeyed"])
@@ -134,6 +139,20 @@ def _measure(url: str, scratch: Path, wrk: str, duration: int, connections: int,
     figures["ratios"] = {"keyed_to_unkeyed": round(keyed_rate / unkeyed_rate, 3)
                          if unkeyed_rate else None}
     return figures
+
+
+def _cases_stored(url: str) -> int:
+    from sqlalchemy import func, select
+
+    from service.store.database import make_engine
+    from service.store.tables import ScoredCaseRow
+
+    engine = make_engine(url)
+    try:
+        with engine.connect() as connection:
+            return int(connection.scalar(select(func.count()).select_from(ScoredCaseRow)) or 0)
+    finally:
+        engine.dispose()
 
 
 def _outcomes(base: str, token: str, batches: int) -> dict[str, Any]:
