@@ -162,7 +162,9 @@ def _keep(session: Session, model_id: int, version_number: int,
              "version_id": version_id, "output": case.output, "scored_at": now,
              "rescored": 0}
             for case in fresh.values()])
-    for key, count in counts.items():
+    # Rows locked in key order, as an outcome batch locks them (find_cases):
+    # two such transactions never wait for each other in a cycle.
+    for key, count in sorted(counts.items()):
         session.execute(update(ScoredCaseRow).where(
             ScoredCaseRow.model_id == model_id, ScoredCaseRow.key == key).values(
             rescored=ScoredCaseRow.rescored + count))
@@ -185,8 +187,8 @@ def find_cases(session: Session, model_id: int, keys: Sequence[str], *columns: A
     unique = list(dict.fromkeys(keys))
     query = select(ScoredCaseRow.key, *columns).where(ScoredCaseRow.model_id == model_id)
     if session.get_bind().dialect.name == "postgresql":
-        if lock:
-            query = query.with_for_update()
+        if lock:  # in key order, as re-scores update them (no deadlock between the two)
+            query = query.with_for_update().order_by(ScoredCaseRow.key)
         return list(session.execute(query.where(
             ScoredCaseRow.key == any_(bindparam("keys", unique, type_=ARRAY(String))))))
     found: list[Any] = []
