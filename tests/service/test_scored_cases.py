@@ -10,7 +10,7 @@ from sqlalchemy import func, select
 from werkzeug.datastructures import MultiDict
 
 from service.store.tables import ScoredCaseRow, VersionRow
-from service.web.extensions import get_database
+from service.web.extensions import get_database, get_version_cache
 from service.web.schemas.predictions import build_readers
 from service.web.schemas.rules import rules_for
 from tests.service.helpers import ApiClient, create_model
@@ -122,3 +122,18 @@ def test_a_stored_model_whose_feature_clashes_keeps_working() -> None:
     assert (features, key, options.seed) == ({"key": 2.5, "seed": True}, None, 0)
     from service.usecases.models import reserved_name_clashes
     assert reserved_name_clashes(spec) == ["key", "seed"]
+
+
+def test_a_case_keeps_the_version_that_scored_it(any_api: ApiClient) -> None:
+    create_model(any_api)
+    pump_version(any_api)
+    pump_version(any_api, seed=1)  # version 2 is active now
+    get_version_cache(any_api.app).clear()
+    old = any_api.request("GET", f"{PATH}?{PUMP_QUERY}&key=old&version=1&explain=none", 200)
+    new = any_api.request("GET", f"{PATH}?{PUMP_QUERY}&key=new&explain=none", 200)
+    assert (old["version"], new["version"]) == (1, 2)
+    with get_database(any_api.app).read() as session:
+        ids = dict(session.execute(select(VersionRow.number, VersionRow.id)).all())
+    stored = {c.key: (c.version_id, c.output) for c in cases(any_api.app)}
+    assert stored == {"old": (ids[1], old["result"]["probabilities"]),
+                      "new": (ids[2], new["result"]["probabilities"])}
