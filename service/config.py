@@ -243,9 +243,12 @@ SETTINGS: tuple[Setting, ...] = (
             "again (doubled with each failed try)"),
     Setting("KEELSON_WORKER_RETRY_MAX_SECONDS", WORKER, 300.0, positive_number,
             "longest wait between tries of such a model"),
+    Setting("KEELSON_CASE_RETENTION_DAYS", WORKER, 180.0, positive_number,
+            "days a scored case waits for its outcome; older ones without an outcome are "
+            "deleted by the worker, in batches"),
     Setting("KEELSON_BENCH_POSTGRES_URL", TOOLS, None, text,
-            "PostgreSQL server `keelson bench http` and `keelson bench worker` also "
-            "measure on (in a scratch database; same as `--postgres-url`)"),
+            "PostgreSQL server `keelson bench http`, `keelson bench worker` and `keelson "
+            "bench cases` also measure on (in a scratch database; same as `--postgres-url`)"),
 )
 BY_NAME: dict[str, Setting] = {setting.name: setting for setting in SETTINGS}
 

@@ -207,3 +207,33 @@ class TokenRow(Base):
     scopes: Mapped[list[Any]]
     created_at: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True), default=utcnow)
     revoked_at: Mapped[dt.datetime | None] = mapped_column(DateTime(timezone=True))
+
+
+# -- scored cases (issue 10, cases lane) -----------------------------------------
+class ScoredCaseRow(Base):
+    """A keyed prediction kept until its outcome arrives: what was scored, by
+    which version, what it answered; then what happened.
+
+    ``features`` are the validated features as records store them, so an
+    outcome turns the case into a record without the client sending them
+    again. ``rescored`` counts the same key sent again with the same features
+    (the first score is kept: it is the one that was acted on).
+    """
+
+    __tablename__ = "scored_cases"
+    __table_args__ = (
+        UniqueConstraint("model_id", "key"),
+        # Retention: the oldest unresolved cases of a model, found by index.
+        Index("ix_scored_cases_unresolved", "model_id", "outcome_at", "scored_at"),
+    )
+
+    id: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=True)
+    model_id: Mapped[int] = mapped_column(ForeignKey("models.id", ondelete="CASCADE"))
+    key: Mapped[str] = mapped_column(String(200))
+    features: Mapped[dict[str, Any]]
+    version_id: Mapped[int | None] = mapped_column(ForeignKey("versions.id", ondelete="SET NULL"))
+    output: Mapped[Any] = mapped_column(LabelJSON)
+    scored_at: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True), default=utcnow)
+    rescored: Mapped[int] = mapped_column(Integer, default=0, server_default="0")
+    outcome: Mapped[Any | None] = mapped_column(LabelJSON, nullable=True)
+    outcome_at: Mapped[dt.datetime | None] = mapped_column(DateTime(timezone=True))

@@ -23,7 +23,8 @@ import click
 
 from service.errors import InvalidInputError, KeelsonError
 
-_RECORD_PATH = re.compile(r"records\.(\d+)(.*)", re.DOTALL)  # fullmatch: "$" lets a final "\n" by
+# fullmatch: "$" lets a final "\n" by
+_RECORD_PATH = re.compile(r"(?:records|outcomes)\.(\d+)(.*)", re.DOTALL)
 MAX_ERRORS_SHOWN = 20
 # After an import this large, PostgreSQL's planner statistics are refreshed at
 # once rather than when autovacuum next gets to them: until then the worker's
@@ -94,7 +95,7 @@ class _CountingLines:
             yield line
 
 
-def _as_csv(header: list[str], rows: list[list[str]]) -> str:
+def as_csv(header: list[str], rows: list[list[str]]) -> str:
     out = io.StringIO()
     writer = csv.writer(out, lineterminator="\r\n")  # RFC 4180 line ends
     writer.writerow(header)
@@ -102,8 +103,9 @@ def _as_csv(header: list[str], rows: list[list[str]]) -> str:
     return out.getvalue()
 
 
-def _by_line(errors: dict[str, list[str]] | None, lines: list[int]) -> dict[str, list[str]]:
-    """``records.3.features.x`` -> ``line 17: features.x`` (line numbers of the file)."""
+def by_line(errors: dict[str, list[str]] | None, lines: list[int]) -> dict[str, list[str]]:
+    """``records.3.features.x`` (or ``outcomes.3.label``) -> ``line 17:
+    features.x`` (line numbers of the file)."""
     named: dict[str, list[str]] = {}
     for path, messages in (errors or {}).items():
         match = _RECORD_PATH.fullmatch(path)
@@ -138,45 +140,20 @@ def import_csv(config: dict[str, Any], model: str, path: Path, *, batch_size: in
             summary.batches += 1
             summary.rows += len(rows)
             try:
-                records = parse_csv_records(_as_csv(header, rows), spec, rules=rules)
+                records = parse_csv_records(as_csv(header, rows), spec, rules=rules)
                 result = ingest_records(writes, model, CheckedRecords(model_id, spec, records))
             except KeelsonError as error:
                 summary.rejected.append(RejectedBatch(lines[0], lines[-1], len(rows),
-                                                      error.detail, _by_line(error.errors, lines)))
+                                                      error.detail, by_line(error.errors, lines)))
                 return
             summary.accepted += result.accepted
             summary.duplicates += result.duplicates
 
-        # utf-8-sig: a byte-order mark some spreadsheets write is not part of the header.
-        with path.open(encoding="utf-8-sig", newline="") as stream, click.progressbar(
-            length=max(path.stat().st_size, 1), label=f"Importing {path.name}",
-            file=sys.stderr, hidden=not show_progress,
-        ) as bar:
-            reader = csv.reader(_CountingLines(stream, bar.update), strict=True)
-            try:
-                header = next(reader, None)
-                if not header:
-                    raise ImportAborted(f"{path} is empty; its first line must name the columns.")
-                _check_header(parse_csv_records, header, spec, model)
-                rows: list[list[str]] = []
-                lines: list[int] = []
-                for row in reader:
-                    if not row:
-                        continue  # a blank line carries no record
-                    rows.append(row)
-                    lines.append(reader.line_num)
-                    if len(rows) == batch_size:
-                        send(header, rows, lines)
-                        rows, lines = [], []
-                if rows:
-                    send(header, rows, lines)
-            except csv.Error as error:
-                raise ImportAborted(
-                    f"{path}: broken CSV at line {reader.line_num} ({error}); stopped there. "
-                    f"{summary.accepted} records from earlier lines are stored.") from error
-            except UnicodeDecodeError as error:
-                raise ImportAborted(f"{path} is not UTF-8 text ({error}); "
-                                    f"{summary.accepted} records stored before it.") from error
+        stream_csv_batches(path, batch_size=batch_size, show_progress=show_progress,
+                           summary=summary, what="records",
+                           check_header=lambda header: refuse_bad_header(
+                               parse_csv_records, header, spec, model),
+                           send=send)
         if summary.accepted >= BULK_RECORDS:
             refresh_planner_statistics(engine, "records")
     finally:
@@ -184,11 +161,50 @@ def import_csv(config: dict[str, Any], model: str, path: Path, *, batch_size: in
     return summary
 
 
-def _check_header(parse: Callable[..., Any], header: list[str], spec: dict[str, Any],
+def stream_csv_batches(path: Path, *, batch_size: int, show_progress: bool,
+                       summary: ImportSummary, what: str,
+                       check_header: Callable[[list[str]], None],
+                       send: Callable[[list[str], list[list[str]], list[int]], None]) -> None:
+    """Read ``path`` once, row by row, with a progress bar; check its header,
+    then hand ``send`` each batch of rows (with their line numbers).
+    ImportAborted when the file cannot be read on (earlier batches stay)."""
+    # utf-8-sig: a byte-order mark some spreadsheets write is not part of the header.
+    with path.open(encoding="utf-8-sig", newline="") as stream, click.progressbar(
+        length=max(path.stat().st_size, 1), label=f"Importing {path.name}",
+        file=sys.stderr, hidden=not show_progress,
+    ) as bar:
+        reader = csv.reader(_CountingLines(stream, bar.update), strict=True)
+        try:
+            header = next(reader, None)
+            if not header:
+                raise ImportAborted(f"{path} is empty; its first line must name the columns.")
+            check_header(header)
+            rows: list[list[str]] = []
+            lines: list[int] = []
+            for row in reader:
+                if not row:
+                    continue  # a blank line carries nothing
+                rows.append(row)
+                lines.append(reader.line_num)
+                if len(rows) == batch_size:
+                    send(header, rows, lines)
+                    rows, lines = [], []
+            if rows:
+                send(header, rows, lines)
+        except csv.Error as error:
+            raise ImportAborted(
+                f"{path}: broken CSV at line {reader.line_num} ({error}); stopped there. "
+                f"{summary.accepted} {what} from earlier lines are stored.") from error
+        except UnicodeDecodeError as error:
+            raise ImportAborted(f"{path} is not UTF-8 text ({error}); "
+                                f"{summary.accepted} {what} stored before it.") from error
+
+
+def refuse_bad_header(parse: Callable[..., Any], header: list[str], spec: dict[str, Any],
                   model: str) -> None:
     """Refuse a header that does not match the model before sending anything."""
     try:
-        parse(_as_csv(header, []), spec)
+        parse(as_csv(header, []), spec)
     except InvalidInputError as error:
         problems = {k: v for k, v in (error.errors or {}).items() if k.startswith("columns.")}
         if problems:

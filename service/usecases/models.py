@@ -15,6 +15,7 @@ from service.store.database import Database, transaction
 from service.store.tables import ModelRow, RecordRow, TrainerRow, VersionRow
 from service.usecases.common import find_model, model_view
 from service.usecases.model_limits import ModelLimits, size_errors
+from service.usecases.predictions import QUERY_NAMES
 
 
 def create_model(db: Database, validated: Mapping[str, Any], limits: ModelLimits
@@ -65,6 +66,13 @@ def list_models(db: Database, *, limit: int, after: str | None = None
     return views, (views[-1]["name"] if len(rows) > limit else None)
 
 
+def model_states(db: Database) -> list[dict[str, Any]]:
+    """Every model as GET /v1/models answers it (the metrics read their counts,
+    lags and active versions at scrape time), in three queries."""
+    with db.read() as session:
+        return _views(session, list(session.scalars(select(ModelRow).order_by(ModelRow.name))))
+
+
 def _views(session: Session, rows: list[ModelRow]) -> list[dict[str, Any]]:
     """Model answers with their active version numbers, cursors and lags,
     in three queries however many models there are."""
@@ -101,4 +109,15 @@ def _views(session: Session, rows: list[ModelRow]) -> list[dict[str, Any]]:
         views.append(model_view(row, active_version=active.get(row.id), cursor=cursor,
                                 lag=lags.get(row.id, 0), error=error,
                                 retry_at=None if error is None else retry_at))
+        clashes = reserved_name_clashes(row.spec)
+        if clashes:
+            views[-1]["reserved_name_clashes"] = clashes
     return views
+
+
+def reserved_name_clashes(spec: Mapping[str, Any]) -> list[str]:
+    """The features of a stored spec named like a query parameter of GET
+    predictions. A new spec cannot have any (422); a model stored before a
+    name was reserved keeps working: its feature wins in the query string, and
+    what it hides (an option, the case key) is sent in a POST body instead."""
+    return [feature["name"] for feature in spec["features"] if feature["name"] in QUERY_NAMES]

@@ -56,6 +56,12 @@ class PredictionOptions:
 
 # The options' names: query parameters of GET predictions beside the features.
 OPTION_NAMES = tuple(option.name for option in fields(PredictionOptions))
+# The case key of a scored case: a query parameter of GET predictions beside
+# the options (``"key"`` on each record of a POST).
+CASE_KEY = "key"
+# Every query parameter of GET predictions that is not a feature: a spec may
+# not declare a feature by one of these names (service/web/schemas/spec.py).
+QUERY_NAMES = (*OPTION_NAMES, CASE_KEY)
 
 
 class VersionUnavailableError(KeelsonError):

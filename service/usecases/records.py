@@ -74,7 +74,7 @@ def ingest_records(
             raise ModelChangedError(
                 f"Model {model_name!r} changed while its records were checked; nothing "
                 "was stored. Send them again.", headers={"Retry-After": "0"})
-        result = _store(session, locked, list(checked.records))
+        result = store_records(session, locked, list(checked.records))
         session.commit()
         return result
     except Exception:
@@ -98,7 +98,10 @@ def split_of(model_id: int, key: str | None, seq: int, holdout_fraction: float) 
         else "train"
 
 
-def _store(session: Session, model: ModelRow, valid: list[Mapping[str, Any]]) -> IngestResult:
+def store_records(session: Session, model: ModelRow, valid: list[Mapping[str, Any]]
+                  ) -> IngestResult:
+    """Store checked records under the model lock ``session`` holds (no commit):
+    the one way a labelled record is stored, by ingest and by accepted outcomes."""
     postgres = session.get_bind().dialect.name == "postgresql"
     if postgres:
         # The key lookup below runs once per batch; psycopg prepares it after

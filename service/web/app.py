@@ -17,13 +17,14 @@ from service.web.extensions import init_database, init_version_cache
 from service.web.headers import SECURITY_HEADERS
 from service.web.openapi import DocumentingPlugin, openapi_document
 from service.web.schemas.views import ProblemSchema
-from service.web.views import jobs, models, ops, predictions, records, versions
+from service.web.views import jobs, models, ops, outcomes, predictions, records, versions
 
 # Registered in this order; a blueprint is one resource (service/web/views/*.py).
 BLUEPRINTS = [
     ops.blueprint,
     models.blueprint,
     records.blueprint,
+    outcomes.blueprint,
     versions.blueprint,
     predictions.blueprint,
     jobs.blueprint,

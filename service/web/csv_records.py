@@ -69,7 +69,7 @@ def parse_csv_records(
                 record["key"] = row[key_column]
             raw.append(record)
     except csv.Error as exc:
-        what = _broken(str(exc))
+        what = broken_reason(str(exc))
         raise MalformedError(
             f"The CSV is broken at line {reader.line_num}: {what}.",
             errors={f"records.{max(reader.line_num - 2, 0)}": [f"{what[0].upper()}{what[1:]}."]},
@@ -81,7 +81,7 @@ def parse_csv_records(
     return (rules or rules_for(spec)).load_records(raw, text=True)
 
 
-def _broken(reason: str) -> str:
+def broken_reason(reason: str) -> str:
     """What the csv module found, in our words (its own text names its internals)."""
     if "expected after" in reason:
         return "a quoted field goes on after its closing quote (RFC 4180 section 2)"

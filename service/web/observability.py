@@ -35,6 +35,7 @@ from prometheus_client import (
     multiprocess,
     values,
 )
+from prometheus_client.registry import Collector
 from pythonjsonlogger.json import JsonFormatter
 
 from service.config import read_setting
@@ -180,18 +181,26 @@ def _new_request_id() -> str:
 
 
 def metrics_view() -> Response:
-    """Prometheus text exposition of this server's metrics (all workers)."""
-    return Response(render_metrics(), content_type=CONTENT_TYPE_LATEST)
+    """Prometheus text exposition of this server's metrics (all workers), and
+    the per-model series read from the database (service/web/domain_metrics.py)."""
+    from service.web.domain_metrics import ModelStateCollector
+    from service.web.extensions import get_database
+
+    return Response(render_metrics((ModelStateCollector(get_database()),)),
+                    content_type=CONTENT_TYPE_LATEST)
 
 
-def render_metrics() -> bytes:
+def render_metrics(read_at_scrape: tuple[Collector, ...] = ()) -> bytes:
+    """The counters of every process, then the series ``read_at_scrape``."""
+    scraped = CollectorRegistry()
+    for collector in read_at_scrape:
+        scraped.register(collector)
     if multiprocess_dir() is None:
-        return generate_latest(REGISTRY)
+        return generate_latest(REGISTRY) + generate_latest(scraped)
     # A fresh registry per scrape: MultiProcessCollector reads every worker's
     # files at collection time (prometheus_client's documented multiprocess use).
-    registry = CollectorRegistry()
-    multiprocess.MultiProcessCollector(registry)  # type: ignore[no-untyped-call]
-    return generate_latest(registry)
+    multiprocess.MultiProcessCollector(scraped)  # type: ignore[no-untyped-call]
+    return generate_latest(scraped)
 
 
 def multiprocess_dir() -> str | None:

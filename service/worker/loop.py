@@ -38,6 +38,7 @@ from service.worker.leasing import (
     renew_trainers,
 )
 from service.worker.lineage import LineageStopped, OnlineLineage
+from service.worker.retention import INTERVAL_SECONDS, purge_expired_cases
 from service.worker.settings import WorkerSettings
 
 log = logging.getLogger("keelson.worker")
@@ -92,6 +93,7 @@ class Worker:
         self.jobs = JobRunner(settings, self.reads, self.writes, worker_id, stop)
         self._next_heartbeat = 0.0
         self._next_claim = 0.0
+        self._next_retention = 0.0
         self._database_away = False
 
     def run(self) -> None:
@@ -118,6 +120,9 @@ class Worker:
                 self._next_claim = now + self.settings.claim_seconds
                 answered = True
             answered = self.jobs.poll() or answered
+            if now >= self._next_retention:
+                self._retention(now)
+                answered = True
         except DATABASE_AWAY as exc:
             # Said once, not a traceback per poll; keep trying, keep the state.
             if not self._database_away:
@@ -147,6 +152,15 @@ class Worker:
                 self.lineages.pop(model_id, None)
                 self._fault(model_id, exc, lineage.head_id)
         return busy
+
+    def _retention(self, now: float) -> None:
+        """Delete a few batches of expired scored cases; soon again while more remain."""
+        deleted, more = purge_expired_cases(self.writes, self.reads,
+                                            self.settings.case_retention_days)
+        if deleted:
+            log.info("deleted %s scored cases without an outcome after %g days", deleted,
+                     self.settings.case_retention_days)
+        self._next_retention = now + (self.settings.poll_seconds if more else INTERVAL_SECONDS)
 
     def _fault(self, model_id: int, exc: Exception, head_id: Any = ANY_HEAD) -> None:
         """This model failed to load or step from ``head_id``: back it off

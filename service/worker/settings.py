@@ -26,6 +26,7 @@ _KEYS = {
     "progress_seconds": "KEELSON_WORKER_PROGRESS_SECONDS",
     "retry_seconds": "KEELSON_WORKER_RETRY_SECONDS",
     "retry_max_seconds": "KEELSON_WORKER_RETRY_MAX_SECONDS",
+    "case_retention_days": "KEELSON_CASE_RETENTION_DAYS",
 }
 
 
@@ -56,6 +57,8 @@ class WorkerSettings:
     # seconds, doubled with each try that fails in a row, up to the maximum.
     retry_seconds: float = _default("retry_seconds")
     retry_max_seconds: float = _default("retry_max_seconds")
+    # Scored cases without an outcome are deleted this many days after scoring.
+    case_retention_days: float = _default("case_retention_days")
 
     def __post_init__(self) -> None:
         if not 0 < self.retry_seconds <= self.retry_max_seconds:

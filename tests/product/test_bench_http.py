@@ -76,3 +76,16 @@ def test_without_wrk_the_command_says_what_to_install(monkeypatch: pytest.Monkey
     assert result.exit_code == 1
     assert "needs wrk" in result.output and "apt-get install wrk" in result.output
     assert "Nothing was measured" in result.output
+
+
+def test_bench_cases_without_wrk_says_what_to_install(monkeypatch: pytest.MonkeyPatch,
+                                                      tmp_path: Path) -> None:
+    from click.testing import CliRunner
+
+    from service.tools.cli import cli
+
+    monkeypatch.setenv("PATH", str(tmp_path))
+    result = CliRunner().invoke(cli, ["bench", "cases", "--json"], prog_name="keelson")
+    assert result.exit_code == 1
+    assert "keelson bench cases needs wrk" in result.output
+    assert "Nothing was measured" in result.output

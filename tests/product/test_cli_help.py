@@ -33,7 +33,7 @@ def test_the_command_table_of_the_contract_is_complete() -> None:
     expected = {
         ("serve",), ("worker",), ("db", "upgrade"), ("token", "create"), ("token", "list"),
         ("token", "revoke"), ("demo",), ("import",), ("bench", "engine"), ("bench", "http"),
-        ("bench", "worker"),
+        ("bench", "worker"), ("outcomes", "import"), ("bench", "cases"),
     }
     assert expected <= set(COMMANDS)
 

@@ -57,6 +57,7 @@ OVERFLOW = "urn:keelson:problem:output-overflow"
 MODEL = "pump-risk"
 RECORDS_PER_CASE = 5  # the document allows thousands; a few keep each case quick
 FLOW_MODEL = "pump-flow"
+CASE_KEYS = [f"case-{i}" for i in range(12)]
 FLOW_SPEC: dict[str, Any] = {
     "name": FLOW_MODEL, "task": "regression", "target": "flow_m3h", "activation": "relu",
     "hidden_layers": [16, 16],
@@ -82,6 +83,12 @@ def fuzz_app(database_url: str) -> Iterator[Flask]:
     spec = api.request("GET", f"/v1/models/{MODEL}", 200)
     learner = train_learner({**spec, **spec.get("spec", {})}, pump_rows(64), pump_rule, passes=1)
     add_version(app, MODEL, learner.to_bytes(), activate=True)
+    get_version_cache(app).clear()
+    # Scored cases the aimed outcome cases name (an unknown key is refused
+    # with 422 on purpose: which keys exist is no schema's to state).
+    api.request("POST", f"/v1/models/{MODEL}/predictions", 200, json_body={
+        "explain": "none", "records": [{"key": key, "features": row} for key, row in zip(
+            CASE_KEYS, pump_rows(len(CASE_KEYS), seed=3), strict=True)]})
     flow_spec = api.request("POST", "/v1/models", 201, json_body=FLOW_SPEC)
     flow = train_learner(flow_spec, flow_rows(64), flow_rule, passes=1)
     add_version(app, FLOW_MODEL, flow.to_bytes(), activate=True)
@@ -148,6 +155,11 @@ class ModelRequests:
                  "properties": {"records": {"type": "array", "items": record, "minItems": 1,
                                             "maxItems": RECORDS_PER_CASE}}}
         prediction["properties"]["records"]["maxItems"] = RECORDS_PER_CASE
+        outcome = _inlined(documents["outcome"])
+        outcome["properties"]["key"] = {"enum": CASE_KEYS}
+        outcomes = {"type": "object", "required": ["outcomes"], "additionalProperties": False,
+                    "properties": {"outcomes": {"type": "array", "items": outcome,
+                                                "minItems": 1, "maxItems": RECORDS_PER_CASE}}}
         answer = {"200": {"description": "OK"}}
 
         def body(schema: dict[str, Any]) -> dict[str, Any]:
@@ -156,10 +168,12 @@ class ModelRequests:
         schema = schemathesis.openapi.from_dict({
             "openapi": "3.1.0", "info": {"title": MODEL, "version": "1"}, "paths": {
                 "/records": {"post": {"requestBody": body(batch), "responses": answer}},
+                "/outcomes": {"post": {"requestBody": body(outcomes), "responses": answer}},
                 "/predictions": {"get": {"parameters": query, "responses": answer},
                                  "post": {"requestBody": body(prediction), "responses": answer}},
             }})
         self.records = schema["/records"]["POST"].as_strategy()
+        self.outcomes = schema["/outcomes"]["POST"].as_strategy()
         self.query = schema["/predictions"]["GET"].as_strategy()
         self.predictions = schema["/predictions"]["POST"].as_strategy()
 
@@ -172,6 +186,14 @@ class ModelRequests:
         for item in records:
             writer.writerow([item.get("key", ""), *(_text(item["features"][n]) for n in names),
                              _text(item["label"])])
+        return out.getvalue()
+
+    @staticmethod
+    def outcomes_csv(outcomes: list[dict[str, Any]]) -> str:
+        out = io.StringIO()
+        writer = csv.writer(out, lineterminator="\r\n")
+        writer.writerow(["key", "label"])
+        writer.writerows([item["key"], _text(item["label"])] for item in outcomes)
         return out.getvalue()
 
 
@@ -255,6 +277,10 @@ def _aim(case: Any, data: st.DataObject, model: ModelRequests, flow: ModelReques
     elif path.endswith("/records"):
         body = data.draw(model.records, label="records body").body
         case.body = model.as_csv(body["records"]) if case.media_type == "text/csv" else body
+    elif path.endswith("/outcomes"):
+        body = data.draw(model.outcomes, label="outcomes body").body
+        case.body = (model.outcomes_csv(body["outcomes"]) if case.media_type == "text/csv"
+                     else body)
 
 
 def test_the_document_has_every_operation_of_the_contract() -> None:
@@ -289,6 +315,6 @@ def test_every_operation_answers_within_the_document(fuzz_app: Flask, method: st
     # An operation without parameters or body has a single distinct request.
     assert seen and (len(seen) >= min(EXAMPLES, 5) or path in ("/healthz", "/readyz",
                                                                  "/openapi.json")), seen
-    if path.endswith(("/records", "/predictions")):
+    if path.endswith(("/records", "/predictions", "/outcomes")):
         # The model's own requests were sent and accepted, not only 404s.
         assert set(seen) & {200, 201}, seen

@@ -21,6 +21,7 @@ from pathlib import Path
 import pytest
 from prometheus_client.parser import text_string_to_metric_families
 
+from service.usecases.predictions import EXPLAIN_METHODS
 from service.web.app import create_app
 from service.web.extensions import get_database
 from service.web.observability import KNOWN_METHODS, OTHER_METHOD
@@ -98,6 +99,12 @@ def test_metric_labels_come_from_closed_sets_whatever_clients_send(
     assert OTHER_METHOD in seen["method"]
     assert seen["route"] <= routes, seen["route"] - routes
     assert all(re.fullmatch(r"[1-5]\d\d", status) for status in seen["status"])
-    assert set(seen) <= {"method", "route", "status", "le"}, set(seen)
+    # The domain series (service/web/domain_metrics.py): models that exist,
+    # their versions' numbers, the explanation methods.
+    assert set(seen) <= {"method", "route", "status", "le", "model", "version", "explain"}, \
+        set(seen)
+    assert seen.get("model", set()) <= {"pump-risk"}, seen.get("model")
+    assert seen.get("explain", set()) <= set(EXPLAIN_METHODS), seen.get("explain")
+    assert all(v.isdigit() for v in seen.get("version", set())), seen.get("version")
     # The same series, only their counts moved: the text is (nearly) the same size.
     assert len(after) <= len(before) * 1.05 + 512, (len(before), len(after))

@@ -17,7 +17,7 @@ from apispec.ext.marshmallow import MarshmallowPlugin
 from marshmallow import RAISE, Schema, fields, validate
 
 from service.web.schemas.predictions import options_fields
-from service.web.schemas.rules import RecordRules
+from service.web.schemas.rules import RecordRules, key_field
 
 DIALECT = "https://json-schema.org/draft/2020-12/schema"
 _COMPONENTS = "#/components/schemas/"
@@ -61,8 +61,8 @@ def prediction_request_schema(rules: RecordRules, *, max_records: int) -> Schema
         declared["output"] = rules.label.field(required=False, metadata={
             "description": "The class whose probability is explained; default the "
             "predicted class."})
-    item = Schema.from_dict({"features": fields.Nested(rules.feature_schema(), required=True)},
-                            name="PredictionRecord")
+    item = Schema.from_dict({"key": key_field(), "features": fields.Nested(
+        rules.feature_schema(), required=True)}, name="PredictionRecord")
     declared["records"] = fields.List(
         fields.Nested(item(unknown=RAISE)), required=True,
         validate=validate.Length(min=1, max=max_records))

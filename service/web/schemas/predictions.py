@@ -19,6 +19,7 @@ from werkzeug.datastructures import MultiDict
 
 from service.errors import InvalidInputError, TooLargeError
 from service.usecases.predictions import (
+    CASE_KEY,
     DEFAULT_EXPLAIN,
     DEFAULT_NOISE,
     DEFAULT_SAMPLES,
@@ -29,6 +30,7 @@ from service.usecases.predictions import (
     MAX_STEPS,
     MIN_STEPS,
     OPTION_NAMES,
+    QUERY_NAMES,
     PredictionOptions,
 )
 from service.web.schemas.fields import (
@@ -39,7 +41,7 @@ from service.web.schemas.fields import (
     StrictInteger,
     StrictNumber,
 )
-from service.web.schemas.rules import RecordRules, rules_of
+from service.web.schemas.rules import RecordRules, key_field, rules_of
 
 # What every model's records share, for the generic document.
 _ANY_MODEL = RecordRules.any_model()
@@ -81,6 +83,7 @@ PredictionOptionsSchema = Schema.from_dict(options_fields(text=False), name="Pre
 
 
 class PredictionRecordSchema(Schema):
+    key = key_field()  # a case key: the score is kept until its outcome arrives
     features = _ANY_MODEL.features_field()
 
 
@@ -102,16 +105,27 @@ class PredictionReaders:
     body_features: Schema
     output_text: ChoiceFromText | None
     output_json: Choice | None
+    # The query names that are options, and the case key's, for this model: a
+    # model stored before a name was reserved keeps its feature of that name
+    # (GET /v1/models/{name} lists it under ``reserved_name_clashes``).
+    option_names: frozenset[str] = frozenset(OPTION_NAMES)
+    key_name: str | None = CASE_KEY
 
-    def read_query(self, args: MultiDict[str, str]) -> tuple[dict[str, Any], PredictionOptions]:
-        """GET: features and options from the query string; errors keyed by parameter."""
+    def read_query(self, args: MultiDict[str, str]
+                   ) -> tuple[dict[str, Any], PredictionOptions, str | None]:
+        """GET: features, options and the case key (None: unkeyed) from the
+        query string; errors keyed by parameter."""
         errors: dict[str, list[str]] = {}
         features: dict[str, Any] = {}
         options: dict[str, Any] = {}
+        case_key = None
         for key, values in args.lists():
             if len(values) > 1:
                 errors[key] = ["Given more than once."]
-            (options if key in OPTION_NAMES else features)[key] = values[0]
+            if key == self.key_name:
+                case_key = self._key(values[0], key, errors)
+            else:
+                (options if key in self.option_names else features)[key] = values[0]
         try:
             loaded = self.query_features.load(features)
         except ValidationError as exc:
@@ -120,12 +134,22 @@ class PredictionReaders:
         chosen = self._options(options, text=True, errors=errors)
         if errors:
             raise InvalidInputError("The query has invalid parameters.", errors=errors)
-        return loaded, PredictionOptions(**chosen)
+        return loaded, PredictionOptions(**chosen), case_key
+
+    @staticmethod
+    def _key(value: Any, path: str, errors: dict[str, list[str]]) -> str | None:
+        try:
+            loaded: str = _KEY.deserialize(value)
+            return loaded
+        except ValidationError as exc:
+            _merge(errors, exc.messages, path)
+            return None
 
     def read_body(
         self, body: Any, args: MultiDict[str, str], max_records: int
-    ) -> tuple[list[dict[str, Any]], PredictionOptions]:
-        """POST: records from the JSON body, options from the body and the query."""
+    ) -> tuple[list[dict[str, Any]], PredictionOptions, list[str | None] | None]:
+        """POST: records from the JSON body, options from the body and the
+        query, and each record's case key (None when no record has one)."""
         if not isinstance(body, dict):
             raise InvalidInputError("The body must be an object.",
                                     errors={"body": ['Expected {"records": [...]}.']})
@@ -145,7 +169,8 @@ class PredictionReaders:
                 errors[key] = ["Given more than once."]
             else:
                 in_query[key] = values[0]
-        rows = self._records(records, errors)
+        keys: list[str | None] = []
+        rows = self._records(records, errors, keys)
         from_body = self._options(in_body, text=False, errors=errors)
         from_query = self._options(in_query, text=True, errors=errors)
         for key in from_body.keys() & from_query.keys():
@@ -154,9 +179,11 @@ class PredictionReaders:
         if errors:
             raise InvalidInputError("The request is invalid.", errors=errors)
         return rows, PredictionOptions(**from_query, **{
-            key: value for key, value in from_body.items() if key not in from_query})
+            key: value for key, value in from_body.items() if key not in from_query}), \
+            (keys if any(key is not None for key in keys) else None)
 
-    def _records(self, records: Any, errors: dict[str, list[str]]) -> list[dict[str, Any]]:
+    def _records(self, records: Any, errors: dict[str, list[str]],
+                 keys: list[str | None]) -> list[dict[str, Any]]:
         if records is None:
             errors["records"] = ["Missing data for required field."]
             return []
@@ -173,8 +200,10 @@ class PredictionReaders:
                 errors[path] = ['Expected {"features": {...}}.']
                 continue
             for key in item:
-                if key != "features":
+                if key != "features" and key != CASE_KEY:
                     errors[f"{path}.{key}"] = ["Unknown field."]
+            keys.append(self._key(item[CASE_KEY], f"{path}.{CASE_KEY}", errors)
+                        if CASE_KEY in item else None)
             if "features" not in item:
                 errors[f"{path}.features"] = ["Missing data for required field."]
                 continue
@@ -239,10 +268,16 @@ def _merge(errors: dict[str, list[str]], messages: Any, prefix: str) -> None:
         errors.setdefault(prefix or "body", []).append(str(messages))
 
 
+_KEY = key_field(required=True)
+
+
 def build_readers(rules: RecordRules) -> PredictionReaders:
     """Everything needed to read a prediction request for a model with these rules."""
     classes = rules.classes
+    clashes = reserved_name_clashes(rules)
     return PredictionReaders(
+        option_names=frozenset(OPTION_NAMES) - clashes,
+        key_name=None if CASE_KEY in clashes else CASE_KEY,
         query_options=PredictionQuerySchema(unknown=RAISE),
         body_options=PredictionOptionsSchema(unknown=RAISE),
         query_features=rules.feature_schema(text=True),
@@ -250,6 +285,13 @@ def build_readers(rules: RecordRules) -> PredictionReaders:
         output_text=None if classes is None else ChoiceFromText(classes, what="class"),
         output_json=None if classes is None else Choice(classes, what="class"),
     )
+
+
+def reserved_name_clashes(rules: RecordRules) -> frozenset[str]:
+    """The declared features named like a query parameter of GET predictions
+    (only a model stored before the name was reserved has any)."""
+    return frozenset(rule.name for rule in rules.features or ()
+                     if rule.name in QUERY_NAMES)
 
 
 def prediction_readers(entry: Any) -> PredictionReaders:
@@ -283,6 +325,10 @@ class ExplanationSchema(Schema):
 
 
 class ScoredRecordSchema(Schema):
+    key = fields.String(metadata={"description": "Only for a keyed record: its case key."})
+    rescored = fields.Boolean(metadata={
+        "description": "Only for a keyed record: true when this key was scored before with "
+        "the same features (the case keeps its first score)."})
     result = fields.Nested(PredictionResultSchema, required=True)
     explanation = fields.Nested(ExplanationSchema, required=True, allow_none=True, metadata={
         "description": "null when explain=none."})

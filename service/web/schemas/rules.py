@@ -46,6 +46,7 @@ MAX_KEY_LENGTH = 200
 CACHE_SIZE = 256
 NO_RECORDS = "At least one record is required."
 NOT_A_BATCH = 'Expected {"records": [...]}.'
+NO_OUTCOMES = "At least one outcome is required."
 
 
 @dataclass(frozen=True, slots=True)
@@ -178,6 +179,36 @@ class RecordRules:
             return Schema.from_dict({"key": key_field(required=True),
                                      "label": self.label.field()}, name="Outcome")(unknown=RAISE)
         return self._schema("outcome", False, build)
+
+    def outcome_batch_schema(self, *, text: bool = False) -> Schema:
+        """The body of POST .../outcomes: ``{"outcomes": [outcome, ...]}``; with
+        ``text`` the same of CSV cells (the label in its text form)."""
+        def build() -> Schema:
+            outcome = Schema.from_dict({"key": key_field(required=True),
+                                        "label": self.label.field(text=text)},
+                                       name="OutcomeText" if text else "Outcome")
+            return Schema.from_dict({"outcomes": fields.List(
+                fields.Nested(outcome(unknown=RAISE)), required=True,
+                validate=validate.Length(min=1, error=NO_OUTCOMES))},
+                name="OutcomeBatch")(unknown=RAISE)
+        return self._schema("outcome_batch", text, build)
+
+    def load_outcomes(self, body: Any, *, max_outcomes: int, text: bool = False
+                      ) -> list[dict[str, Any]]:
+        """The outcomes of a body ``{"outcomes": [...]}``, loaded (labels as the
+        records' are). TooLargeError beyond ``max_outcomes``, before any is
+        looked at; InvalidInputError naming every bad field otherwise."""
+        outcomes = body.get("outcomes") if type(body) is dict else None
+        if type(outcomes) is list and len(outcomes) > max_outcomes:
+            raise TooLargeError(
+                f"At most {max_outcomes} outcomes per request; got {len(outcomes)}.",
+                errors={"outcomes": [f"{len(outcomes)} outcomes; at most {max_outcomes}."]})
+        try:
+            loaded: dict[str, Any] = self.outcome_batch_schema(text=text).load(body)
+        except ValidationError as exc:
+            raise InvalidInputError("The outcomes are invalid; none was stored.",
+                                    errors=flatten_messages(exc.messages)) from exc
+        return list(loaded["outcomes"])
 
     # -- checking -------------------------------------------------------------
     @cached_property

@@ -22,7 +22,7 @@ from marshmallow import (
 
 import engine
 from service.usecases.common import MODEL_NAME_PATTERN
-from service.usecases.predictions import OPTION_NAMES
+from service.usecases.predictions import QUERY_NAMES
 from service.web.schemas.fields import StrictBoolean, StrictInteger, StrictNumber, WholeMatch
 
 # Feature and target names become JSON keys, CSV headers, query parameters and
@@ -31,7 +31,7 @@ FIELD_NAME_PATTERN = r"[A-Za-z_][A-Za-z0-9_]{0,63}"
 # Query parameters of GET predictions and the CSV key column (and "baseline",
 # reserved with them from the start): a feature may not take these names or it
 # could not be sent.
-RESERVED_FIELD_NAMES = frozenset({"key", "baseline", *OPTION_NAMES})
+RESERVED_FIELD_NAMES = frozenset({"baseline", *QUERY_NAMES})
 # The longest level or class (a string): what a record's value may then be.
 MAX_VALUE_LENGTH = 200
 # How many features, levels and classes a spec may list are settings

@@ -42,6 +42,11 @@ class ModelSchema(ModelSpecSchema):
     records = fields.Nested(RecordCountsSchema, required=True)
     trainer = fields.Nested(TrainerStateSchema, required=True)
     created_at = fields.DateTime(required=True)
+    reserved_name_clashes = fields.List(fields.String(), metadata={
+        "description": "Only for a model stored before one of its feature names was "
+        "reserved: those features (named like a query parameter of GET predictions). "
+        "The feature wins in the query string; send the hidden option or case key in a "
+        "POST body."})
 
 
 class ModelListSchema(Schema):

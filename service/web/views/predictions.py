@@ -13,11 +13,13 @@ from typing import Any
 import orjson
 from flask import Response, current_app, request
 
+from service.usecases.cases import ScoredCase, keep_cases
 from service.usecases.prediction_limits import PredictionLimits
 from service.usecases.predictions import find_model, predict
 from service.web.auth import requires
 from service.web.disconnect import client_gone_probe
-from service.web.extensions import get_version_cache
+from service.web.domain_metrics import count_served
+from service.web.extensions import get_database, get_version_cache
 from service.web.schemas.predictions import (
     PredictionBatchSchema,
     PredictionQuerySchema,
@@ -79,9 +81,12 @@ def get_prediction(name: str) -> Response:
     started = time.monotonic()
     cache = get_version_cache()
     entry = find_model(cache, name)
-    features, options = prediction_readers(entry).read_query(request.args)
+    features, options, key = prediction_readers(entry).read_query(request.args)
     number, baseline, (answer,) = predict(cache, entry, (features,), options,
                                           _limits(started))
+    if key is not None:
+        _keep(entry.id, number, [key], [features], [answer], ["key"])
+    count_served(entry.name, number, options.explain, 1)
     return _json({"model": entry.name, "version": number, "baseline": baseline, **answer})
 
 
@@ -104,8 +109,29 @@ def post_predictions(name: str) -> Response:
     entry = find_model(cache, name)
     body = read_json_body(request)
     limit = int(current_app.config["KEELSON_MAX_PREDICTION_BATCH"])
-    rows, options = prediction_readers(entry).read_body(body, request.args, limit)
+    rows, options, keys = prediction_readers(entry).read_body(body, request.args, limit)
     number, baseline, answers = predict(cache, entry, rows, options, _limits(started),
                                         batch=True)
+    if keys is not None:
+        keyed = [i for i, key in enumerate(keys) if key is not None]
+        _keep(entry.id, number, [keys[i] for i in keyed], [rows[i] for i in keyed],
+              [answers[i] for i in keyed], [f"records.{i}.key" for i in keyed])
+    count_served(entry.name, number, options.explain, len(rows))
     return _json({"model": entry.name, "version": number, "baseline": baseline,
                   "results": answers})
+
+
+def _keep(model_id: int, number: int, keys: list[Any], rows: list[dict[str, Any]],
+          answers: list[dict[str, Any]], paths: list[str]) -> None:
+    """Store the keyed rows as scored cases before answering, and mark each
+    answer with its key and whether it was a re-score (in place)."""
+    cases = [ScoredCase(key, row, _output(answer["result"]))
+             for key, row, answer in zip(keys, rows, answers, strict=True)]
+    rescored = keep_cases(get_database().write, model_id, number, cases, paths)
+    for key, answer, again in zip(keys, answers, rescored, strict=True):
+        answer["key"], answer["rescored"] = key, again
+
+
+def _output(result: dict[str, Any]) -> Any:
+    """What a case keeps of its score: the probabilities, or the value."""
+    return result["probabilities"] if "probabilities" in result else result["value"]

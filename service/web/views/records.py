@@ -49,7 +49,7 @@ def post_records(name: str) -> dict[str, Any]:
     """Store labelled records; duplicates by key are counted and change nothing."""
     limit = int(current_app.config["KEELSON_MAX_RECORDS_PER_REQUEST"])
     if request.mimetype == "text/csv":
-        text = _csv_text()
+        text = csv_text()
     elif is_json_mimetype(request.mimetype):
         body = read_json_body(request)
     else:
@@ -73,7 +73,7 @@ def post_records(name: str) -> dict[str, Any]:
     return {"accepted": result.accepted, "duplicates": result.duplicates}
 
 
-def _csv_text() -> str:
+def csv_text() -> str:
     charset = request.mimetype_params.get("charset", "utf-8").lower()
     if charset not in ("utf-8", "utf8"):
         raise UnsupportedMediaError("CSV bodies must be UTF-8.")

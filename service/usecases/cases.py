@@ -1,0 +1,198 @@
+"""Use case: keep the scored cases of keyed predictions, durably, before answering.
+
+A keyed prediction stores what was scored (the validated features), by which
+version, what it answered and when, so an outcome sent weeks later becomes a
+labelled record without the client keeping the features (usecases/outcomes.py).
+The same key with the same features again is a re-score: counted, the first
+score kept (it is the one that was acted on). The same key with other features
+is a 409 that changes nothing. Unkeyed predictions never come here.
+"""
+
+from __future__ import annotations
+
+import functools
+import json
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+from sqlalchemy import String, any_, bindparam, insert, select, update
+from sqlalchemy.dialects.postgresql import ARRAY
+from sqlalchemy.exc import IntegrityError
+from sqlalchemy.orm import Session, sessionmaker
+
+from service.errors import ConflictError
+from service.store.tables import ScoredCaseRow, VersionRow, utcnow
+
+KEY_CHUNK = 500  # keys per IN (...) on SQLite: under its parameter limit
+
+
+@dataclass(frozen=True, slots=True)
+class ScoredCase:
+    """One keyed row as scored: ``output`` is the probabilities or the value."""
+
+    key: str
+    features: Mapping[str, Any]
+    output: Any
+
+
+class CaseConflictError(ConflictError):
+    """A key already names a case scored with other features: nothing stored."""
+
+    problem_type = "urn:keelson:problem:case-conflict"
+
+
+def keep_cases(sessions: sessionmaker[Session], model_id: int, version_number: int,
+               cases: Sequence[ScoredCase], paths: Sequence[str]) -> list[bool]:
+    """Store ``cases`` scored by version ``version_number`` of the model, in one
+    write transaction; per case whether it was a re-score.
+
+    One case with a new key (a keyed GET, the common request) is one INSERT on
+    a pooled driver connection (``_insert_new``): the ORM session's cost per
+    request was three times the explained prediction itself. Anything else
+    (a batch, a key seen before) takes the session path below.
+
+    ``paths`` name each case's key in an error (``key``, ``records.3.key``).
+    Raises CaseConflictError, naming every key sent before with other features
+    (or twice in the batch with different ones). A concurrent first score of
+    the same key (PostgreSQL: the unique constraint) is retried once, and is
+    then a re-score or a conflict like any other.
+    """
+    if len(cases) == 1 and _insert_new(sessions, model_id, version_number, cases[0]):
+        return [False]
+    for attempt in (1, 2):
+        try:
+            with sessions() as session, session.begin():
+                return _keep(session, model_id, version_number, cases, paths)
+        except IntegrityError:
+            if attempt == 2:
+                raise
+    raise AssertionError("unreachable")
+
+
+# A new case in one statement and one round trip: the version's id looked up
+# inside it, nothing done when the key is taken (then the session path
+# decides: a re-score or a conflict), committed by the statement itself
+# (SQLite connections run without implicit transactions, see
+# service/store/database.py; a PostgreSQL connection is put in autocommit
+# for it, and back before it returns to the pool).
+_COLUMNS = "(model_id, key, features, version_id, output, scored_at, rescored)"
+_INSERT_NEW = {
+    "sqlite": f"INSERT INTO scored_cases {_COLUMNS} VALUES (?, ?, ?, (SELECT id FROM versions "
+              "WHERE model_id = ? AND number = ?), ?, ?, 0) ON CONFLICT (model_id, key) "
+              "DO NOTHING",
+    "postgresql": f"INSERT INTO scored_cases {_COLUMNS} VALUES (%s, %s, %s, (SELECT id FROM "
+                  "versions WHERE model_id = %s AND number = %s), %s, %s, 0) "
+                  "ON CONFLICT (model_id, key) DO NOTHING",
+}
+
+
+def _insert_new(sessions: sessionmaker[Session], model_id: int, version_number: int,
+                case: ScoredCase) -> bool:
+    """Store ``case`` if its key is new to the model; whether it was."""
+    engine = sessions.kw["bind"]
+    dialect = engine.dialect
+    statement = _INSERT_NEW.get(dialect.name)
+    if statement is None:
+        return False
+    stamp = _stamp(dialect)(utcnow())
+    postgres = dialect.name == "postgresql"
+    connection = engine.raw_connection()
+    driver = connection.driver_connection
+    try:
+        if postgres:
+            driver.autocommit = True  # psycopg: a local switch on an idle connection
+        cursor = connection.cursor()
+        try:
+            cursor.execute(statement, (
+                model_id, case.key, json.dumps(case.features), model_id, version_number,
+                json.dumps(case.output, allow_nan=False), stamp))
+            return bool(cursor.rowcount == 1)
+        finally:
+            cursor.close()
+    finally:
+        if postgres:
+            try:
+                driver.autocommit = False
+            except Exception:  # a broken connection: never back to the pool in autocommit
+                connection.invalidate()
+        connection.close()  # back to the pool
+
+
+@functools.cache
+def _stamp(dialect: Any) -> Any:
+    """How the scored_at column spells a time for this dialect's driver."""
+    process = ScoredCaseRow.__table__.c.scored_at.type.dialect_impl(dialect).bind_processor(
+        dialect)
+    return process or (lambda moment: moment)
+
+
+def _keep(session: Session, model_id: int, version_number: int,
+          cases: Sequence[ScoredCase], paths: Sequence[str]) -> list[bool]:
+    stored = _stored_features(session, model_id, [case.key for case in cases])
+    conflicts: dict[str, list[str]] = {}
+    rescored: list[bool] = []
+    fresh: dict[str, ScoredCase] = {}
+    counts: dict[str, int] = {}
+    for case, path in zip(cases, paths, strict=True):
+        # Compared as stored: JSON text back to values (floats round-trip exactly).
+        features = json.loads(json.dumps(case.features))
+        earlier = stored.get(case.key)
+        if earlier is None:
+            stored[case.key] = features
+            fresh[case.key] = case
+            rescored.append(False)
+        elif earlier != features:
+            conflicts[path] = [f"Case {case.key!r} was scored before with other features."]
+        else:
+            rescored.append(True)
+            if case.key not in fresh:
+                counts[case.key] = counts.get(case.key, 0) + 1
+    if conflicts:
+        keys = ", ".join(repr(cases[paths.index(path)].key) for path in conflicts)
+        raise CaseConflictError(
+            f"A case key names one case: {keys} was scored before with other features. "
+            "Nothing was stored; send a new key for a new case.", errors=conflicts)
+    if fresh:
+        version_id = session.scalar(select(VersionRow.id).where(
+            VersionRow.model_id == model_id, VersionRow.number == version_number))
+        now = utcnow()
+        session.execute(insert(ScoredCaseRow), [
+            {"model_id": model_id, "key": case.key, "features": dict(case.features),
+             "version_id": version_id, "output": case.output, "scored_at": now,
+             "rescored": 0}
+            for case in fresh.values()])
+    # Rows locked in key order, as an outcome batch locks them (find_cases):
+    # two such transactions never wait for each other in a cycle.
+    for key, count in sorted(counts.items()):
+        session.execute(update(ScoredCaseRow).where(
+            ScoredCaseRow.model_id == model_id, ScoredCaseRow.key == key).values(
+            rescored=ScoredCaseRow.rescored + count))
+    return rescored
+
+
+def _stored_features(session: Session, model_id: int, keys: list[str]
+                     ) -> dict[str, dict[str, Any]]:
+    """The stored features of those of ``keys`` that name a case of the model."""
+    return dict(find_cases(session, model_id, keys, ScoredCaseRow.features))
+
+
+def find_cases(session: Session, model_id: int, keys: Sequence[str], *columns: Any,
+               lock: bool = False) -> list[Any]:
+    """``(key, *columns)`` of the model's cases named by ``keys``, in one
+    query on PostgreSQL (an array parameter), in chunks on SQLite. ``lock``:
+    lock those rows until the transaction ends (PostgreSQL; a SQLite write
+    transaction holds the database lock already), so retention cannot delete
+    a case an outcome is being joined with (service/worker/retention.py)."""
+    unique = list(dict.fromkeys(keys))
+    query = select(ScoredCaseRow.key, *columns).where(ScoredCaseRow.model_id == model_id)
+    if session.get_bind().dialect.name == "postgresql":
+        if lock:  # in key order, as re-scores update them (no deadlock between the two)
+            query = query.with_for_update().order_by(ScoredCaseRow.key)
+        return list(session.execute(query.where(
+            ScoredCaseRow.key == any_(bindparam("keys", unique, type_=ARRAY(String))))))
+    found: list[Any] = []
+    for start in range(0, len(unique), KEY_CHUNK):
+        found.extend(session.execute(query.where(
+            ScoredCaseRow.key.in_(unique[start:start + KEY_CHUNK]))))
+    return found
