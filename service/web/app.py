@@ -17,7 +17,7 @@ from service.web.extensions import init_database, init_version_cache
 from service.web.headers import SECURITY_HEADERS
 from service.web.openapi import DocumentingPlugin, openapi_document
 from service.web.schemas.views import ProblemSchema
-from service.web.views import jobs, models, ops, predictions, records, versions
+from service.web.views import jobs, models, ops, predictions, records, track_record, versions
 
 # Registered in this order; a blueprint is one resource (service/web/views/*.py).
 BLUEPRINTS = [
@@ -27,6 +27,7 @@ BLUEPRINTS = [
     versions.blueprint,
     predictions.blueprint,
     jobs.blueprint,
+    track_record.blueprint,
 ]
 
 # The largest id or number a path can name: job ids and version numbers are
