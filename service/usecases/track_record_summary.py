@@ -15,7 +15,7 @@ from sqlalchemy.orm import Session
 
 from engine.track_record import Tally
 from service.store.database import Database
-from service.store.tables import TrackRecordAlarmRow, TrackRecordDayRow, VersionRow
+from service.store.tables import ModelRow, TrackRecordAlarmRow, TrackRecordDayRow, VersionRow
 from service.usecases.common import as_utc, find_model
 from service.usecases.track_record import full_spec, tally_of_row
 
@@ -107,3 +107,38 @@ def _alarm_view(row: TrackRecordAlarmRow | None, parameters: dict[str, Any]) -> 
     return {"state": "calm" if row.raised_at is None else "raised",
             "since": as_utc(row.raised_at), "cases": row.n,
             "statistic": row.cumulative - row.minimum, **parameters}
+
+
+def live_gauges(db: Database, today: dt.date) -> list[dict[str, Any]]:
+    """Per model with an active version: its main metric over the default
+    window and its alarm, for /metrics. Two queries whatever the history: the
+    active versions' day rows in the window, and their alarm rows."""
+    since, until = resolve_window(None, None, today)
+    with db.read() as session:
+        actives = session.execute(
+            select(ModelRow.id, ModelRow.name, ModelRow.spec, VersionRow.number)
+            .join(VersionRow, VersionRow.id == ModelRow.active_version_id)).all()
+        days = session.execute(
+            select(TrackRecordDayRow).join(ModelRow, (
+                ModelRow.id == TrackRecordDayRow.model_id)
+                & (ModelRow.active_version_id == TrackRecordDayRow.version_id))
+            .where(TrackRecordDayRow.day >= since, TrackRecordDayRow.day <= until)).scalars()
+        by_model: dict[int, list[TrackRecordDayRow]] = {}
+        for row in days:
+            by_model.setdefault(row.model_id, []).append(row)
+        raised = {model_id: raised_at is not None for model_id, raised_at in session.execute(
+            select(TrackRecordAlarmRow.model_id, TrackRecordAlarmRow.raised_at).join(
+                ModelRow, (ModelRow.id == TrackRecordAlarmRow.model_id)
+                & (ModelRow.active_version_id == TrackRecordAlarmRow.version_id)))}
+    gauges = []
+    for model_id, name, spec, number in actives:
+        task = spec.get("task")
+        if task not in ALARM_LOSS:
+            continue  # a damaged spec: the model's own routes say so
+        tally = Tally(task)
+        for row in by_model.get(model_id, ()):
+            tally = tally.merged(tally_of_row(task, row))
+        gauges.append({"model": name, "version": number, "metric": main_metric_name(task),
+                       "value": tally.main_metric(), "n": tally.n,
+                       "raised": raised.get(model_id, False)})
+    return gauges

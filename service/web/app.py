@@ -11,9 +11,9 @@ from flask_smorest.spec.plugins import integerconverter2paramschema
 from werkzeug.routing import IntegerConverter
 
 from service.config import load_config
-from service.web import auth, observability, paths, problems, request_target
+from service.web import auth, observability, paths, problems, request_target, track_record_metrics
 from service.web.body_limit import BoundedRequest
-from service.web.extensions import init_database, init_version_cache
+from service.web.extensions import get_database, init_database, init_version_cache
 from service.web.headers import SECURITY_HEADERS
 from service.web.openapi import DocumentingPlugin, openapi_document
 from service.web.schemas.views import ProblemSchema
@@ -82,6 +82,8 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     init_version_cache(app)
     auth.init_app(app)
     observability.init_app(app)
+    observability.add_scrape_source(
+        app, lambda: track_record_metrics.exposition(get_database(app)))
     api = Api(app, spec_kwargs={"info": {"description": "Keelson HTTP API (v1)."},
                                 "marshmallow_plugin": DocumentingPlugin()})
     api.register_converter(BoundedIntegerConverter, integerconverter2paramschema)

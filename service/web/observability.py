@@ -21,10 +21,10 @@ import logging
 import os
 import re
 import time
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from typing import Any
 
-from flask import Flask, Response, has_request_context, request
+from flask import Flask, Response, current_app, has_request_context, request
 from prometheus_client import (
     CONTENT_TYPE_LATEST,
     REGISTRY,
@@ -179,9 +179,22 @@ def _new_request_id() -> str:
     return os.urandom(16).hex()  # 128 random bits, as a UUID4 has, without the object
 
 
+# app.extensions key: callables answering more exposition text at scrape time
+# (series read from the database, the same whichever worker is scraped).
+SCRAPE_SOURCES = "keelson.scrape_sources"
+
+
+def add_scrape_source(app: Flask, source: Callable[[], bytes]) -> None:
+    """Have /metrics append ``source()`` (Prometheus text) to its answer."""
+    app.extensions.setdefault(SCRAPE_SOURCES, []).append(source)
+
+
 def metrics_view() -> Response:
     """Prometheus text exposition of this server's metrics (all workers)."""
-    return Response(render_metrics(), content_type=CONTENT_TYPE_LATEST)
+    body = render_metrics()
+    for source in current_app.extensions.get(SCRAPE_SOURCES, ()):
+        body += source()
+    return Response(body, content_type=CONTENT_TYPE_LATEST)
 
 
 def render_metrics() -> bytes:

@@ -129,3 +129,22 @@ def test_the_route_needs_the_predict_scope_and_a_model(api: ApiClient) -> None:
     api.request("GET", URL, 403, token=api.token("ingest"))
     api.request("GET", URL, 200, token=api.token("predict"))
     api.request("GET", "/v1/models/no-such-pump/track-record", 404)
+
+
+def test_metrics_shows_the_active_versions_live_metric_and_alarm(api: ApiClient) -> None:
+    from prometheus_client.parser import text_string_to_metric_families
+    create_model(api)
+    version = add_version(api.app, "pump-risk", 1, status="active", active=True)
+    now = dt.datetime.now(dt.UTC)
+    joined = joined_binary(120, version, start=now - dt.timedelta(days=40),
+                           every=dt.timedelta(minutes=1))
+    record(api.app, joined)
+    y, p = served(joined)
+    text = api.client.get("/metrics").get_data(as_text=True)
+    samples = {(s.name, tuple(sorted(s.labels.items()))): s.value
+               for family in text_string_to_metric_families(text) for s in family.samples}
+    labels = (("model", "pump-risk"), ("version", "1"))
+    assert samples[("keelson_live_metric", tuple(sorted(
+        (*labels, ("metric", "log_loss")))))] == pytest.approx(skm.log_loss(y, p), rel=1e-12)
+    assert samples[("keelson_live_outcomes", labels)] == 120
+    assert samples[("keelson_alarm_raised", labels)] == 0
