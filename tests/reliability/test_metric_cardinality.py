@@ -98,6 +98,12 @@ def test_metric_labels_come_from_closed_sets_whatever_clients_send(
     assert OTHER_METHOD in seen["method"]
     assert seen["route"] <= routes, seen["route"] - routes
     assert all(re.fullmatch(r"[1-5]\d\d", status) for status in seen["status"])
-    assert set(seen) <= {"method", "route", "status", "le"}, set(seen)
+    # The domain series (read from the database at scrape time) are labelled by
+    # the stored models and their versions only, never by what a client sent.
+    assert seen.get("model", set()) <= {"pump-risk"}, seen.get("model")
+    assert all(version.isdigit() for version in seen.get("version", ()))
+    assert seen.get("metric", set()) <= {"log_loss", "rmse"}
+    assert set(seen) <= {"method", "route", "status", "le", "model", "version", "metric"}, \
+        set(seen)
     # The same series, only their counts moved: the text is (nearly) the same size.
     assert len(after) <= len(before) * 1.05 + 512, (len(before), len(after))
