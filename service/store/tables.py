@@ -245,7 +245,7 @@ class TrackRecordDayRow(Base):
     y_m2: Mapped[float] = mapped_column(Sum)
     # [count, sum predicted, sum observed], each a list of 10 bins.
     calibration: Mapped[list[Any]]
-    # Binary only: the (2, AUC_BINS) int64 histogram, little-endian bytes.
+    # Binary only: the (2, AUC_BINS) int64 histogram, little-endian, zlib-compressed.
     auc_histogram: Mapped[bytes | None] = mapped_column(LargeBinary)
 
 
