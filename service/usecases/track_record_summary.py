@@ -27,14 +27,21 @@ ALARM_LOSS = {"binary": "brier", "multiclass": "brier", "regression": "relative_
 
 def resolve_window(since: dt.date | None, until: dt.date | None, today: dt.date
                    ) -> tuple[dt.date, dt.date]:
-    """The window asked for: ``until`` defaults to today (or ``since``, if that
-    is later), ``since`` to DEFAULT_WINDOW_DAYS - 1 days before ``until``. The
-    query schema refuses a reversed window or one over MAX_WINDOW_DAYS."""
+    """The window read: ``until`` defaults to today (or ``since``, if that is
+    later), ``since`` to DEFAULT_WINDOW_DAYS - 1 days before ``until``. A window
+    over MAX_WINDOW_DAYS is cut to the MAX_WINDOW_DAYS days ending at
+    ``until``; a reversed one (``since`` after ``until``) reads no day. Never a
+    refusal: every pair of dates the document allows is answered."""
     if until is None:
         until = today if since is None else max(today, since)
+    earliest = _days_before(until, MAX_WINDOW_DAYS - 1)
     if since is None:
-        since = until - dt.timedelta(days=DEFAULT_WINDOW_DAYS - 1)
-    return since, until
+        since = _days_before(until, DEFAULT_WINDOW_DAYS - 1)
+    return max(since, earliest), until
+
+
+def _days_before(day: dt.date, days: int) -> dt.date:
+    return day - dt.timedelta(days=days) if day.toordinal() > days else dt.date.min
 
 
 def main_metric_name(task: str) -> str:

@@ -111,8 +111,6 @@ def test_no_outcomes_yet_answers_an_empty_record(api: ApiClient) -> None:
 
 
 @pytest.mark.parametrize(("query", "field"), [
-    ("since=2026-07-09&until=2026-07-01", "since"),
-    ("since=2025-01-01&until=2026-07-01", "since"),
     ("since=yesterday", "since"),
     ("until=2026-02-30", "until"),
     ("window=7", "window"),
@@ -122,6 +120,26 @@ def test_a_bad_window_is_refused_naming_the_parameter(api: ApiClient, query: str
     create_model(api)
     body = api.request("GET", f"{URL}?{query}", 422)
     assert f"query.{field}" in body["errors"], body
+
+
+@pytest.mark.parametrize(("query", "since", "until"), [
+    # Longer than 366 days: cut to the 366 ending at `until`.
+    ("since=2025-01-01&until=2026-07-01", "2025-07-01", "2026-07-01"),
+    # Reversed: answered as asked, and no day is read.
+    ("since=2026-07-09&until=2026-07-01", "2026-07-09", "2026-07-01"),
+    # The calendar's edges do not overflow the default window.
+    ("until=0001-01-05", "0001-01-01", "0001-01-05"),
+    ("since=9999-12-31", "9999-12-31", "9999-12-31"),
+])
+def test_every_window_of_valid_dates_is_answered(api: ApiClient, query: str, since: str,
+                                                 until: str) -> None:
+    create_model(api)
+    version = add_version(api.app, "pump-risk", 1, status="active", active=True)
+    # Outcomes in 2027, outside every window below.
+    record(api.app, joined_binary(50, version, start=dt.datetime(2027, 3, 1, tzinfo=dt.UTC)))
+    body = api.request("GET", f"{URL}?{query}", 200)
+    assert (body["since"], body["until"]) == (since, until)
+    assert body["versions"] == []
 
 
 def test_the_route_needs_the_predict_scope_and_a_model(api: ApiClient) -> None:

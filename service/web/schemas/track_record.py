@@ -2,16 +2,14 @@
 
 from __future__ import annotations
 
-from typing import Any
-
-from marshmallow import RAISE, Schema, ValidationError, fields, validates_schema
+from marshmallow import RAISE, Schema, fields
 
 from service.usecases.track_record_summary import DEFAULT_WINDOW_DAYS, MAX_WINDOW_DAYS
 
 
 class TrackRecordQuerySchema(Schema):
-    """The window: UTC days of the outcome, both included, at most
-    MAX_WINDOW_DAYS (defaults in service.usecases.track_record_summary)."""
+    """The window: UTC days of the outcome, both included (defaults and the
+    longest window: service.usecases.track_record_summary.resolve_window)."""
 
     class Meta:
         unknown = RAISE
@@ -20,18 +18,9 @@ class TrackRecordQuerySchema(Schema):
         "description": f"First UTC day (YYYY-MM-DD); default {DEFAULT_WINDOW_DAYS - 1} days "
         "before `until`."})
     until = fields.Date(metadata={
-        "description": "Last UTC day (YYYY-MM-DD); default today. A window spans at most "
-        f"{MAX_WINDOW_DAYS} days."})
-
-    @validates_schema
-    def _window(self, data: dict[str, Any], **kwargs: Any) -> None:
-        since, until = data.get("since"), data.get("until")
-        if since is None or until is None:
-            return  # the defaults make a window of DEFAULT_WINDOW_DAYS or less
-        if since > until:
-            raise ValidationError("Must not be after until.", "since")
-        if (until - since).days + 1 > MAX_WINDOW_DAYS:
-            raise ValidationError(f"A window spans at most {MAX_WINDOW_DAYS} days.", "since")
+        "description": "Last UTC day (YYYY-MM-DD); default today. A longer window than "
+        f"{MAX_WINDOW_DAYS} days is cut to the {MAX_WINDOW_DAYS} ending here; a reversed "
+        "one reads no day."})
 
 
 def _number() -> fields.Float:
