@@ -107,3 +107,68 @@ def test_regression_outcomes_keep_exact_sums(api: ApiClient) -> None:
     whole = Tally.of("regression", truth, served[:, None]).metrics()
     for name, value in stored.metrics().items():
         assert value == pytest.approx(whole[name], rel=1e-10)
+
+
+def test_boolean_and_integer_classes_are_matched_by_their_json_keys(api: ApiClient) -> None:
+    # Binary default classes [false, true]: outputs keyed "false"/"true" (class_key).
+    create_model(api, classes=None)
+    version = add_version(api.app, "pump-risk", 1, status="active", active=True)
+    record(api.app, [
+        JoinedOutcome(version, {"label": True, "probabilities": {"false": 0.2, "true": 0.8}},
+                      True, START, START),
+        JoinedOutcome(version, {"label": True, "probabilities": {"false": 0.4, "true": 0.6}},
+                      False, START, START)])
+    with get_database(api.app).read() as session:
+        (row,) = session.scalars(select(TrackRecordDayRow)).all()
+        metrics = tally_of_row("binary", row).metrics()
+    assert metrics["accuracy"] == 0.5
+    # Brier: ((0.8 - 1)^2 + (0.6 - 0)^2) / 2, worked by hand.
+    assert metrics["brier"] == pytest.approx((0.04 + 0.36) / 2)
+
+
+def test_multiclass_outcomes_use_every_class_probability(api: ApiClient) -> None:
+    create_model(api, task="multiclass", classes=[1, 2, 3], target="wear_grade")
+    version = add_version(api.app, "pump-risk", 1, status="active", active=True)
+    record(api.app, [JoinedOutcome(
+        version, {"label": 2, "probabilities": {"1": 0.1, "2": 0.7, "3": 0.2}}, 3, START,
+        START)])
+    with get_database(api.app).read() as session:
+        (row,) = session.scalars(select(TrackRecordDayRow)).all()
+        metrics = tally_of_row("multiclass", row).metrics()
+    # Missed (served 2, outcome 3); log loss -ln 0.2; Brier 0.1^2 + 0.7^2 + 0.8^2, by hand.
+    assert metrics["accuracy"] == 0.0
+    assert metrics["log_loss"] == pytest.approx(-np.log(0.2))
+    assert metrics["brier"] == pytest.approx(0.01 + 0.49 + 0.64)
+
+
+def test_concurrent_batches_under_the_model_lock_keep_whole_sums(any_api: ApiClient) -> None:
+    """Outcome batches run in transactions holding the model row lock (the
+    outcomes route's); two threads of them lose no outcome from the sums."""
+    import threading
+
+    from service.usecases.common import find_model
+    create_model(any_api)
+    version = add_version(any_api.app, "pump-risk", 1, status="active", active=True)
+    db = get_database(any_api.app)
+    failures: list[BaseException] = []
+
+    def send(seed: int) -> None:
+        try:
+            for batch in range(10):
+                joined = joined_binary(50, version, seed=seed * 100 + batch)
+                with db.write() as session, session.begin():
+                    record_outcomes(session, find_model(session, "pump-risk", lock=True),
+                                    joined)
+        except BaseException as exc:  # reported below, not lost in the thread
+            failures.append(exc)
+
+    threads = [threading.Thread(target=send, args=(seed,)) for seed in (1, 2)]
+    for thread in threads:
+        thread.start()
+    for thread in threads:
+        thread.join()
+    assert failures == []
+    with db.read() as session:
+        total = sum(row.n for row in session.scalars(select(TrackRecordDayRow)))
+        alarm = session.scalars(select(TrackRecordAlarmRow)).one()
+    assert total == alarm.n == 2 * 10 * 50
