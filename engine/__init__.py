@@ -10,6 +10,7 @@ Reading order: `activations` (the one table of element-wise functions) and
 `online` (one record per step), `batch` (mini-batch epochs), `input_gradients`
 and `attribution` (explanations); `optimizers` (SGD, Adam) step the gradient
 the kernel writes. `learner` ties them to `encoding`, `metrics` and `snapshot`.
+`track_record` keeps live metrics of served scores and the Page-Hinkley alarm.
 """
 
 from engine.attribution import METHODS as EXPLANATION_METHODS

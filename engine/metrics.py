@@ -124,6 +124,30 @@ def batch_metrics(task: str, y: NDArray[Any], scores: NDArray[np.float64]) -> di
     return result
 
 
+def auc_bin_indices(p: NDArray[np.float64]) -> NDArray[np.int64]:
+    """`Prequential._bin` of many probabilities at once."""
+    p = np.asarray(p, dtype=np.float64)
+    inside = np.clip(p, EPS, 1.0 - EPS)
+    logit = np.log(inside) - np.log1p(-inside)
+    position = np.floor((logit + _AUC_LOGIT_RANGE) * _BINS_PER_LOGIT)
+    bins = np.clip(position, 0, AUC_BINS - 1).astype(np.int64)
+    bins[p <= 0.0] = 0
+    bins[p >= 1.0] = AUC_BINS - 1
+    return bins
+
+
+def auc_from_histogram(histogram: NDArray[np.int64]) -> float | None:
+    """ROC AUC from (2, AUC_BINS) counts of class-0 and class-1 scores per bin;
+    None until both classes occurred. Pairs in one bin count one half, as tied
+    scores do."""
+    negative, positive = np.asarray(histogram, dtype=np.float64)
+    pairs = positive.sum() * negative.sum()
+    if pairs <= 0:
+        return None
+    below = np.cumsum(negative) - negative
+    return float(positive @ below + 0.5 * positive @ negative) / float(pairs)
+
+
 class Prequential:
     """Running test-then-train metrics; `update` is the per-record hot path and
     allocates nothing (Python scalars and lists, no arrays)."""
@@ -226,12 +250,9 @@ class Prequential:
             return _regression(self.n, self._abs_sum, self._sq_sum, self._y_m2)
         result = _classification(np.array(self._confusion, dtype=np.int64), self._log_loss_sum)
         if self.task == "binary":
-            negative, positive = np.array(self._histogram, dtype=np.float64)
-            pairs = positive.sum() * negative.sum()
-            if pairs > 0:
-                below = np.cumsum(negative) - negative
-                # Pairs in one bin count one half, as tied scores do.
-                result["roc_auc"] = float(positive @ below + 0.5 * positive @ negative) / pairs
+            auc = auc_from_histogram(np.array(self._histogram, dtype=np.int64))
+            if auc is not None:
+                result["roc_auc"] = auc
         return result
 
     # -------------------------------------------------------------------- state

@@ -15,7 +15,9 @@ from typing import Any
 from sqlalchemy import (
     JSON,
     BigInteger,
+    Date,
     DateTime,
+    Double,
     ForeignKey,
     Index,
     Integer,
@@ -209,7 +211,10 @@ class TokenRow(Base):
     revoked_at: Mapped[dt.datetime | None] = mapped_column(DateTime(timezone=True))
 
 
-# -- scored cases (issue 10, cases lane) -----------------------------------------
+# ---------------------------------------------------------------------------
+# Scored cases: keyed predictions waiting for their outcomes.
+
+
 class ScoredCaseRow(Base):
     """A keyed prediction kept until its outcome arrives: what was scored, by
     which version, what it answered; then what happened.
@@ -237,3 +242,60 @@ class ScoredCaseRow(Base):
     rescored: Mapped[int] = mapped_column(Integer, default=0, server_default="0")
     outcome: Mapped[Any | None] = mapped_column(LabelJSON, nullable=True)
     outcome_at: Mapped[dt.datetime | None] = mapped_column(DateTime(timezone=True))
+
+
+# ---------------------------------------------------------------------------
+# Live metrics (the track record): sums of served scores against their
+# outcomes per model, version and UTC day of the outcome, and the change alarm
+# per model and version. Kept by service.usecases.track_record as outcomes
+# arrive, under the model row lock the outcome batch holds.
+
+# Float64 sums: DOUBLE PRECISION on PostgreSQL, REAL (8 bytes) on SQLite.
+Sum: Double[float] = Double()
+
+
+class TrackRecordDayRow(Base):
+    """engine.track_record.Tally of one version's outcomes on one UTC day."""
+
+    __tablename__ = "track_record_days"
+    __table_args__ = (
+        UniqueConstraint("model_id", "version_id", "day"),
+        # The summary reads a model's rows in a window of days.
+        Index("ix_track_record_days_model_id_day", "model_id", "day"),
+    )
+
+    id: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=True)
+    model_id: Mapped[int] = mapped_column(ForeignKey("models.id", ondelete="CASCADE"))
+    version_id: Mapped[int] = mapped_column(ForeignKey("versions.id", ondelete="CASCADE"))
+    day: Mapped[dt.date] = mapped_column(Date)
+    n: Mapped[int] = mapped_column(BigInteger)
+    correct: Mapped[int] = mapped_column(BigInteger)
+    log_loss_sum: Mapped[float] = mapped_column(Sum)
+    brier_sum: Mapped[float] = mapped_column(Sum)
+    abs_sum: Mapped[float] = mapped_column(Sum)
+    sq_sum: Mapped[float] = mapped_column(Sum)
+    y_mean: Mapped[float] = mapped_column(Sum)
+    y_m2: Mapped[float] = mapped_column(Sum)
+    # [count, sum predicted, sum observed], each a list of 10 bins.
+    calibration: Mapped[list[Any]]
+    # Binary only: the (2, AUC_BINS) int64 histogram, little-endian, zlib-compressed.
+    auc_histogram: Mapped[bytes | None] = mapped_column(LargeBinary)
+
+
+class TrackRecordAlarmRow(Base):
+    """engine.track_record.AlarmState of one version; raised_at is the time of
+    the outcome that raised it (latched)."""
+
+    __tablename__ = "track_record_alarms"
+
+    model_id: Mapped[int] = mapped_column(
+        ForeignKey("models.id", ondelete="CASCADE"), primary_key=True)
+    version_id: Mapped[int] = mapped_column(
+        ForeignKey("versions.id", ondelete="CASCADE"), primary_key=True)
+    n: Mapped[int] = mapped_column(BigInteger)
+    mean: Mapped[float] = mapped_column(Sum)
+    cumulative: Mapped[float] = mapped_column(Sum)
+    minimum: Mapped[float] = mapped_column(Sum)
+    error_sum: Mapped[float] = mapped_column(Sum)
+    raised_at: Mapped[dt.datetime | None] = mapped_column(DateTime(timezone=True))
+    updated_at: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True), default=utcnow)

@@ -15,6 +15,7 @@ from typing import Any
 
 import click
 
+from service.tools.bench.track_record import bench_track_record
 from service.tools.outcome_import import outcomes
 from service.tools.report import emit
 
@@ -306,9 +307,11 @@ def bench() -> None:
     """Measure throughput (not tests; figures for the README)."""
 
 
+bench.add_command(bench_track_record)
+
+
 def _bench_postgres_url() -> str | None:
     from service.config import read_setting
-
     url: str | None = read_setting("KEELSON_BENCH_POSTGRES_URL")
     return url
 

@@ -13,11 +13,22 @@ from werkzeug.routing import IntegerConverter
 from service.config import load_config
 from service.web import auth, observability, paths, problems, request_target
 from service.web.body_limit import BoundedRequest
-from service.web.extensions import init_database, init_version_cache
+from service.web.domain_metrics import ModelStateCollector
+from service.web.extensions import get_database, init_database, init_version_cache
 from service.web.headers import SECURITY_HEADERS
 from service.web.openapi import DocumentingPlugin, openapi_document
 from service.web.schemas.views import ProblemSchema
-from service.web.views import jobs, models, ops, outcomes, predictions, records, versions
+from service.web.track_record_metrics import TrackRecordCollector
+from service.web.views import (
+    jobs,
+    models,
+    ops,
+    outcomes,
+    predictions,
+    records,
+    track_record,
+    versions,
+)
 
 # Registered in this order; a blueprint is one resource (service/web/views/*.py).
 BLUEPRINTS = [
@@ -28,6 +39,7 @@ BLUEPRINTS = [
     versions.blueprint,
     predictions.blueprint,
     jobs.blueprint,
+    track_record.blueprint,
 ]
 
 # The largest id or number a path can name: job ids and version numbers are
@@ -82,6 +94,8 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     init_version_cache(app)
     auth.init_app(app)
     observability.init_app(app)
+    observability.add_scrape_collector(app, ModelStateCollector(get_database(app)))
+    observability.add_scrape_collector(app, TrackRecordCollector(get_database(app)))
     api = Api(app, spec_kwargs={"info": {"description": "Keelson HTTP API (v1)."},
                                 "marshmallow_plugin": DocumentingPlugin()})
     api.register_converter(BoundedIntegerConverter, integerconverter2paramschema)

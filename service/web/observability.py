@@ -24,7 +24,7 @@ import time
 from collections.abc import Mapping
 from typing import Any
 
-from flask import Flask, Response, has_request_context, request
+from flask import Flask, Response, current_app, has_request_context, request
 from prometheus_client import (
     CONTENT_TYPE_LATEST,
     REGISTRY,
@@ -180,14 +180,21 @@ def _new_request_id() -> str:
     return os.urandom(16).hex()  # 128 random bits, as a UUID4 has, without the object
 
 
-def metrics_view() -> Response:
-    """Prometheus text exposition of this server's metrics (all workers), and
-    the per-model series read from the database (service/web/domain_metrics.py)."""
-    from service.web.domain_metrics import ModelStateCollector
-    from service.web.extensions import get_database
+# The app's collectors read at scrape time (domain series worked out from the
+# database, the same whichever worker answers): app.extensions[SCRAPE_COLLECTORS].
+SCRAPE_COLLECTORS = "keelson.scrape_collectors"
 
-    return Response(render_metrics((ModelStateCollector(get_database()),)),
-                    content_type=CONTENT_TYPE_LATEST)
+
+def add_scrape_collector(app: Flask, collector: Collector) -> None:
+    """Have /metrics collect ``collector`` at each scrape."""
+    app.extensions.setdefault(SCRAPE_COLLECTORS, []).append(collector)
+
+
+def metrics_view() -> Response:
+    """Prometheus text exposition of this server's metrics (all workers), then
+    the series the app's collectors read from the database."""
+    collectors = tuple(current_app.extensions.get(SCRAPE_COLLECTORS, ()))
+    return Response(render_metrics(collectors), content_type=CONTENT_TYPE_LATEST)
 
 
 def render_metrics(read_at_scrape: tuple[Collector, ...] = ()) -> bytes:

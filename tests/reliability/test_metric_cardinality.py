@@ -99,12 +99,14 @@ def test_metric_labels_come_from_closed_sets_whatever_clients_send(
     assert OTHER_METHOD in seen["method"]
     assert seen["route"] <= routes, seen["route"] - routes
     assert all(re.fullmatch(r"[1-5]\d\d", status) for status in seen["status"])
-    # The domain series (service/web/domain_metrics.py): models that exist,
-    # their versions' numbers, the explanation methods.
-    assert set(seen) <= {"method", "route", "status", "le", "model", "version", "explain"}, \
-        set(seen)
+    # The domain series are labelled by the stored models, their versions'
+    # numbers, the explanation methods and the live metric names only, never
+    # by what a client sent.
+    assert set(seen) <= {"method", "route", "status", "le", "model", "version", "explain",
+                         "metric"}, set(seen)
     assert seen.get("model", set()) <= {"pump-risk"}, seen.get("model")
     assert seen.get("explain", set()) <= set(EXPLAIN_METHODS), seen.get("explain")
     assert all(v.isdigit() for v in seen.get("version", set())), seen.get("version")
+    assert seen.get("metric", set()) <= {"log_loss", "rmse"}
     # The same series, only their counts moved: the text is (nearly) the same size.
     assert len(after) <= len(before) * 1.05 + 512, (len(before), len(after))

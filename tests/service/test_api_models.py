@@ -30,6 +30,8 @@ def expected_model(**overrides: Any) -> dict[str, Any]:
         "loss": "cross_entropy",
         "promotion": "auto",
         "training": FULL_TRAINING,
+        # The change alarm's binary defaults (engine.spec.ALARM_DEFAULTS).
+        "alarm": {"delta": 0.01, "threshold": 20.0},
         "active_version": None,
         "records": {"total": 0, "train": 0, "holdout": 0},
         "trainer": {"cursor": 0, "lag": 0},
@@ -134,6 +136,11 @@ BAD_SPECS = [
     ({"training": {"holdout_fraction": 1.5}}, "training.holdout_fraction"),
     ({"training": {"batch_size": 2.5}}, "training.batch_size"),
     ({"training": {"epochs": 5}}, "training.epochs"),
+    ({"alarm": {"threshold": 0}}, "alarm.threshold"),
+    ({"alarm": {"delta": -0.5}}, "alarm.delta"),
+    ({"alarm": {"delta": "small"}}, "alarm.delta"),
+    ({"alarm": {"window": 7}}, "alarm.window"),
+    ({"alarm": [0.1, 5]}, "alarm"),
     ({"colour": "red"}, "colour"),
     ({"name": None}, "name"),
 ]
@@ -196,3 +203,11 @@ def test_the_old_spelling_of_the_decay_schedule_is_refused_naming_the_field(
     assert body["errors"] == {field: [message]}
     with get_database(app).read() as session:
         assert session.scalars(select(ModelRow)).first() is None
+
+
+def test_the_alarm_section_is_optional_and_filled_with_the_task_defaults(
+        api: ApiClient) -> None:
+    body = create_model(api, task="regression", classes=None, alarm={"threshold": 80})
+    # Regression's delta default (engine.spec.ALARM_DEFAULTS) beside the threshold given.
+    assert body["alarm"] == {"delta": 0.1, "threshold": 80}
+    assert api.request("GET", "/v1/models/pump-risk", 200)["alarm"] == body["alarm"]

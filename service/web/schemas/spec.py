@@ -151,6 +151,19 @@ class TrainingSchema(Schema):
         raise ValidationError(renamed, data=error.data, valid_data=error.valid_data)
 
 
+class AlarmSchema(Schema):
+    """The change alarm's parameters (engine.track_record, Page-Hinkley); the
+    defaults per task are engine.spec.ALARM_DEFAULTS."""
+
+    class Meta:
+        unknown = RAISE
+
+    delta = StrictNumber(minimum=0, maximum=1000, metadata={
+        "description": "The rise of the per-case loss tolerated per case."})
+    threshold = StrictNumber(minimum=0, exclusive_minimum=True, maximum=1_000_000, metadata={
+        "description": "How far the test statistic may climb before the alarm is raised."})
+
+
 # A class is a string, an integer or a boolean; all classes of a model are of
 # one of these types. As JSON Schema: the ``items`` of one of these arrays.
 CLASS_TYPES: list[dict[str, Any]] = [
@@ -237,6 +250,7 @@ class ModelSpecSchema(Schema):
     loss = fields.String(validate=validate.OneOf(engine.LOSSES["binary"]))
     training = fields.Nested(TrainingSchema)
     promotion = fields.String(validate=validate.OneOf(engine.PROMOTIONS))
+    alarm = fields.Nested(AlarmSchema)
 
     @validates_schema
     def _consistent(self, data: dict[str, Any], **kwargs: Any) -> None:
