@@ -79,7 +79,7 @@ def kolmogorov_sf(x: float) -> float:
         term = math.pi ** 2 / (8 * x * x)
         total = sum(math.exp(-(2 * k - 1) ** 2 * term) for k in range(1, 8))
         return min(1.0, max(0.0, 1.0 - math.sqrt(2 * math.pi) / x * total))
-    total = sum((-1) ** (k - 1) * math.exp(-2 * k * k * x * x) for k in range(1, 101))
+    total = sum((1.0 if k % 2 else -1.0) * math.exp(-2 * k * k * x * x) for k in range(1, 101))
     return min(1.0, max(0.0, 2.0 * total))
 
 
