@@ -207,3 +207,29 @@ class TokenRow(Base):
     scopes: Mapped[list[Any]]
     created_at: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True), default=utcnow)
     revoked_at: Mapped[dt.datetime | None] = mapped_column(DateTime(timezone=True))
+
+
+# ---------------------------------------------------------------- drift (issue 10)
+
+
+class DriftTallyRow(Base):
+    """How many predictions one API process saw in each of a field's reference
+    bins, for one model's active version, in one hour (``bucket_start``).
+
+    ``writer`` names the process (random per process start): only that
+    process writes its rows, and each flush writes its running totals for the
+    hour whole, so processes never contend for a row and a repeated flush
+    changes nothing. ``counts`` maps each field to its counts over the
+    version's reference bins (engine/drift_bins.py)."""
+
+    __tablename__ = "drift_tallies"
+    __table_args__ = (UniqueConstraint("model_id", "version_id", "bucket_start", "writer"),)
+
+    id: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=True)
+    model_id: Mapped[int] = mapped_column(ForeignKey("models.id", ondelete="CASCADE"))
+    version_id: Mapped[int] = mapped_column(ForeignKey("versions.id", ondelete="CASCADE"))
+    bucket_start: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True))
+    writer: Mapped[str] = mapped_column(String(64))
+    predictions: Mapped[int] = mapped_column(BigInteger)
+    counts: Mapped[dict[str, Any]]
+    updated_at: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True), default=utcnow)

@@ -18,6 +18,7 @@ import orjson
 import engine
 from service.errors import ConflictError, KeelsonError, NotFoundError
 from service.usecases.common import is_model_name
+from service.usecases.drift_tally import DriftTally
 from service.usecases.prediction_limits import PredictionLimits
 from service.versions.cache import (
     LoadedVersion,
@@ -92,6 +93,7 @@ def predict(
     limits: PredictionLimits | None = None,
     *,
     batch: bool = False,
+    tally: DriftTally | None = None,
 ) -> tuple[int, dict[str, Any] | None, list[dict[str, Any]]]:
     """The serving version's number, the explanations' baseline (None when
     nothing is explained) and ``{"result", "explanation"}`` per row, in order.
@@ -106,6 +108,8 @@ def predict(
     refuses a request over budget before any work and ends one past its
     deadline, or whose client left, between records (prediction_limits.py).
     ``batch``: rows came as ``records`` of a body (errors name ``records.N``).
+    ``tally``: this process's drift counts, which see every row scored here
+    against the model's active version (in memory; no database write).
     """
     loaded = _version(cache, entry, options.version)
     learner = loaded.learner
@@ -114,6 +118,8 @@ def predict(
         limits.check_cost(len(rows), options.explain, options.steps, options.samples,
                           network.params.size, sum(network.sizes[1:]),
                           answer_bytes(learner, len(rows), options.explain != "none"))
+    if tally is not None:
+        tally.observe(entry.id, entry.active_version_id, rows)
     encoded = learner.encode(rows)
     scores = learner.predict(encoded)
     classes = learner.classes if learner.task != "regression" else None

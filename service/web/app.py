@@ -13,7 +13,7 @@ from werkzeug.routing import IntegerConverter
 from service.config import load_config
 from service.web import auth, observability, paths, problems, request_target
 from service.web.body_limit import BoundedRequest
-from service.web.extensions import init_database, init_version_cache
+from service.web.extensions import init_database, init_drift, init_version_cache
 from service.web.headers import SECURITY_HEADERS
 from service.web.openapi import DocumentingPlugin, openapi_document
 from service.web.schemas.views import ProblemSchema
@@ -79,6 +79,7 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     app.json.sort_keys = False  # type: ignore[attr-defined]
     init_database(app)
     init_version_cache(app)
+    init_drift(app)
     auth.init_app(app)
     observability.init_app(app)
     api = Api(app, spec_kwargs={"info": {"description": "Keelson HTTP API (v1)."},

@@ -17,7 +17,7 @@ from service.usecases.prediction_limits import PredictionLimits
 from service.usecases.predictions import find_model, predict
 from service.web.auth import requires
 from service.web.disconnect import client_gone_probe
-from service.web.extensions import get_version_cache
+from service.web.extensions import get_drift_tally, get_version_cache
 from service.web.schemas.predictions import (
     PredictionBatchSchema,
     PredictionQuerySchema,
@@ -81,7 +81,7 @@ def get_prediction(name: str) -> Response:
     entry = find_model(cache, name)
     features, options = prediction_readers(entry).read_query(request.args)
     number, baseline, (answer,) = predict(cache, entry, (features,), options,
-                                          _limits(started))
+                                          _limits(started), tally=get_drift_tally())
     return _json({"model": entry.name, "version": number, "baseline": baseline, **answer})
 
 
@@ -106,6 +106,6 @@ def post_predictions(name: str) -> Response:
     limit = int(current_app.config["KEELSON_MAX_PREDICTION_BATCH"])
     rows, options = prediction_readers(entry).read_body(body, request.args, limit)
     number, baseline, answers = predict(cache, entry, rows, options, _limits(started),
-                                        batch=True)
+                                        batch=True, tally=get_drift_tally())
     return _json({"model": entry.name, "version": number, "baseline": baseline,
                   "results": answers})
