@@ -17,7 +17,7 @@ from service.web.extensions import init_database, init_drift, init_version_cache
 from service.web.headers import SECURITY_HEADERS
 from service.web.openapi import DocumentingPlugin, openapi_document
 from service.web.schemas.views import ProblemSchema
-from service.web.views import jobs, models, ops, predictions, records, versions
+from service.web.views import drift, jobs, models, ops, predictions, records, versions
 
 # Registered in this order; a blueprint is one resource (service/web/views/*.py).
 BLUEPRINTS = [
@@ -26,6 +26,7 @@ BLUEPRINTS = [
     records.blueprint,
     versions.blueprint,
     predictions.blueprint,
+    drift.blueprint,
     jobs.blueprint,
 ]
 
