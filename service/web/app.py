@@ -13,6 +13,7 @@ from werkzeug.routing import IntegerConverter
 from service.config import load_config
 from service.web import auth, observability, paths, problems, request_target
 from service.web.body_limit import BoundedRequest
+from service.web.drift_metrics import DriftCollector
 from service.web.extensions import init_database, init_drift, init_version_cache
 from service.web.headers import SECURITY_HEADERS
 from service.web.openapi import DocumentingPlugin, openapi_document
@@ -91,6 +92,7 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     for blueprint in BLUEPRINTS:
         api.register_blueprint(blueprint)
     problems.init_app(app)
+    app.extensions.setdefault(observability.SCRAPE_COLLECTORS, []).append(DriftCollector(app))
     app.extensions["keelson.openapi"] = openapi_document(app, api.spec)
     app.wsgi_app = SecurityHeaders(app.wsgi_app)  # type: ignore[method-assign]
     return app

@@ -24,7 +24,7 @@ import time
 from collections.abc import Mapping
 from typing import Any
 
-from flask import Flask, Response, has_request_context, request
+from flask import Flask, Response, current_app, has_request_context, request
 from prometheus_client import (
     CONTENT_TYPE_LATEST,
     REGISTRY,
@@ -179,9 +179,22 @@ def _new_request_id() -> str:
     return os.urandom(16).hex()  # 128 random bits, as a UUID4 has, without the object
 
 
+# The app's collectors read at scrape time (domain series worked out from the
+# database, the same whichever worker answers): app.extensions[SCRAPE_COLLECTORS].
+SCRAPE_COLLECTORS = "keelson.scrape_collectors"
+
+
 def metrics_view() -> Response:
     """Prometheus text exposition of this server's metrics (all workers)."""
-    return Response(render_metrics(), content_type=CONTENT_TYPE_LATEST)
+    body = render_metrics()
+    collectors = current_app.extensions.get(SCRAPE_COLLECTORS)
+    if collectors:
+        # auto_describe off: registering does not collect; generate_latest does, once.
+        registry = CollectorRegistry(auto_describe=False)
+        for collector in collectors:
+            registry.register(collector)
+        body += generate_latest(registry)
+    return Response(body, content_type=CONTENT_TYPE_LATEST)
 
 
 def render_metrics() -> bytes:

@@ -104,3 +104,22 @@ def test_refusals(drift_api):
     api.request("GET", f"{DRIFT}?windowdays=3", 422)
     api.request("GET", DRIFT, 403, token=api.token("ingest"))
     api.request("GET", DRIFT, 401, token=None)
+
+
+def test_metrics_carry_psi_per_field_and_the_worst_status(drift_api):
+    # Parsed with prometheus_client's own parser of the text exposition format.
+    from prometheus_client.parser import text_string_to_metric_families
+
+    api = drift_api
+    pump_model_with_reference(api)
+    for row in hotter(pump_rows(60, seed=22)):
+        api.request("GET", f"{PREDICT}?{predict_query(row)}", 200)
+    get_drift_tally(api.app).flush()
+    body = api.request("GET", DRIFT, 200)
+    text = api.client.get("/metrics").get_data(as_text=True)
+    families = {f.name: f for f in text_string_to_metric_families(text)}
+    psi_samples = {s.labels["field"]: s.value for s in families["keelson_drift_psi"].samples
+                   if s.labels["model"] == "pump-risk"}
+    assert psi_samples == {f["name"]: pytest.approx(f["psi"]) for f in body["fields"]}
+    states = {s.labels["status"]: s.value for s in families["keelson_drift_status"].samples}
+    assert states == {"steady": 0.0, "shifting": 0.0, "shifted": 1.0}
