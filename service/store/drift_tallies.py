@@ -74,16 +74,15 @@ def sum_tallies(session: Session, model_id: int, version_id: int, since: dt.date
         select(DriftTallyRow.predictions, text).where(
             DriftTallyRow.model_id == model_id, DriftTallyRow.version_id == version_id,
             DriftTallyRow.bucket_start >= since)).all()
-    totals = {name: np.zeros(size, dtype=np.int64) for name, size in sizes.items()}
-    predictions = 0
     decoded: list[dict[str, Any]] = orjson.loads("[" + ",".join(r[1] for r in rows) + "]") \
         if rows else []
-    for (count, _), counts in zip(rows, decoded, strict=True):
-        predictions += int(count)
-        for name, total in totals.items():
-            values = counts.get(name)
-            if values is not None and len(values) == len(total):
-                total += np.asarray(values, dtype=np.int64)
+    totals = {}
+    for name, size in sizes.items():
+        # One array per field from every row's list, summed in one call.
+        lists = [c[name] for c in decoded if len(c.get(name) or ()) == size]
+        totals[name] = np.array(lists, dtype=np.int64).sum(axis=0) if lists \
+            else np.zeros(size, dtype=np.int64)
+    predictions = sum(int(r[0]) for r in rows)
     return Summed(predictions, totals, len(rows))
 
 

@@ -15,6 +15,8 @@ from typing import Any
 
 import click
 
+from service.tools.bench.commands import bench
+
 SCOPES = ("ingest", "predict", "admin")
 
 
@@ -294,98 +296,7 @@ def import_(model: str, csv_file: Path, batch_size: int) -> None:
 
 # ------------------------------------------------------------- benchmarks
 
-
-@cli.group()
-def bench() -> None:
-    """Measure throughput (not tests; figures for the README)."""
-
-
-def _bench_postgres_url() -> str | None:
-    from service.config import read_setting
-
-    url: str | None = read_setting("KEELSON_BENCH_POSTGRES_URL")
-    return url
-
-
-def _emit(result: dict[str, Any], as_json: bool) -> None:
-    if as_json:
-        click.echo(json.dumps(result, indent=2, sort_keys=False))
-    else:
-        click.echo(_describe(result))
-
-
-def _describe(value: Any, indent: str = "") -> str:
-    if isinstance(value, dict):
-        lines = []
-        for key, item in value.items():
-            if isinstance(item, dict | list):
-                lines.append(f"{indent}{key}:")
-                lines.append(_describe(item, indent + "  "))
-            else:
-                lines.append(f"{indent}{key}: {item}")
-        return "\n".join(lines)
-    if isinstance(value, list):
-        return "\n".join(_describe(item, indent + "- ") for item in value)
-    return f"{indent}{value}"
-
-
-@bench.command("engine")
-@click.option("--json", "as_json", is_flag=True, help="One JSON object.")
-def bench_engine(as_json: bool) -> None:
-    """Engine throughput beside the reference libraries (PyTorch, scikit-learn)."""
-    from service.tools.bench.engine import run_engine_bench
-
-    _emit(run_engine_bench(), as_json)
-
-
-@bench.command("http")
-@click.option("--json", "as_json", is_flag=True, help="One JSON object.")
-@click.option("--duration", type=click.IntRange(1, 600), default=10, show_default=True,
-              help="Seconds per measured route.")
-@click.option("--connections", type=click.IntRange(1, 1024), default=16, show_default=True)
-@click.option("--postgres-url", default=_bench_postgres_url,
-              help="Also measure on this PostgreSQL server (a scratch database is made) "
-                   "[env KEELSON_BENCH_POSTGRES_URL].")
-def bench_http(as_json: bool, duration: int, connections: int, postgres_url: str | None) -> None:
-    """Predictions and ingest over HTTP against a real gunicorn on loopback (needs wrk)."""
-    from service.tools.bench.http import run_http_bench
-
-    _emit(run_http_bench(duration=duration, connections=connections,
-                         postgres_url=postgres_url, progress=_progress), as_json)
-
-
-@bench.command("budget")
-@click.option("--json", "as_json", is_flag=True, help="One JSON object.")
-@click.option("--target-seconds", type=click.FloatRange(min=0.01), default=2.0,
-              show_default=True, help="CPU time one prediction request may take.")
-def bench_budget(as_json: bool, target_seconds: float) -> None:
-    """CPU per budget unit of explanations here, and the budget that fits the target."""
-    from service.tools.bench.budget import run_budget_bench
-
-    _emit(run_budget_bench(target_seconds=target_seconds, progress=_progress), as_json)
-
-
-@bench.command("worker")
-@click.option("--json", "as_json", is_flag=True, help="One JSON object.")
-@click.option("--records", type=click.IntRange(min=1000), default=100_000, show_default=True,
-              help="Records stored before the worker starts.")
-@click.option("--postgres-url", default=_bench_postgres_url,
-              help="Also measure on this PostgreSQL server (a scratch database is made) "
-                   "[env KEELSON_BENCH_POSTGRES_URL].")
-@click.option("--database-url", default=None,
-              help="Measure on this empty scratch database only (instead of SQLite + "
-                   "PostgreSQL).")
-def bench_worker(as_json: bool, records: int, postgres_url: str | None,
-                 database_url: str | None) -> None:
-    """Training worker throughput and memory against the engine alone."""
-    from service.tools.bench.worker import run_worker_bench
-
-    _emit(run_worker_bench(database_url=database_url, records=records,
-                           postgres_url=postgres_url, progress=_progress), as_json)
-
-
-def _progress(message: str) -> None:
-    click.echo(message, err=True)
+cli.add_command(bench)  # service/tools/bench/commands.py
 
 
 def main() -> None:
