@@ -28,7 +28,7 @@ def upgrade() -> None:
         sa.Column("bucket_start", sa.DateTime(timezone=True), nullable=False),
         sa.Column("writer", sa.String(length=64), nullable=False),
         sa.Column("predictions", sa.BigInteger(), nullable=False),
-        sa.Column("counts", sa.JSON(), nullable=False),
+        sa.Column("counts", sa.LargeBinary(), nullable=False),
         sa.Column("updated_at", sa.DateTime(timezone=True), nullable=False),
         sa.ForeignKeyConstraint(["model_id"], ["models.id"],
                                 name=op.f("fk_drift_tallies_model_id_models"),

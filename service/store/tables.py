@@ -219,8 +219,10 @@ class DriftTallyRow(Base):
     ``writer`` names the process (random per process start): only that
     process writes its rows, and each flush writes its running totals for the
     hour whole, so processes never contend for a row and a repeated flush
-    changes nothing. ``counts`` maps each field to its counts over the
-    version's reference bins (engine/drift_bins.py)."""
+    changes nothing. ``counts``: every field's counts over the version's
+    reference bins (engine/drift_bins.py), fields in the spec's order, as
+    little-endian int64 (the answer adds a week of rows from 8 processes in
+    one NumPy call; as JSON, parsing them took most of its 50 ms)."""
 
     __tablename__ = "drift_tallies"
     __table_args__ = (UniqueConstraint("model_id", "version_id", "bucket_start", "writer"),)
@@ -231,5 +233,5 @@ class DriftTallyRow(Base):
     bucket_start: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True))
     writer: Mapped[str] = mapped_column(String(64))
     predictions: Mapped[int] = mapped_column(BigInteger)
-    counts: Mapped[dict[str, Any]]
+    counts: Mapped[bytes] = mapped_column(LargeBinary)
     updated_at: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True), default=utcnow)

@@ -167,7 +167,7 @@ class DriftTally:
 def _as_tally(key: Key, tally: _Open) -> Tally:
     model_id, version_id, hour = key
     return Tally(model_id, version_id, dt.datetime.fromtimestamp(hour * HOUR, dt.UTC),
-                 tally.predictions, {name: list(counts) for name, _, counts in tally.fields})
+                 tally.predictions, [list(counts) for _, _, counts in tally.fields])
 
 
 def _flush_until_stopped(ref: weakref.ref[DriftTally], stop: threading.Event,

@@ -178,8 +178,11 @@ def _fill_tallies(database: Any, writers: int, days: int) -> int:
                                                ).one()
         bins = read_reference(session, version_id)
     assert bins is not None
-    counts = {b.name: [int(c) for c in b.reference] for b in bins}
+    from service.store.drift_tallies import Tally
+
     predictions = int(bins[0].reference.sum())
+    counts = Tally(model_id, version_id, dt.datetime.now(dt.UTC), predictions,
+                   [b.reference.tolist() for b in bins]).packed()
     now = dt.datetime.now(dt.UTC).replace(minute=0, second=0, microsecond=0)
     written = 0
     batch: list[dict[str, Any]] = []
