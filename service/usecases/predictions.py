@@ -108,8 +108,8 @@ def predict(
     refuses a request over budget before any work and ends one past its
     deadline, or whose client left, between records (prediction_limits.py).
     ``batch``: rows came as ``records`` of a body (errors name ``records.N``).
-    ``tally``: this process's drift counts, which see every row scored here
-    against the model's active version (in memory; no database write).
+    ``tally``: this process's drift counts, which see every row answered
+    here, against the model's active version (in memory; no database write).
     """
     loaded = _version(cache, entry, options.version)
     learner = loaded.learner
@@ -118,8 +118,6 @@ def predict(
         limits.check_cost(len(rows), options.explain, options.steps, options.samples,
                           network.params.size, sum(network.sizes[1:]),
                           answer_bytes(learner, len(rows), options.explain != "none"))
-    if tally is not None:
-        tally.observe(entry.id, entry.active_version_id, rows)
     encoded = learner.encode(rows)
     scores = learner.predict(encoded)
     classes = learner.classes if learner.task != "regression" else None
@@ -151,6 +149,8 @@ def predict(
                 raise _overflow(learner, rows[index], encoded[index], index, batch,
                                 "explanation") from None
         answers.append({"result": result, "explanation": explanation})
+    if tally is not None:  # answered: counted (a refused or failed request is not)
+        tally.observe(entry.id, entry.active_version_id, rows)
     return loaded.number, baseline, answers
 
 

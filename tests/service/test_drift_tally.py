@@ -8,6 +8,7 @@ import datetime as dt
 import threading
 
 import numpy as np
+import pytest
 from sqlalchemy import event, select
 
 from engine.drift_bins import reference_bins
@@ -174,3 +175,29 @@ def test_drift_off_counts_nothing(sqlite_url):
     api.request("GET", f"{PATH}?{predict_query(pump_rows(1)[0])}", 200)
     with get_database(app).read() as session:
         assert count_tally_rows(session, model_row(app, "pump-risk").id) == 0
+
+
+def test_a_failed_flush_keeps_the_counts_for_the_next(sqlite_url, monkeypatch):
+    import service.usecases.drift_tally as drift_tally
+
+    app = build_app(sqlite_url, KEELSON_DRIFT_FLUSH_SECONDS=3600)
+    api = ApiClient(app)
+    version_id = pump_model_with_reference(api)
+    model_id = model_row(app, "pump-risk").id
+    tally = get_drift_tally(app)
+    get_drift_references(app).load(version_id)
+    tally.observe(model_id, version_id, pump_rows(9, seed=9))
+    original = drift_tally.write_tallies
+
+    def unreachable(*args, **kwargs):
+        raise OSError("database unreachable")
+
+    monkeypatch.setattr(drift_tally, "write_tallies", unreachable)
+    with pytest.raises(OSError):
+        tally.flush()
+    monkeypatch.setattr(drift_tally, "write_tallies", original)
+    assert tally.flush() == 1
+    with get_database(app).read() as session:
+        summed = sum_tallies(session, model_id, version_id, EPOCH, sizes_of(app, version_id))
+    assert summed.predictions == 9
+    tally.close()
