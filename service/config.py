@@ -188,6 +188,12 @@ SETTINGS: tuple[Setting, ...] = (
             "README, \"Request budget\")"),
     Setting("KEELSON_PREDICTION_DEADLINE_SECONDS", API, 10.0, positive_number,
             "seconds a prediction request may compute before it answers 503"),
+    Setting("KEELSON_DRIFT", API, True, flag,
+            "`1`: each API process counts every prediction's fields for GET "
+            "/v1/models/{name}/drift; `0`: nothing is counted"),
+    Setting("KEELSON_DRIFT_FLUSH_SECONDS", API, 10.0, positive_number,
+            "seconds between an API process's writes of its drift counts (a process that "
+            "dies loses at most this much drift data)"),
     Setting("KEELSON_HOST", SERVER, "127.0.0.1", text, "address the API listens on"),
     Setting("KEELSON_PORT", SERVER, 8000, whole_number, "port the API listens on"),
     Setting("KEELSON_WEB_WORKERS", SERVER, None, whole_number,

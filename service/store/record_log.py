@@ -140,14 +140,16 @@ def read_after(
     return fetch_chunk(session, query.order_by(RecordRow.seq).limit(limit))
 
 
-def read_latest_holdout(session: Session, model_id: int, upto: int, limit: int) -> RecordChunk:
-    """The latest ``limit`` holdout records with ``seq <= upto``, in sequence order."""
+def read_latest_holdout(session: Session, model_id: int, upto: int, limit: int,
+                        split: str = "holdout") -> RecordChunk:
+    """The latest ``limit`` records of ``split`` (holdout unless told) with
+    ``seq <= upto``, in sequence order."""
     rows = session.connection().execute(
         select(*record_columns(session))
         .where(
             RecordRow.model_id == model_id,
             RecordRow.seq <= upto,
-            RecordRow.split == "holdout",
+            RecordRow.split == split,
         )
         .order_by(RecordRow.seq.desc())
         .limit(limit)

@@ -15,9 +15,8 @@ from typing import Any
 
 import click
 
-from service.tools.bench.track_record import bench_track_record
+from service.tools.bench.commands import bench
 from service.tools.outcome_import import outcomes
-from service.tools.report import emit
 
 SCOPES = ("ingest", "predict", "admin")
 
@@ -301,95 +300,7 @@ cli.add_command(outcomes)  # keelson outcomes import (service/tools/outcome_impo
 
 # ------------------------------------------------------------- benchmarks
 
-
-@cli.group()
-def bench() -> None:
-    """Measure throughput (not tests; figures for the README)."""
-
-
-bench.add_command(bench_track_record)
-
-
-def _bench_postgres_url() -> str | None:
-    from service.config import read_setting
-    url: str | None = read_setting("KEELSON_BENCH_POSTGRES_URL")
-    return url
-
-
-@bench.command("engine")
-@click.option("--json", "as_json", is_flag=True, help="One JSON object.")
-def bench_engine(as_json: bool) -> None:
-    """Engine throughput beside the reference libraries (PyTorch, scikit-learn)."""
-    from service.tools.bench.engine import run_engine_bench
-
-    emit(run_engine_bench(), as_json)
-
-
-@bench.command("http")
-@click.option("--json", "as_json", is_flag=True, help="One JSON object.")
-@click.option("--duration", type=click.IntRange(1, 600), default=10, show_default=True,
-              help="Seconds per measured route.")
-@click.option("--connections", type=click.IntRange(1, 1024), default=16, show_default=True)
-@click.option("--postgres-url", default=_bench_postgres_url,
-              help="Also measure on this PostgreSQL server (a scratch database is made) "
-                   "[env KEELSON_BENCH_POSTGRES_URL].")
-def bench_http(as_json: bool, duration: int, connections: int, postgres_url: str | None) -> None:
-    """Predictions and ingest over HTTP against a real gunicorn on loopback (needs wrk)."""
-    from service.tools.bench.http import run_http_bench
-
-    emit(run_http_bench(duration=duration, connections=connections,
-                         postgres_url=postgres_url, progress=_progress), as_json)
-
-
-@bench.command("budget")
-@click.option("--json", "as_json", is_flag=True, help="One JSON object.")
-@click.option("--target-seconds", type=click.FloatRange(min=0.01), default=2.0,
-              show_default=True, help="CPU time one prediction request may take.")
-def bench_budget(as_json: bool, target_seconds: float) -> None:
-    """CPU per budget unit of explanations here, and the budget that fits the target."""
-    from service.tools.bench.budget import run_budget_bench
-
-    emit(run_budget_bench(target_seconds=target_seconds, progress=_progress), as_json)
-
-
-@bench.command("worker")
-@click.option("--json", "as_json", is_flag=True, help="One JSON object.")
-@click.option("--records", type=click.IntRange(min=1000), default=100_000, show_default=True,
-              help="Records stored before the worker starts.")
-@click.option("--postgres-url", default=_bench_postgres_url,
-              help="Also measure on this PostgreSQL server (a scratch database is made) "
-                   "[env KEELSON_BENCH_POSTGRES_URL].")
-@click.option("--database-url", default=None,
-              help="Measure on this empty scratch database only (instead of SQLite + "
-                   "PostgreSQL).")
-def bench_worker(as_json: bool, records: int, postgres_url: str | None,
-                 database_url: str | None) -> None:
-    """Training worker throughput and memory against the engine alone."""
-    from service.tools.bench.worker import run_worker_bench
-
-    emit(run_worker_bench(database_url=database_url, records=records,
-                           postgres_url=postgres_url, progress=_progress), as_json)
-
-
-@bench.command("cases")
-@click.option("--json", "as_json", is_flag=True, help="One JSON object.")
-@click.option("--duration", type=click.IntRange(1, 600), default=5, show_default=True,
-              help="Seconds per measured round (two rounds each, alternating).")
-@click.option("--connections", type=click.IntRange(1, 1024), default=8, show_default=True)
-@click.option("--postgres-url", default=_bench_postgres_url,
-              help="Also measure on this PostgreSQL server (a scratch database is made) "
-                   "[env KEELSON_BENCH_POSTGRES_URL].")
-def bench_cases(as_json: bool, duration: int, connections: int, postgres_url: str | None
-                ) -> None:
-    """Keyed against unkeyed explained predictions, and outcome ingest (needs wrk)."""
-    from service.tools.bench.cases import run_cases_bench
-
-    emit(run_cases_bench(duration=duration, connections=connections,
-                         postgres_url=postgres_url, progress=_progress), as_json)
-
-
-def _progress(message: str) -> None:
-    click.echo(message, err=True)
+cli.add_command(bench)  # service/tools/bench/commands.py
 
 
 def main() -> None:

@@ -18,6 +18,7 @@ import orjson
 import engine
 from service.errors import ConflictError, KeelsonError, NotFoundError
 from service.usecases.common import is_model_name
+from service.usecases.drift_tally import DriftTally
 from service.usecases.prediction_limits import PredictionLimits
 from service.versions.cache import (
     LoadedVersion,
@@ -98,6 +99,7 @@ def predict(
     limits: PredictionLimits | None = None,
     *,
     batch: bool = False,
+    tally: DriftTally | None = None,
 ) -> tuple[int, dict[str, Any] | None, list[dict[str, Any]]]:
     """The serving version's number, the explanations' baseline (None when
     nothing is explained) and ``{"result", "explanation"}`` per row, in order.
@@ -112,6 +114,8 @@ def predict(
     refuses a request over budget before any work and ends one past its
     deadline, or whose client left, between records (prediction_limits.py).
     ``batch``: rows came as ``records`` of a body (errors name ``records.N``).
+    ``tally``: this process's drift counts, which see every row answered
+    here, against the model's active version (in memory; no database write).
     """
     loaded = _version(cache, entry, options.version)
     learner = loaded.learner
@@ -151,6 +155,8 @@ def predict(
                 raise _overflow(learner, rows[index], encoded[index], index, batch,
                                 "explanation") from None
         answers.append({"result": result, "explanation": explanation})
+    if tally is not None:  # answered: counted (a refused or failed request is not)
+        tally.observe(entry.id, entry.active_version_id, rows)
     return loaded.number, baseline, answers
 
 

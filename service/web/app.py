@@ -14,12 +14,14 @@ from service.config import load_config
 from service.web import auth, observability, paths, problems, request_target
 from service.web.body_limit import BoundedRequest
 from service.web.domain_metrics import ModelStateCollector
-from service.web.extensions import get_database, init_database, init_version_cache
+from service.web.drift_metrics import DriftCollector
+from service.web.extensions import get_database, init_database, init_drift, init_version_cache
 from service.web.headers import SECURITY_HEADERS
 from service.web.openapi import DocumentingPlugin, openapi_document
 from service.web.schemas.views import ProblemSchema
 from service.web.track_record_metrics import TrackRecordCollector
 from service.web.views import (
+    drift,
     jobs,
     models,
     ops,
@@ -38,6 +40,7 @@ BLUEPRINTS = [
     outcomes.blueprint,
     versions.blueprint,
     predictions.blueprint,
+    drift.blueprint,
     jobs.blueprint,
     track_record.blueprint,
 ]
@@ -92,6 +95,7 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     app.json.sort_keys = False  # type: ignore[attr-defined]
     init_database(app)
     init_version_cache(app)
+    init_drift(app)
     auth.init_app(app)
     observability.init_app(app)
     observability.add_scrape_collector(app, ModelStateCollector(get_database(app)))
@@ -104,6 +108,7 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     for blueprint in BLUEPRINTS:
         api.register_blueprint(blueprint)
     problems.init_app(app)
+    observability.add_scrape_collector(app, DriftCollector(app))
     app.extensions["keelson.openapi"] = openapi_document(app, api.spec)
     app.wsgi_app = SecurityHeaders(app.wsgi_app)  # type: ignore[method-assign]
     return app

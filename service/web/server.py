@@ -170,6 +170,17 @@ def post_worker_init(worker: Any) -> None:
     gc.freeze()
 
 
+def worker_exit(server: Any, worker: Any) -> None:
+    """In the worker, as it exits after a clean stop: write the drift counts it
+    holds (service/usecases/drift_tally.py); a worker killed outright loses at
+    most one flush interval of them."""
+    app = getattr(worker, "wsgi", None)
+    if app is not None and hasattr(app, "extensions"):
+        from service.web.extensions import close_drift_tally
+
+        close_drift_tally(app)
+
+
 def child_exit(server: Any, worker: Any) -> None:
     """A worker died or was replaced: drop its live gauges (prometheus_client's
     multiprocess documentation)."""

@@ -170,9 +170,9 @@ def _time(call: Callable[[], Any], repeats: int) -> dict[str, float]:
 def bench_track_record(as_json: bool, outcomes: int, repeats: int,
                        postgres_url: str | None) -> None:
     """Track-record and /metrics answer times with a year of outcomes stored."""
-    from service.tools import cli
+    from service.tools.bench import commands
     from service.tools.report import emit
 
     emit(run_track_record_bench(outcomes=outcomes, repeats=repeats,
-                                 postgres_url=postgres_url or cli._bench_postgres_url(),
-                                 progress=cli._progress), as_json)
+                                 postgres_url=postgres_url or commands._bench_postgres_url(),
+                                 progress=commands._progress), as_json)

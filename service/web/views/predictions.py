@@ -19,7 +19,7 @@ from service.usecases.predictions import find_model, predict
 from service.web.auth import requires
 from service.web.disconnect import client_gone_probe
 from service.web.domain_metrics import count_served
-from service.web.extensions import get_database, get_version_cache
+from service.web.extensions import get_database, get_drift_tally, get_version_cache
 from service.web.schemas.predictions import (
     PredictionBatchSchema,
     PredictionQuerySchema,
@@ -83,7 +83,7 @@ def get_prediction(name: str) -> Response:
     entry = find_model(cache, name)
     features, options, key = prediction_readers(entry).read_query(request.args)
     number, baseline, (answer,) = predict(cache, entry, (features,), options,
-                                          _limits(started))
+                                          _limits(started), tally=get_drift_tally())
     if key is not None:
         _keep(entry.id, number, [key], [features], [answer], ["key"])
     count_served(entry.name, number, options.explain, 1)
@@ -111,7 +111,7 @@ def post_predictions(name: str) -> Response:
     limit = int(current_app.config["KEELSON_MAX_PREDICTION_BATCH"])
     rows, options, keys = prediction_readers(entry).read_body(body, request.args, limit)
     number, baseline, answers = predict(cache, entry, rows, options, _limits(started),
-                                        batch=True)
+                                        batch=True, tally=get_drift_tally())
     if keys is not None:
         keyed = [i for i, key in enumerate(keys) if key is not None]
         _keep(entry.id, number, [keys[i] for i in keyed], [rows[i] for i in keyed],
