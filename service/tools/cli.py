@@ -252,6 +252,9 @@ def token_revoke(id_or_name: str) -> None:
 @click.option("--seed", type=int, default=7, show_default=True, help="Seed of the generator.")
 @click.option("--retrain/--no-retrain", default=True, show_default=True,
               help="After online training, also run a full retrain job.")
+@click.option("--cases", type=click.IntRange(min=0), default=1000, show_default=True,
+              help="Second act: pump-weeks scored with case keys whose outcomes arrive "
+                   "later (0: no second act).")
 @click.option("--serve", "then_serve", is_flag=True,
               help="Afterwards keep serving the API (and a worker) on the same database.")
 @click.option("--host", default=None, help="With --serve: address [127.0.0.1].")
@@ -259,19 +262,22 @@ def token_revoke(id_or_name: str) -> None:
               help="With --serve: port [8000].")
 @click.option("--workers", type=click.IntRange(min=1), default=None,
               help="With --serve: API worker processes.")
-def demo(records: int, seed: int, retrain: bool, then_serve: bool, host: str | None,
-         port: int | None, workers: int | None) -> None:
+def demo(records: int, seed: int, retrain: bool, cases: int, then_serve: bool,
+         host: str | None, port: int | None, workers: int | None) -> None:
     """Load the invented pump-station scenario and show explained predictions.
 
     Creates the model `pump-risk` through the HTTP API, streams generated weekly
     pump summaries to it, trains until a version is active, and prints a few
-    predictions with an explanation bar per field. The data is invented.
-    Runs again on the same database without storing anything twice.
+    predictions with an explanation bar per field. A second act scores later
+    weeks with case keys, sends their outcomes, and shows the track record,
+    its calibration and alarm, and the drift of each field after an invented
+    heat wave. The data is invented. Runs again on the same database without
+    storing anything twice.
     """
     from service.tools.demo.run import run_demo
 
     run_demo(_config(), records=records, seed=seed, serve=then_serve, host=host, port=port,
-             web_workers=workers, retrain=retrain)
+             web_workers=workers, retrain=retrain, cases=cases)
 
 
 @cli.command("import")

@@ -50,6 +50,17 @@ def test_the_demo_runs_to_the_end_and_explains_every_declared_field(sqlite_url: 
         lines = re.findall(rf"^  {field} +.+ [+-]\d\.\d{{3}} .*\|", output, re.MULTILINE)
         assert len(lines) == 4, (field, output)
     assert output.count("attributions sum to P(x) - P(baseline) within") == 4
+    # The second act: keyed cases scored, their outcomes sent as CSV, then the
+    # track record (with calibration and alarm) and a drift line per field.
+    assert "1000 outcomes accepted, 0 already known" in output
+    assert re.search(r"^  version \d+ \(active\): 1000 outcomes; accuracy ", output, re.MULTILINE)
+    assert "calibration: predicted P(failed)" in output
+    assert re.search(r"change alarm of the active version: (calm|raised since)", output)
+    for field in FIELDS:
+        assert re.search(rf"^  {field} +PSI \d\.\d{{3}}  (steady|shifting|shifted)", output,
+                         re.MULTILINE), (field, output)
+    assert re.search(r"^(Moved since training: .+|No field has moved past PSI 0\.1\.)$", output,
+                     re.MULTILINE)
     for caution in ("decision support", "a person reviews it", "local data",
                     "licensed professional practice"):
         assert caution in output
@@ -61,7 +72,11 @@ def test_running_the_demo_again_stores_nothing_twice(sqlite_url: str) -> None:
     again = _demo(sqlite_url, "--no-retrain")
     assert "already exists: reusing it" in again
     assert "0 stored, 600 duplicates" in again
-    assert "Already trained" in again
+    assert "0 outcomes accepted, 1000 already known" in again
+    # The first run's outcomes became records after its training: the second
+    # run learns those, and nothing else is new.
+    quiet = _demo(sqlite_url, "--no-retrain", "--cases", "0")
+    assert "Already trained" in quiet
 
 
 @pytest.mark.slow

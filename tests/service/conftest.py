@@ -9,7 +9,7 @@ import pytest
 from flask import Flask
 
 from service.web.app import create_app
-from service.web.extensions import get_database
+from service.web.extensions import close_drift_tally, get_database
 from tests.service.helpers import ADMIN_TOKEN, ApiClient
 
 
@@ -29,6 +29,7 @@ def app(sqlite_url: str) -> Iterator[Flask]:
     """The app on a fresh SQLite database."""
     application = build_app(sqlite_url)
     yield application
+    close_drift_tally(application)  # its last flush, while the database exists
     get_database(application).engine.dispose()
 
 
@@ -37,6 +38,7 @@ def any_app(database_url: str) -> Iterator[Flask]:
     """The app on a fresh database, once on SQLite and once on PostgreSQL."""
     application = build_app(database_url)
     yield application
+    close_drift_tally(application)  # its last flush, while the database exists
     get_database(application).engine.dispose()
 
 

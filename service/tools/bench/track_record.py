@@ -16,9 +16,10 @@ validation and the answer's JSON, no socket):
 * ``metrics_scrape_ms``: GET /metrics, with the track-record series;
 * ``day_rows``: the stored day rows the answers read from.
 
-The summary reads day rows only; the scored cases behind them are never read,
-so their number does not enter these figures (scored cases are stored by the
-outcomes lane's table, which this benchmark does not fill). Served
+Before the answers are timed, ``cases`` scored cases (default 1,000,000) are
+stored in bulk, the first ``outcomes`` of them with their outcome: the summary
+reads day rows only and never the cases, and this shows it with a history of
+that size in the same database (``scored_cases`` reports the count). Served
 probabilities and outcomes are invented (uniform scores, outcomes drawn from
 them), there only to have numbers to add.
 """
@@ -49,32 +50,33 @@ SPEC: dict[str, Any] = {
 }
 
 
-def run_track_record_bench(outcomes: int = 200_000, repeats: int = 50,
+def run_track_record_bench(outcomes: int = 200_000, repeats: int = 50, cases: int = 1_000_000,
                            postgres_url: str | None = None,
                            progress: Progress = lambda _: None) -> dict[str, Any]:
     """Measure and return one JSON-ready object (see the module docstring)."""
     from service.tools.bench.scratch import scratch_postgres
 
     result: dict[str, Any] = {"python": platform.python_version(), "outcomes": outcomes,
-                              "batch": BATCH, "repeats": repeats}
+                              "scored_cases": cases, "batch": BATCH, "repeats": repeats}
     with tempfile.TemporaryDirectory() as folder:
         progress("track record on SQLite ...")
         result["sqlite"] = _measure(f"sqlite:///{Path(folder) / 'bench.db'}", outcomes,
-                                    repeats, progress)
+                                    repeats, cases, progress)
     if postgres_url:
         with scratch_postgres(postgres_url) as url:
             progress("track record on PostgreSQL ...")
-            result["postgresql"] = _measure(url, outcomes, repeats, progress)
+            result["postgresql"] = _measure(url, outcomes, repeats, cases, progress)
     return result
 
 
-def _measure(url: str, outcomes: int, repeats: int, progress: Progress) -> dict[str, Any]:
+def _measure(url: str, outcomes: int, repeats: int, cases: int,
+             progress: Progress) -> dict[str, Any]:
     import numpy as np
-    from sqlalchemy import func, select
+    from sqlalchemy import func, insert, select
 
     import engine
     from service.store.schema import upgrade_database
-    from service.store.tables import ModelRow, TrackRecordDayRow, VersionRow
+    from service.store.tables import ModelRow, ScoredCaseRow, TrackRecordDayRow, VersionRow
     from service.usecases.common import find_model
     from service.usecases.track_record import JoinedOutcome, record_outcomes
     from service.web.app import create_app
@@ -124,6 +126,16 @@ def _measure(url: str, outcomes: int, repeats: int, progress: Progress) -> dict[
             folding += time.perf_counter() - began
             if first and first % 50_000 == 0:
                 progress(f"  {first:,} outcomes folded in")
+        progress(f"  storing {cases:,} scored cases ...")
+        for first in range(0, cases, 10_000):
+            rows = [{"model_id": model.id, "key": f"case-{i}", "version_id": versions[-1],
+                     "features": {"bearing_temp_c": 60.0, "vibration_rms": 3.0},
+                     "output": {"label": "ok", "probabilities": {"ok": 0.9, "failed": 0.1}},
+                     "scored_at": start, "outcome": "ok" if i < outcomes else None,
+                     "outcome_at": now if i < outcomes else None}
+                    for i in range(first, min(first + 10_000, cases))]
+            with db.write() as session, session.begin():
+                session.execute(insert(ScoredCaseRow), rows)
         with db.read() as session:
             day_rows = int(session.scalar(select(func.count()).select_from(TrackRecordDayRow))
                            or 0)
@@ -164,15 +176,17 @@ def _time(call: Callable[[], Any], repeats: int) -> dict[str, float]:
 @click.option("--outcomes", type=click.IntRange(min=BATCH), default=200_000, show_default=True,
               help="Outcomes folded in before the answers are timed.")
 @click.option("--repeats", type=click.IntRange(min=5), default=50, show_default=True)
+@click.option("--cases", type=click.IntRange(min=0), default=1_000_000, show_default=True,
+              help="Scored cases stored beside them (the first --outcomes with an outcome).")
 @click.option("--postgres-url", default=None,
               help="Also measure on this PostgreSQL server (a scratch database is made) "
                    "[env KEELSON_BENCH_POSTGRES_URL].")
-def bench_track_record(as_json: bool, outcomes: int, repeats: int,
+def bench_track_record(as_json: bool, outcomes: int, repeats: int, cases: int,
                        postgres_url: str | None) -> None:
     """Track-record and /metrics answer times with a year of outcomes stored."""
     from service.tools.bench import commands
     from service.tools.report import emit
 
-    emit(run_track_record_bench(outcomes=outcomes, repeats=repeats,
+    emit(run_track_record_bench(outcomes=outcomes, repeats=repeats, cases=cases,
                                  postgres_url=postgres_url or commands._bench_postgres_url(),
                                  progress=commands._progress), as_json)

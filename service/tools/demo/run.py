@@ -20,6 +20,7 @@ from typing import Any
 import click
 
 from service.tools.demo import data as demo_data
+from service.tools.demo import second_act
 from service.tools.demo.display import CAUTIONS, render_prediction, render_versions
 
 BATCH_RECORDS = 250
@@ -64,6 +65,7 @@ def run_demo(
     config: dict[str, Any], *, records: int = 5000, seed: int = 7, serve: bool = False,
     host: str | None = None, port: int | None = None, web_workers: int | None = None,
     echo: Echo = click.echo, idle_seconds: float = 1.0, retrain: bool = True,
+    cases: int = 1000,
 ) -> None:
     """Load the scenario into ``config``'s database and show what it learned."""
     from service.store.schema import upgrade_database
@@ -91,10 +93,23 @@ def run_demo(
     echo(render_versions(api.every(f"/v1/models/{name}/versions", "versions")))
     echo("")
     _show_predictions(api, echo)
+    if cases:
+        second_act.play(api, lambda: _flush_drift(app), echo, training_records=records,
+                        cases=cases, seed=seed)
+        echo("")
     echo(CAUTIONS)
 
     if serve:
         _serve(config, host, port, web_workers, echo)
+
+
+def _flush_drift(app: Any) -> None:
+    """Write the drift counts now (the server's thread would within its interval)."""
+    from service.web.extensions import get_drift_tally
+
+    tally = get_drift_tally(app)
+    if tally is not None:
+        tally.flush()
 
 
 def create_demo_model(api: InProcessApi, echo: Echo) -> None:
