@@ -136,18 +136,9 @@ def import_csv(config: dict[str, Any], model: str, path: Path, *, batch_size: in
         rules = rules_for(spec)
         writes = make_sessionmaker(engine, write=True)
 
-        def send(header: list[str], rows: list[list[str]], lines: list[int]) -> None:
-            summary.batches += 1
-            summary.rows += len(rows)
-            try:
-                records = parse_csv_records(as_csv(header, rows), spec, rules=rules)
-                result = ingest_records(writes, model, CheckedRecords(model_id, spec, records))
-            except KeelsonError as error:
-                summary.rejected.append(RejectedBatch(lines[0], lines[-1], len(rows),
-                                                      error.detail, by_line(error.errors, lines)))
-                return
-            summary.accepted += result.accepted
-            summary.duplicates += result.duplicates
+        send = batch_sender(summary, lambda text: ingest_records(
+            writes, model, CheckedRecords(model_id, spec,
+                                          parse_csv_records(text, spec, rules=rules))))
 
         stream_csv_batches(path, batch_size=batch_size, show_progress=show_progress,
                            summary=summary, what="records",
@@ -159,6 +150,27 @@ def import_csv(config: dict[str, Any], model: str, path: Path, *, batch_size: in
     finally:
         engine.dispose()
     return summary
+
+
+def batch_sender(summary: ImportSummary, store: Callable[[str], Any]
+                 ) -> Callable[[list[str], list[list[str]], list[int]], None]:
+    """What each batch of rows goes through: ``store`` (its CSV text to an
+    ingest result), counted in ``summary``; a refused batch is kept there, by
+    file line, and the import goes on."""
+
+    def send(header: list[str], rows: list[list[str]], lines: list[int]) -> None:
+        summary.batches += 1
+        summary.rows += len(rows)
+        try:
+            result = store(as_csv(header, rows))
+        except KeelsonError as error:
+            summary.rejected.append(RejectedBatch(lines[0], lines[-1], len(rows),
+                                                  error.detail, by_line(error.errors, lines)))
+            return
+        summary.accepted += result.accepted
+        summary.duplicates += result.duplicates
+
+    return send
 
 
 def stream_csv_batches(path: Path, *, batch_size: int, show_progress: bool,

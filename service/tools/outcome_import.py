@@ -15,13 +15,10 @@ from typing import Any
 
 import click
 
-from service.errors import KeelsonError
 from service.tools.importing import (
     BULK_RECORDS,
     ImportSummary,
-    RejectedBatch,
-    as_csv,
-    by_line,
+    batch_sender,
     refuse_bad_header,
     stream_csv_batches,
 )
@@ -49,19 +46,8 @@ def import_outcomes_csv(config: dict[str, Any], model: str, path: Path, *,
         def parse(text: str, _spec: Any = None) -> list[dict[str, Any]]:
             return parse_csv_outcomes(text, rules, max_outcomes=batch_size)
 
-        def send(header: list[str], rows: list[list[str]], lines: list[int]) -> None:
-            summary.batches += 1
-            summary.rows += len(rows)
-            try:
-                outcomes = parse(as_csv(header, rows))
-                result = ingest_outcomes(writes, model,
-                                         CheckedOutcomes(model_id, spec, outcomes))
-            except KeelsonError as error:
-                summary.rejected.append(RejectedBatch(lines[0], lines[-1], len(rows),
-                                                      error.detail, by_line(error.errors, lines)))
-                return
-            summary.accepted += result.accepted
-            summary.duplicates += result.duplicates
+        send = batch_sender(summary, lambda text: ingest_outcomes(
+            writes, model, CheckedOutcomes(model_id, spec, parse(text))))
 
         stream_csv_batches(path, batch_size=batch_size, show_progress=show_progress,
                            summary=summary, what="outcomes",
