@@ -207,6 +207,10 @@ class TokenRow(Base):
     name: Mapped[str] = mapped_column(String(100))
     token_hash: Mapped[str] = mapped_column(String(64), unique=True)
     scopes: Mapped[list[Any]]
+    # The model names this token may reach, sorted; None reaches every model.
+    # Names, not ids: the name is what the API addresses, and a limit must never
+    # widen to "every model" because a model row went away.
+    models: Mapped[list[Any] | None] = mapped_column(JSON, nullable=True)
     created_at: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True), default=utcnow)
     revoked_at: Mapped[dt.datetime | None] = mapped_column(DateTime(timezone=True))
 

@@ -198,14 +198,22 @@ def _database() -> Any:
 @click.option("--name", required=True, help="Who or what will use the token.")
 @click.option("--scope", "scopes", multiple=True, required=True,
               type=click.Choice(SCOPES), help="A scope to grant; repeat for several.")
-def token_create(name: str, scopes: tuple[str, ...]) -> None:
+@click.option("--model", "models", multiple=True, metavar="NAME",
+              help="Limit the token to this model (repeat for several); without it "
+                   "the token reaches every model.")
+def token_create(name: str, scopes: tuple[str, ...], models: tuple[str, ...]) -> None:
     """Create a token and print it once (only its hash is stored)."""
     from service.usecases.tokens import create_token
 
-    row, plaintext = create_token(_database(), name, scopes)
+    row, plaintext = create_token(_database(), name, scopes, models or None)
     click.echo(plaintext)
-    click.echo(f"token {row.id} ({name}; scopes: {', '.join(row.scopes)}): store it now, "
+    click.echo(f"token {row.id} ({name}; scopes: {', '.join(row.scopes)}; "
+               f"models: {_models_text(row.models)}): store it now, "
                "it cannot be shown again", err=True)
+
+
+def _models_text(models: list[str] | None) -> str:
+    return "all" if models is None else ",".join(models)
 
 
 @token.command("list")
@@ -217,6 +225,7 @@ def token_list(as_json: bool) -> None:
     rows = list_tokens(_database())
     items: list[dict[str, Any]] = [
         {"id": r.id, "name": r.name, "scopes": list(r.scopes),
+         "models": None if r.models is None else list(r.models),
          "created_at": r.created_at.isoformat() if r.created_at else None,
          "revoked_at": r.revoked_at.isoformat() if r.revoked_at else None}
         for r in rows
@@ -228,7 +237,8 @@ def token_list(as_json: bool) -> None:
         click.echo("no tokens")
     for item in items:
         state = f"revoked {item['revoked_at']}" if item["revoked_at"] else "active"
-        click.echo(f"{item['id']:>4}  {item['name']:<24} {','.join(item['scopes']):<22} {state}")
+        click.echo(f"{item['id']:>4}  {item['name']:<24} {','.join(item['scopes']):<22} "
+                   f"{state:<12} models: {_models_text(item['models'])}")
 
 
 @token.command("revoke")

@@ -22,6 +22,12 @@ def is_model_name(name: str) -> bool:
     return _MODEL_NAME.fullmatch(name) is not None
 
 
+def no_such_model(name: str) -> NotFoundError:
+    """The one answer for a model that is not there, or not there for this
+    token (a token limited to other models gets it too, word for word)."""
+    return NotFoundError(f"There is no model named {name!r}.")
+
+
 def find_model(session: Session, name: str, *, lock: bool = False) -> ModelRow:
     """The model called ``name``; NotFoundError when there is none.
 
@@ -32,14 +38,14 @@ def find_model(session: Session, name: str, *, lock: bool = False) -> ModelRow:
     lock).
     """
     if not is_model_name(name):
-        raise NotFoundError(f"There is no model named {name!r}.")
+        raise no_such_model(name)
     query = select(ModelRow).where(ModelRow.name == name)
     if lock:  # and refresh a row this session may hold from an earlier transaction
         query = query.with_for_update(key_share=True).execution_options(
             populate_existing=True)
     row = session.scalars(query).first()
     if row is None:
-        raise NotFoundError(f"There is no model named {name!r}.")
+        raise no_such_model(name)
     return row
 
 

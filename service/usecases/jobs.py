@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from collections.abc import Collection
 from typing import Any
 
 from sqlalchemy import select
@@ -40,7 +41,10 @@ def request_retrain(db: Database, name: str, *, warm_start: bool) -> dict[str, A
     return job_view(job, model.name, None)
 
 
-def get_job(db: Database, job_id: int) -> dict[str, Any]:
+def get_job(db: Database, job_id: int, *, only: Collection[str] | None = None
+            ) -> dict[str, Any]:
+    """One job; a job of a model outside ``only`` (a token limited to models)
+    is not there, word for word as a job that does not exist."""
     with db.read() as session:
         row = session.execute(
             select(JobRow, ModelRow.name, VersionRow.number)
@@ -48,7 +52,7 @@ def get_job(db: Database, job_id: int) -> dict[str, Any]:
             .outerjoin(VersionRow, VersionRow.id == JobRow.version_id)
             .where(JobRow.id == job_id)
         ).first()
-        if row is None:
+        if row is None or (only is not None and row[1] not in only):
             raise NotFoundError(f"There is no job {job_id}.")
         job, model_name, number = row
         return job_view(job, model_name, number)

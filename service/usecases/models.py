@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from collections.abc import Mapping
+from collections.abc import Collection, Mapping
 from typing import Any
 
 from sqlalchemy import func, select
@@ -53,11 +53,15 @@ def get_model(db: Database, name: str) -> dict[str, Any]:
         return _views(session, [row])[0]
 
 
-def list_models(db: Database, *, limit: int, after: str | None = None
+def list_models(db: Database, *, limit: int, after: str | None = None,
+                only: Collection[str] | None = None,
                 ) -> tuple[list[dict[str, Any]], str | None]:
     """Up to ``limit`` models named after ``after``, by name, and the name to
-    ask after for the next page (None when there is none)."""
+    ask after for the next page (None when there is none); only those named in
+    ``only`` when given (a token limited to models)."""
     query = select(ModelRow).order_by(ModelRow.name).limit(limit + 1)
+    if only is not None:
+        query = query.where(ModelRow.name.in_(sorted(only)))
     if after is not None:
         query = query.where(ModelRow.name > after)
     with db.read() as session:

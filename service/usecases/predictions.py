@@ -17,7 +17,7 @@ import orjson
 
 import engine
 from service.errors import ConflictError, KeelsonError, NotFoundError
-from service.usecases.common import is_model_name
+from service.usecases.common import is_model_name, no_such_model
 from service.usecases.drift_tally import DriftTally
 from service.usecases.prediction_limits import PredictionLimits
 from service.versions.cache import (
@@ -84,11 +84,11 @@ class NonFiniteOutputError(KeelsonError):
 def find_model(cache: VersionCache, name: str) -> ModelEntry:
     """The cached model called ``name`` (its active pointer at most the bound old)."""
     if not is_model_name(name):
-        raise NotFoundError(f"There is no model named {name!r}.")
+        raise no_such_model(name)
     try:
         return cache.model(name)
     except ModelNotFound:
-        raise NotFoundError(f"There is no model named {name!r}.") from None
+        raise no_such_model(name) from None
 
 
 def predict(

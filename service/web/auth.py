@@ -5,6 +5,14 @@ Each view declares its scope with ``@requires("predict")`` or ``@public``; one
 declares nothing is refused (fail closed), so a forgotten declaration cannot
 open a route. Tokens are stored only as SHA-256 hashes; the environment's
 admin token is compared in constant time. ``admin`` implies every scope.
+
+A token limited to models reaches a route about a model (a ``name`` in its
+path) only for one of its models, and gets the very 404 a model that does not
+exist gets for every other, so it learns nothing of them. A route without a
+model in its path is refused to such a token (403, fail closed) unless its
+view declares ``@filters_by_model`` and applies ``token_models()`` itself
+(the model list, a job). The check is a set lookup on what the token cache
+already holds: no query of its own.
 """
 
 from __future__ import annotations
@@ -12,7 +20,7 @@ from __future__ import annotations
 import hmac
 import time
 from collections.abc import Callable
-from typing import Any, TypeVar
+from typing import Any, NamedTuple, TypeVar
 
 from flask import Flask, current_app, g, request
 from sqlalchemy import select
@@ -20,12 +28,13 @@ from werkzeug.exceptions import InternalServerError
 
 from service.errors import ForbiddenError, UnauthorizedError
 from service.store.tables import TokenRow
+from service.usecases.common import no_such_model
 from service.usecases.tokens import SCOPES, hash_token
 from service.web.extensions import get_database
 
-_ALL_SCOPES = frozenset(SCOPES)
 PUBLIC = "public"
 SCOPE_ATTRIBUTE = "keelson_scope"
+FILTERS_ATTRIBUTE = "keelson_filters_by_model"
 CACHE_KEY = "keelson.tokens"
 ADMIN_DIGEST_KEY = "keelson.admin_token_digest"
 CACHE_LIMIT = 1024
@@ -51,6 +60,29 @@ def public(view: F) -> F:
     return view
 
 
+def filters_by_model(view: F) -> F:
+    """Declare that a view without a model in its path applies the token's
+    model limits itself (through ``token_models()``)."""
+    setattr(view, FILTERS_ATTRIBUTE, True)
+    return view
+
+
+def token_models() -> frozenset[str] | None:
+    """The models the request's token is limited to; None when it is not."""
+    models: frozenset[str] | None = g.get("token_models")
+    return models
+
+
+class Grant(NamedTuple):
+    """What a token may do: its scopes, and its models (None: every model)."""
+
+    scopes: frozenset[str]
+    models: frozenset[str] | None
+
+
+_EVERYTHING = Grant(frozenset(SCOPES), None)
+
+
 def declared_scope(view: Callable[..., Any] | None) -> str | None:
     """What a view declared: a scope, ``PUBLIC``, or None when it declared nothing."""
     return getattr(view, SCOPE_ATTRIBUTE, None)
@@ -61,24 +93,24 @@ def allows(granted: frozenset[str], needed: str) -> bool:
 
 
 class _TokenCache:
-    """Token hash -> scopes, each entry trusted for ``ttl`` seconds, so a busy
+    """Token hash -> grant, each entry trusted for ``ttl`` seconds, so a busy
     client costs one token query per second instead of one per request. A
     revocation is therefore seen within ``ttl``; unknown tokens are not cached."""
 
     def __init__(self, ttl: float) -> None:
         self.ttl = ttl
-        self.entries: dict[str, tuple[frozenset[str], float]] = {}
+        self.entries: dict[str, tuple[Grant, float]] = {}
 
-    def get(self, digest: str) -> frozenset[str] | None:
+    def get(self, digest: str) -> Grant | None:
         entry = self.entries.get(digest)
         if entry is None or entry[1] < time.monotonic():
             return None
         return entry[0]
 
-    def put(self, digest: str, scopes: frozenset[str]) -> None:
+    def put(self, digest: str, grant: Grant) -> None:
         if len(self.entries) >= CACHE_LIMIT:
             self.entries.clear()
-        self.entries[digest] = (scopes, time.monotonic() + self.ttl)
+        self.entries[digest] = (grant, time.monotonic() + self.ttl)
 
 
 def _bearer_token() -> str | None:
@@ -91,20 +123,20 @@ def _bearer_token() -> str | None:
     return token.strip()
 
 
-def scopes_for_token(token: str) -> frozenset[str] | None:
-    """The scopes of a presented token, or None when it is unknown or revoked."""
+def grant_for_token(token: str) -> Grant | None:
+    """What a presented token may do, or None when it is unknown or revoked."""
     digest = hash_token(token)
     extensions = current_app.extensions
     admin_digest = extensions[ADMIN_DIGEST_KEY]  # hashed once, at init_app
     if admin_digest and hmac.compare_digest(digest, admin_digest):
-        return _ALL_SCOPES
+        return _EVERYTHING
     cache: _TokenCache = extensions[CACHE_KEY]
     cached = cache.get(digest)
     if cached is not None:
         return cached
     with get_database().read() as session:
         row = session.execute(
-            select(TokenRow.token_hash, TokenRow.scopes).where(
+            select(TokenRow.token_hash, TokenRow.scopes, TokenRow.models).where(
                 TokenRow.token_hash == digest, TokenRow.revoked_at.is_(None)
             )
         ).first()
@@ -112,9 +144,10 @@ def scopes_for_token(token: str) -> frozenset[str] | None:
     # keeps the check honest should the lookup ever become a prefix match.
     if row is None or not hmac.compare_digest(row.token_hash, digest):
         return None
-    scopes = frozenset(row.scopes)
-    cache.put(digest, scopes)
-    return scopes
+    grant = Grant(frozenset(row.scopes),
+                  None if row.models is None else frozenset(row.models))
+    cache.put(digest, grant)
+    return grant
 
 
 def _challenge(error: str | None = None, scope: str | None = None) -> dict[str, str]:
@@ -139,7 +172,7 @@ def authenticate() -> None:
     if needed == PUBLIC:
         return
     token = _bearer_token()
-    granted = scopes_for_token(token) if token else None
+    granted = grant_for_token(token) if token else None
     if granted is None:
         detail = (
             "A valid bearer token is required." if token is None
@@ -148,12 +181,26 @@ def authenticate() -> None:
         raise UnauthorizedError(
             detail, headers=_challenge("invalid_token" if token else None)
         )
-    if not allows(granted, needed):
+    if granted.models is not None:
+        _check_model_limits(granted.models, view)
+    if not allows(granted.scopes, needed):
         raise ForbiddenError(
             f"This token lacks the {needed!r} scope.",
             headers=_challenge("insufficient_scope", needed),
         )
-    g.token_scopes = granted
+    g.token_models = granted.models
+
+
+def _check_model_limits(models: frozenset[str], view: Callable[..., Any] | None) -> None:
+    # Before the scope: another model is 404 whatever the token's scopes, the
+    # answer a model that does not exist gets (docs/http-api.md, "Auth and scopes").
+    name = (request.view_args or {}).get("name")
+    if name is not None:
+        if name not in models:
+            raise no_such_model(name)
+    elif not getattr(view, FILTERS_ATTRIBUTE, False):
+        raise ForbiddenError("This token is limited to models; this route needs a token "
+                             "that is not.")
 
 
 def init_app(app: Flask) -> None:

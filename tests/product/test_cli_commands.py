@@ -124,3 +124,39 @@ def test_upgrades_started_together_on_postgresql_take_turns(postgres_url: str) -
         with admin.connect() as connection:
             connection.execute(text(f'DROP DATABASE IF EXISTS "{name}" WITH (FORCE)'))
         admin.dispose()
+
+
+def test_a_token_limited_to_a_model_reaches_it_alone_and_is_listed_so(
+        database_url: str) -> None:
+    app = create_app({"KEELSON_DATABASE_URL": database_url, "KEELSON_ADMIN_TOKEN": "admin"})
+    client = app.test_client()
+    admin = {"Authorization": "Bearer admin"}
+    for name in ("pump-risk", "booster-risk"):
+        spec = {"name": name, "task": "regression", "target": "litres",
+                "features": [{"name": "head_m", "type": "numeric"}]}
+        assert client.post("/v1/models", json=spec, headers=admin).status_code == 201
+    status, out, err = _run(database_url, "token", "create", "--name", "scada-bridge",
+                            "--scope", "ingest", "--scope", "predict",
+                            "--model", "pump-risk")
+    assert status == 0, err
+    assert "models: pump-risk" in err
+    headers = {"Authorization": f"Bearer {out.strip()}"}
+    assert client.get("/v1/models/pump-risk", headers=headers).status_code == 200
+    assert client.get("/v1/models/booster-risk", headers=headers).status_code == 404
+    listed = client.get("/v1/models", headers=headers).get_json()["models"]
+    assert [m["name"] for m in listed] == ["pump-risk"]
+    _run(database_url, "token", "create", "--name", "reader", "--scope", "predict")
+    status, out, _ = _run(database_url, "token", "list", "--json")
+    assert [(t["name"], t["models"]) for t in json.loads(out)["tokens"]] == [
+        ("scada-bridge", ["pump-risk"]), ("reader", None)]
+    status, out, _ = _run(database_url, "token", "list")
+    lines = out.splitlines()
+    assert "scada-bridge" in lines[0] and lines[0].endswith("models: pump-risk")
+    assert "reader" in lines[1] and lines[1].endswith("models: all")
+    # A mistyped model is refused, and no token is made.
+    status, out, err = _run(database_url, "token", "create", "--name", "typo",
+                            "--scope", "ingest", "--model", "pump-riks")
+    assert status == 1 and "models: There is no model named 'pump-riks'." in err
+    assert out == ""
+    status, out, _ = _run(database_url, "token", "list", "--json")
+    assert len(json.loads(out)["tokens"]) == 2

@@ -70,8 +70,8 @@ class ApiClient:
             return None
         return json.loads(response.data)
 
-    def token(self, *scopes: str, name: str = "test") -> str:
-        _row, plaintext = create_token(get_database(self.app), name, scopes)
+    def token(self, *scopes: str, name: str = "test", models: list[str] | None = None) -> str:
+        _row, plaintext = create_token(get_database(self.app), name, scopes, models)
         return plaintext
 
 

@@ -5,7 +5,7 @@ from __future__ import annotations
 from typing import Any
 
 from service.usecases import jobs
-from service.web.auth import requires
+from service.web.auth import filters_by_model, requires, token_models
 from service.web.extensions import get_database
 from service.web.schemas.views import JobEnvelopeSchema, JobSchema, RetrainRequestSchema
 from service.web.views.base import Blueprint
@@ -25,7 +25,8 @@ def retrain(body: dict[str, Any], name: str) -> tuple[dict[str, Any], dict[str, 
 
 @blueprint.route("/jobs/<int:job_id>", methods=["GET"])
 @requires("predict")
+@filters_by_model
 @blueprint.response(200, JobSchema)
 def get_job(job_id: int) -> dict[str, Any]:
     """One job: status, progress, and the version it made."""
-    return jobs.get_job(get_database(), job_id)
+    return jobs.get_job(get_database(), job_id, only=token_models())

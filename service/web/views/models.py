@@ -13,7 +13,7 @@ from service.errors import InvalidInputError
 from service.usecases import models
 from service.usecases.model_limits import ModelLimits, spec_bytes_error
 from service.usecases.predictions import find_model
-from service.web.auth import requires
+from service.web.auth import filters_by_model, requires, token_models
 from service.web.extensions import get_database, get_version_cache
 from service.web.schemas.json_schema import limits, model_documents
 from service.web.schemas.paging import ModelPageSchema
@@ -54,11 +54,14 @@ def create_model(spec: dict[str, Any]) -> dict[str, Any]:
 
 @blueprint.route("", methods=["GET"])
 @requires("predict")
+@filters_by_model
 @blueprint.arguments(ModelPageSchema, location="query", as_kwargs=True, unknown=RAISE)
 @blueprint.response(200, ModelListSchema)
 def list_models(limit: int, after: str | None = None) -> dict[str, Any]:
-    """The models, by name, a page at a time (follow `next`)."""
-    page, following = models.list_models(get_database(), limit=limit, after=after)
+    """The models, by name, a page at a time (follow `next`); a token limited to
+    models sees only those."""
+    page, following = models.list_models(get_database(), limit=limit, after=after,
+                                         only=token_models())
     return {"models": page, "next": following}
 
 
