@@ -15,9 +15,10 @@ float64, from the learner a version's snapshot holds:
 * one output: `probabilities` [records, classes] (binary: [1 - p, p], as the
   service answers) or `value` [records, 1] in raw target units.
 
-Names: inputs are the field names (C identifiers, as ONNX names should be);
-every inner tensor is named `keelson/...`, which no field name can be. An
-output takes a trailing `_` while a field already has its name.
+Names: the IR document asks for C identifiers (from memory) and a graph in
+single assignment. Inputs are the field names (C identifiers already); an
+inner tensor is `k{n}_{what}`, and takes leading `_`s, an output a trailing
+one, while a field already has its name.
 """
 
 from __future__ import annotations
@@ -42,14 +43,18 @@ _ACTIVATION_OP = {"tanh": "Tanh", "logistic": "Sigmoid", "relu": "Relu"}
 class _Graph:
     """Nodes and initialisers being collected, with fresh inner names."""
 
-    def __init__(self) -> None:
+    def __init__(self, taken: set[str]) -> None:
         self.nodes: list[onnx.NodeProto] = []
         self.initializers: list[onnx.TensorProto] = []
+        self._taken = taken
         self._count = 0
 
     def name(self, what: str) -> str:
         self._count += 1
-        return f"keelson/{self._count}/{what}"
+        name = f"k{self._count}_{what}"
+        while name in self._taken:
+            name = "_" + name
+        return name
 
     def constant(self, what: str, value: np.ndarray[Any, Any]) -> str:
         name = self.name(what)
@@ -79,7 +84,7 @@ def output_name(learner: Any) -> str:
 def onnx_model(learner: Any, model_name: str, version: int) -> onnx.ModelProto:
     """The ONNX model of a learner (engine.learner.Learner) of version `version`."""
     encoder, network, spec = learner.encoder, learner.network, learner.spec
-    graph = _Graph()
+    graph = _Graph(set(encoder.fields))
     inputs, columns = [], []
     for feature, name, kind in zip(spec["features"], encoder.fields, encoder.kinds,
                                    strict=True):
@@ -92,27 +97,27 @@ def onnx_model(learner: Any, model_name: str, version: int) -> onnx.ModelProto:
         elif kind == "boolean":
             inputs.append(helper.make_tensor_value_info(name, TensorProto.BOOL,
                                                         [_ROWS, 1], doc))
-            columns.append(graph.node("Cast", [name], f"{name}/double", to=TensorProto.DOUBLE))
+            columns.append(graph.node("Cast", [name], f"{name}_double", to=TensorProto.DOUBLE))
         else:
             levels = [str(level) for level in encoder.levels[name]]
             inputs.append(helper.make_tensor_value_info(name, TensorProto.STRING,
                                                         [_ROWS, 1], doc))
             # OneHotEncoder answers float32 [records, 1, levels]; 0 and 1 are exact.
-            hot = graph.node("OneHotEncoder", [name], f"{name}/one_hot", domain=ML_DOMAIN,
+            hot = graph.node("OneHotEncoder", [name], f"{name}_one_hot", domain=ML_DOMAIN,
                              cats_strings=levels, zeros=0)
-            shape = graph.constant(f"{name}/shape", np.array([-1, len(levels)], np.int64))
-            flat = graph.node("Reshape", [hot, shape], f"{name}/columns")
-            columns.append(graph.node("Cast", [flat], f"{name}/double", to=TensorProto.DOUBLE))
+            shape = graph.constant(f"{name}_shape", np.array([-1, len(levels)], np.int64))
+            flat = graph.node("Reshape", [hot, shape], f"{name}_columns")
+            columns.append(graph.node("Cast", [flat], f"{name}_double", to=TensorProto.DOUBLE))
     raw = graph.node("Concat", columns, "raw", axis=1)
     centered = graph.node("Sub", [raw, graph.constant("center", encoder.center)], "centered")
     x = graph.node("Div", [centered, graph.constant("scale", encoder.scale)], "encoded")
     last = len(network.weights) - 1
     for i, (weights, biases) in enumerate(zip(network.weights, network.biases, strict=True)):
-        w = graph.constant(f"layer{i}/weights", np.array(weights))
-        b = graph.constant(f"layer{i}/biases", np.array(biases))
-        x = graph.node("Gemm", [x, w, b], f"layer{i}/logits")
+        w = graph.constant(f"layer{i}_weights", np.array(weights))
+        b = graph.constant(f"layer{i}_biases", np.array(biases))
+        x = graph.node("Gemm", [x, w, b], f"layer{i}_logits")
         if i < last:
-            x = graph.node(_ACTIVATION_OP[network.activation], [x], f"layer{i}/activations")
+            x = graph.node(_ACTIVATION_OP[network.activation], [x], f"layer{i}_activations")
     out = output_name(learner)
     if learner.task == "binary":
         p = graph.node("Sigmoid", [x], "p1")

@@ -12,15 +12,20 @@ boolean fields, and every hidden activation the spec allows.
 from __future__ import annotations
 
 from collections.abc import Iterator, Mapping
+from pathlib import Path
 from typing import Any
 
 import numpy as np
 import onnx
 import onnxruntime
 import pytest
+from click.testing import CliRunner
 from flask import Flask
 
+from engine import Learner
 from engine.spec import ACTIVATIONS
+from service.tools.cli import cli
+from service.usecases.onnx_graph import onnx_model
 from service.web.app import create_app
 from service.web.extensions import get_database
 from tests.service.helpers import ADMIN_TOKEN, ApiClient, create_model
@@ -162,10 +167,43 @@ def test_refusals(api: ApiClient) -> None:
     name = serve(api, "regression", "tanh")
     base = f"/v1/models/{name}/versions"
     api.request("GET", f"{base}/2/export?format=onnx", 404)
-    api.request("GET", f"/v1/models/no-such-model/versions/1/export?format=onnx", 404)
+    api.request("GET", "/v1/models/no-such-model/versions/1/export?format=onnx", 404)
     api.request("GET", f"{base}/1/export?format=pmml", 422)
     api.request("GET", f"{base}/1/export", 422)
     api.request("GET", f"{base}/1/export?format=onnx&extra=1", 422)
     predict = api.token("predict", "ingest", name="scada")
     api.request("GET", f"{base}/1/export?format=onnx", 403, token=predict)
     api.request("GET", f"{base}/1/export?format=onnx", 401, token=None)
+
+
+def test_the_command_writes_the_same_file(api: ApiClient, sqlite_url: str,
+                                          tmp_path: Path) -> None:
+    name = serve(api, "multiclass", "logistic")
+    target = tmp_path / "station.onnx"
+    env = {"KEELSON_DATABASE_URL": sqlite_url}
+    result = CliRunner().invoke(cli, ["export-version", name, "1", str(target)], env=env)
+    assert result.exit_code == 0, result.output
+    assert target.read_bytes() == exported(api, name)
+    missing = CliRunner().invoke(cli, ["export-version", name, "9", str(tmp_path / "x.onnx")],
+                                 env=env)
+    assert missing.exit_code == 1 and "has no version 9" in missing.output
+    assert not (tmp_path / "x.onnx").exists()
+
+
+def test_a_name_a_field_holds_is_not_reused_inside() -> None:
+    """A graph is in single assignment (the ONNX checker refuses a name defined
+    twice): the output and the inner tensors step aside from the field names
+    `value` and `k1_raw` (what the output and the first inner tensor are called)."""
+    spec = {"task": "regression", "target": "head_m",
+            "features": [{"name": "value", "type": "numeric", "min": 0, "max": 5},
+                         {"name": "k1_raw", "type": "numeric", "min": 0, "max": 9}]}
+    learner = Learner.create(spec)
+    model = onnx_model(learner, "station-head", 1)
+    onnx.checker.check_model(model, full_check=True)
+    assert [o.name for o in model.graph.output] == ["value_"]
+    assert model.graph.node[0].output == ["_k1_raw"]
+    record = {"value": 2.5, "k1_raw": 4.0}
+    (got,) = session(model.SerializeToString()).run(
+        None, {name: np.array([[v]]) for name, v in record.items()})
+    np.testing.assert_allclose(got, learner.predict(learner.encode([record])),
+                               rtol=0, atol=1e-12)
