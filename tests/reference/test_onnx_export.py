@@ -11,6 +11,7 @@ boolean fields, and every hidden activation the spec allows.
 
 from __future__ import annotations
 
+import re
 from collections.abc import Iterator, Mapping
 from pathlib import Path
 from typing import Any
@@ -21,6 +22,7 @@ import onnxruntime
 import pytest
 from click.testing import CliRunner
 from flask import Flask
+from sklearn import datasets
 
 from engine import Learner
 from engine.spec import ACTIVATIONS
@@ -207,3 +209,39 @@ def test_a_name_a_field_holds_is_not_reused_inside() -> None:
         None, {name: np.array([[v]]) for name, v in record.items()})
     np.testing.assert_allclose(got, learner.predict(learner.encode([record])),
                                rtol=0, atol=1e-12)
+
+
+@pytest.mark.parametrize("dataset", ["wine", "breast_cancer", "diabetes"])
+def test_bundled_datasets_online_and_retrain_versions(api: ApiClient, dataset: str) -> None:
+    """scikit-learn's bundled Wine (Forina et al., UCI), Breast Cancer Wisconsin
+    (Street, Wolberg & Mangasarian 1993) and Diabetes (Efron et al. 2004): a
+    version learnt online and one from a batch fit (a retrain's kind), each
+    exported and run by onnxruntime, answer what the service serves."""
+    loaded = getattr(datasets, f"load_{dataset}")()
+    names = [re.sub(r"\W", "_", str(n)) for n in loaded.feature_names]
+    task = {"wine": "multiclass", "breast_cancer": "binary", "diabetes": "regression"}[dataset]
+    classes = None if task == "regression" else [int(c) for c in np.unique(loaded.target)]
+    records = [dict(zip(names, map(float, x), strict=True)) for x in loaded.data]
+    labels = [float(t) if task == "regression" else int(t) for t in loaded.target]
+    name = f"station-{dataset.replace('_', '-')}"
+    create_model(api, name=name, task=task, target="y", classes=classes, hidden_layers=[16, 8],
+                 features=[{"name": n, "type": "numeric"} for n in names])
+    spec = stored_spec(api.app, name)
+    learner = Learner.create(spec, warmup=records[:256], warmup_labels=labels[:256])
+    X, Y = learner.encode(records), learner.encode_labels(labels)
+    learner.learn(X, Y)
+    add_version(api.app, name, learner.to_bytes())
+    learner.fit(X, Y)
+    add_version(api.app, name, learner.to_bytes())
+    feed = {n: np.array([[r[n]] for r in records]) for n in names}
+    for number in (1, 2):
+        data = exported(api, name, number)
+        onnx.checker.check_model(onnx.load_from_string(data), full_check=True)
+        (got,) = session(data).run(None, feed)
+        body = api.request("POST", f"/v1/models/{name}/predictions", 200, json_body={
+            "records": [{"features": r} for r in records], "explain": "none",
+            "version": number})
+        results = [answer["result"] for answer in body["results"]]
+        want = np.array([[r["value"]] for r in results] if task == "regression" else
+                        [[r["probabilities"][str(c)] for c in classes or ()] for r in results])
+        np.testing.assert_allclose(got, want, rtol=0, atol=1e-9)
