@@ -311,6 +311,27 @@ def import_(model: str, csv_file: Path, batch_size: int) -> None:
         sys.exit(1)
 
 
+@cli.command("export-version")
+@click.argument("model")
+@click.argument("number", metavar="N", type=click.IntRange(min=1))
+@click.argument("output", metavar="FILE.onnx", type=click.Path(dir_okay=False, path_type=Path))
+def export_version_command(model: str, number: int, output: Path) -> None:
+    """Write version N of MODEL to FILE.onnx: an ONNX model taking the raw
+    fields and answering the probabilities or the value, as the HTTP export
+    (`GET /v1/models/MODEL/versions/N/export?format=onnx`) does."""
+    from service.usecases.exports import export_version
+    from service.versions.cache import VersionCache
+
+    database = _database()
+    try:
+        exported = export_version(VersionCache(database.read, max_age=0.0), model, number,
+                                  "onnx")
+    finally:
+        database.engine.dispose()
+    output.write_bytes(exported.data)
+    click.echo(f"version {number} of {model} written to {output} ({len(exported.data):,} bytes)")
+
+
 cli.add_command(outcomes)  # keelson outcomes import (service/tools/outcome_import.py)
 
 

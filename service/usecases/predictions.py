@@ -117,7 +117,7 @@ def predict(
     ``tally``: this process's drift counts, which see every row answered
     here, against the model's active version (in memory; no database write).
     """
-    loaded = _version(cache, entry, options.version)
+    loaded = load_version(cache, entry, options.version)
     learner = loaded.learner
     if limits is not None:
         network = learner.network
@@ -215,7 +215,7 @@ def _overflow(learner: Any, row: Mapping[str, Any], encoded: Any, index: int, ba
                                 or None)
 
 
-def _version(cache: VersionCache, entry: ModelEntry, number: int | None) -> LoadedVersion:
+def load_version(cache: VersionCache, entry: ModelEntry, number: int | None) -> LoadedVersion:
     try:
         return cache.version(entry, number)
     except NoActiveVersion:

@@ -34,6 +34,7 @@ def test_the_command_table_of_the_contract_is_complete() -> None:
         ("serve",), ("worker",), ("db", "upgrade"), ("token", "create"), ("token", "list"),
         ("token", "revoke"), ("demo",), ("import",), ("bench", "engine"), ("bench", "http"),
         ("bench", "worker"), ("outcomes", "import"), ("bench", "cases"),
+        ("export-version",),
     }
     assert expected <= set(COMMANDS)
 

@@ -6,8 +6,9 @@ out (flask-smorest dumps each view's return value through its schema).
 
 from __future__ import annotations
 
-from marshmallow import RAISE, Schema, fields
+from marshmallow import RAISE, Schema, fields, validate
 
+from service.usecases.exports import EXPORT_FORMATS
 from service.web.schemas.fields import StrictBoolean
 from service.web.schemas.paging import NEXT
 from service.web.schemas.rules import RecordRules, batch_schema_class
@@ -96,6 +97,16 @@ class VersionListSchema(Schema):
 
     versions = fields.List(fields.Nested(VersionSchema), required=True)
     next = fields.Integer(required=True, allow_none=True, metadata=NEXT)
+
+
+class ExportQuerySchema(Schema):
+    """GET /v1/models/{name}/versions/{number}/export query."""
+
+    class Meta:
+        unknown = RAISE
+
+    format = fields.String(required=True, validate=validate.OneOf(EXPORT_FORMATS),
+                           metadata={"description": "The file format: `onnx`."})
 
 
 class RetrainRequestSchema(Schema):

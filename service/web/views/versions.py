@@ -1,16 +1,18 @@
-"""/v1/models/{name}/versions: list, show (predict), promote (admin)."""
+"""/v1/models/{name}/versions: list, show (predict), promote and export (admin)."""
 
 from __future__ import annotations
 
 from typing import Any
 
+from flask import Response
 from marshmallow import RAISE
 
 from service.usecases import versions
+from service.usecases.exports import ONNX_MEDIA_TYPE, export_version
 from service.web.auth import requires
-from service.web.extensions import get_database
+from service.web.extensions import get_database, get_version_cache
 from service.web.schemas.paging import VersionPageSchema
-from service.web.schemas.views import VersionListSchema, VersionSchema
+from service.web.schemas.views import ExportQuerySchema, VersionListSchema, VersionSchema
 from service.web.views.base import Blueprint
 
 blueprint = Blueprint("versions", __name__, url_prefix="/v1/models", description="Versions.")
@@ -40,3 +42,19 @@ def get_version(name: str, number: int) -> dict[str, Any]:
 def promote_version(name: str, number: int) -> dict[str, Any]:
     """Make this version the active one: also the way to roll back."""
     return versions.promote_version(get_database(), name, number)
+
+
+@blueprint.route("/<model:name>/versions/<int:number>/export", methods=["GET"])
+@requires("admin")
+@blueprint.arguments(ExportQuerySchema, location="query", as_kwargs=True, unknown=RAISE)
+@blueprint.doc(responses={"200": {
+    "description": "The version as an ONNX model (binary protobuf, docs/http-api.md).",
+    "content": {ONNX_MEDIA_TYPE: {"schema": {"type": "string", "format": "binary"}}}}})
+def export(name: str, number: int, format: str) -> Response:
+    """This version as a file for use outside Keelson: `format=onnx`, an ONNX
+    model with the encoding inside (raw fields in, probabilities or the value
+    out)."""
+    exported = export_version(get_version_cache(), name, number, format)
+    response = Response(exported.data, mimetype=exported.media_type)
+    response.headers["Content-Disposition"] = f'attachment; filename="{exported.filename}"'
+    return response
