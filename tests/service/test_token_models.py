@@ -44,6 +44,7 @@ def request_for(method: str, rule: str, model: str, job: int) -> tuple[str, Any]
         ("GET", "/v1/models/{}/versions"): None,
         ("GET", "/v1/models/{}/versions/{}"): None,
         ("POST", "/v1/models/{}/versions/{}/promote"): {},
+        ("GET", "/v1/models/{}/versions/{}/export"): None,
         ("GET", "/v1/models/{}/predictions"): None,
         ("POST", "/v1/models/{}/predictions"): {"explain": "none",
                                                 "records": [{"features": row}]},
@@ -57,6 +58,8 @@ def request_for(method: str, rule: str, model: str, job: int) -> tuple[str, Any]
     path = re.sub(r"<(?:[^:<>]+:)?([^<>]+)>", lambda m: values[m.group(1)], rule)
     if path.endswith("/predictions") and method == "GET":
         path += "?" + predict_query(row)
+    if path.endswith("/export"):
+        path += "?format=onnx"
     return path, body
 
 
