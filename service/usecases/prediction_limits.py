@@ -54,9 +54,7 @@ import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
 
-# SmoothGrad's noisy points when ``samples`` is not given; the most fields whose
-# Shapley values are exact when KEELSON_SHAPLEY_EXACT_FIELDS does not say.
-from engine.attribution import DEFAULT_SAMPLES, EXACT_FIELDS
+import engine
 from service.errors import KeelsonError
 
 log = logging.getLogger(__name__)
@@ -93,7 +91,7 @@ ANSWER_BYTE_COST = 500
 
 
 def rows_per_record(explain: str, steps: int, samples: int | None, fields: int = 0,
-                    exact_fields: int = EXACT_FIELDS) -> int:
+                    exact_fields: int = engine.SHAPLEY_EXACT_FIELDS) -> int:
     """Rows the engine evaluates per record, the passes' own cost included;
     ``fields``: the model's (Shapley values' players)."""
     if explain == "none":
@@ -101,17 +99,17 @@ def rows_per_record(explain: str, steps: int, samples: int | None, fields: int =
     if explain == "integrated_gradients":
         return steps + 3 + PASS_ROWS
     if explain == "smoothgrad":
-        return (DEFAULT_SAMPLES if samples is None else samples) + 2 + PASS_ROWS
+        return (engine.DEFAULT_SAMPLES if samples is None else samples) + 2 + PASS_ROWS
     if explain == "shapley":
         if fields <= exact_fields or samples is None:
-            return 2 ** min(fields, exact_fields) + PASS_ROWS
+            return (1 << min(fields, exact_fields)) + PASS_ROWS
         return samples * (fields + 1) + PASS_ROWS
     return 2 + PASS_ROWS  # gradient, gradient_times_input: the input and the baseline
 
 
 def request_cost(records: int, explain: str, steps: int, samples: int | None,
                  parameters: int, units: int, fields: int = 0,
-                 exact_fields: int = EXACT_FIELDS) -> int:
+                 exact_fields: int = engine.SHAPLEY_EXACT_FIELDS) -> int:
     """The budget units a prediction request costs (see the module's docstring)."""
     rows = rows_per_record(explain, steps, samples, fields, exact_fields)
     return records * rows * (parameters + UNIT_COST * units)
@@ -124,7 +122,7 @@ class PredictionLimits:
 
     budget: int
     deadline_seconds: float
-    exact_fields: int = EXACT_FIELDS
+    exact_fields: int = engine.SHAPLEY_EXACT_FIELDS
     started: float = field(default_factory=time.monotonic)
     client_gone: Callable[[], bool] | None = None
     _next_peek: float = 0.0

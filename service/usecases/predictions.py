@@ -19,7 +19,7 @@ import engine
 from service.errors import ConflictError, InvalidInputError, KeelsonError, NotFoundError
 from service.usecases.common import is_model_name
 from service.usecases.drift_tally import DriftTally
-from service.usecases.prediction_limits import EXACT_FIELDS, PredictionLimits
+from service.usecases.prediction_limits import PredictionLimits
 from service.versions.cache import (
     LoadedVersion,
     ModelEntry,
@@ -119,7 +119,7 @@ def predict(
     """
     loaded = _version(cache, entry, options.version)
     learner = loaded.learner
-    exact_fields = EXACT_FIELDS if limits is None else limits.exact_fields
+    exact_fields = engine.SHAPLEY_EXACT_FIELDS if limits is None else limits.exact_fields
     if options.explain == "shapley":
         _check_shapley(len(learner.encoder.fields), options.samples, exact_fields)
     if limits is not None:

@@ -22,7 +22,6 @@ from engine.encoding import Encoder
 from engine.errors import InvalidInputError
 from engine.network import Network
 from engine.spec import apply_defaults
-
 from tests.engine.test_attribution import setup
 
 

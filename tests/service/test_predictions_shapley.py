@@ -12,6 +12,11 @@ from __future__ import annotations
 
 from typing import Any
 
+import pytest
+
+import engine
+from engine.shapley import MAX_EXACT_FIELDS
+from service.config import setting
 from service.usecases.prediction_limits import rows_per_record
 from service.web.schemas.predictions import PredictionBatchSchema, PredictionSchema
 from tests.service.helpers import ApiClient, create_model
@@ -83,3 +88,12 @@ def test_the_budget_counts_every_coalition_or_every_sampled_row(api: ApiClient) 
     api.app.config["KEELSON_SHAPLEY_EXACT_FIELDS"] = 2
     refused = api.request("GET", f"{PATH}?{PUMP_QUERY}&explain=shapley&samples=1000", 422)
     assert refused["type"] == "urn:keelson:problem:over-budget"
+
+
+def test_the_setting_defaults_to_the_engines_limit_and_stops_at_its_largest() -> None:
+    exact = setting("KEELSON_SHAPLEY_EXACT_FIELDS")
+    assert exact.default == engine.SHAPLEY_EXACT_FIELDS
+    assert exact.parse(str(MAX_EXACT_FIELDS)) == MAX_EXACT_FIELDS
+    for bad in ("0", str(MAX_EXACT_FIELDS + 1), "12.0"):
+        with pytest.raises(ValueError):
+            exact.parse(bad)

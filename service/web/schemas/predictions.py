@@ -17,8 +17,8 @@ from typing import Any
 from marshmallow import RAISE, Schema, ValidationError, fields, validate
 from werkzeug.datastructures import MultiDict
 
+import engine
 from service.errors import InvalidInputError, TooLargeError
-from service.usecases.prediction_limits import DEFAULT_SAMPLES
 from service.usecases.predictions import (
     CASE_KEY,
     DEFAULT_EXPLAIN,
@@ -69,8 +69,8 @@ def options_fields(text: bool) -> dict[str, fields.Field[Any]]:
         "steps": integer(minimum=MIN_STEPS, maximum=MAX_STEPS, metadata={
             "description": f"Integrated gradients: trapezoid intervals; default {DEFAULT_STEPS}."}),
         "samples": integer(minimum=1, maximum=MAX_SAMPLES, metadata={
-            "description": f"SmoothGrad: noisy samples; default {DEFAULT_SAMPLES}. Shapley: "
-            "random orders of the fields for an estimate with standard errors (at least "
+            "description": f"SmoothGrad: noisy samples; default {engine.DEFAULT_SAMPLES}. "
+            "Shapley: random orders of the fields for an estimate with standard errors (at least "
             "2), required above the exact limit (KEELSON_SHAPLEY_EXACT_FIELDS fields, 422 "
             "without); below it the values are exact and samples is not used."}),
         "noise": number(minimum=0, maximum=MAX_NOISE, as_float=True, metadata={
