@@ -10,8 +10,8 @@ so the values add up to v(all) - v(none) = f(x) - f(baseline) (efficiency).
 
 - Exact (`exact`): every one of the 2^d coalitions goes forward, in batches of
   at most BATCH_ROWS examples through engine.kernel's one forward pass, and
-  phi = C v with C the fixed (d, 2^d) matrix of the weights above (+ where i is
-  in S, - where it is not), cached per d.
+  each field's value is the weighted sum above over its 2^(d-1) pairs (S, S + i),
+  whose indices and weights are cached per d.
 - Sampled (`sampled`): permutation sampling (Strumbelj & Kononenko 2014). Each
   of `samples` random orders of the fields adds them one by one from the
   baseline to x; a field's estimate is the mean of its marginal contributions,
@@ -41,7 +41,7 @@ from .network import Network
 
 # At most this many examples go forward at once (2^12 coalitions: one pass).
 BATCH_ROWS = 4096
-# The largest exact game: 2^16 coalitions, a (16, 65536) weight matrix of 8 MB.
+# The largest exact game: 2^16 coalitions (pair indices and weights of some 12 MB).
 MAX_EXACT_FIELDS = 16
 
 Array = NDArray[np.float64]
@@ -50,18 +50,21 @@ Shapley = tuple[int, float, float, Array, Array | None]
 
 
 @functools.lru_cache(maxsize=MAX_EXACT_FIELDS + 1)
-def _coalitions(d: int) -> tuple[NDArray[np.bool_], Array]:
+def _coalitions(d: int) -> tuple[NDArray[np.bool_], NDArray[np.intp], NDArray[np.intp], Array]:
     """Membership (2^d, d) of every coalition (coalition k holds field i when bit i
-    of k is set: 0 is the baseline, 2^d - 1 is x), and the weights C (d, 2^d) with
-    phi = C v (read-only, cached)."""
-    members = ((np.arange(1 << d)[:, None] >> np.arange(d)) & 1).astype(bool)
-    size = members.sum(axis=1)
-    # weight[s] = s! (d - s - 1)! / d!, for a coalition of s fields without i.
+    of k is set: 0 is the baseline, 2^d - 1 is x); for each field i, the coalitions
+    S without it and S + i (d, 2^(d-1)), and the weights |S|! (d - |S| - 1)! / d!
+    of the pairs (d, 2^(d-1)). Read-only, cached."""
+    everyone = np.arange(1 << d)
+    members = ((everyone[:, None] >> np.arange(d)) & 1).astype(bool)
+    without = np.array([everyone[~members[:, i]] for i in range(d)]).reshape(d, -1)
+    with_i = without | (1 << np.arange(d))[:, None]
     weight = np.array([math.factorial(s) * math.factorial(d - s - 1) / math.factorial(d)
-                       for s in range(d)] + [0.0])
-    coefficients = np.where(members.T, weight[np.maximum(size - 1, 0)], -weight[size])
-    members.flags.writeable = coefficients.flags.writeable = False
-    return members, coefficients
+                       for s in range(d)])
+    pair_weights = weight[members.sum(axis=1)[without]]
+    for array in (members, without, with_i, pair_weights):
+        array.flags.writeable = False
+    return members, without, with_i, pair_weights
 
 
 def _values(network: Network, encoder: Encoder, x: Array, baseline: Array,
@@ -90,21 +93,20 @@ def exact(network: Network, encoder: Encoder, x: Array, baseline: Array,
     if d > MAX_EXACT_FIELDS:
         raise InvalidInputError(f"exact Shapley values take at most {MAX_EXACT_FIELDS} "
                                 f"fields, not {d}", field="explain")
-    members, coefficients = _coalitions(d)
+    members, without, with_i, pair_weights = _coalitions(d)
     total = members.shape[0]
-    phi = np.zeros(d)
-    baseline_value = value = 0.0
+    v = np.empty(total)
     # Last batch first: it ends with x, where an unnamed unit is chosen.
     for stop in range(total, 0, -BATCH_ROWS):
         start = max(0, stop - BATCH_ROWS)
-        unit, v = _values(network, encoder, x, baseline, members[start:stop], unit)
-        phi += coefficients[:, start:stop] @ v
-        if stop == total:
-            value = float(v[-1])
-        if start == 0:
-            baseline_value = float(v[0])
+        unit, v[start:stop] = _values(network, encoder, x, baseline, members[start:stop], unit)
     assert unit is not None
-    return unit, value, baseline_value, phi, None
+    # Pairwise differences, not one weighted sum of v: a field that changes no
+    # output (every v(S + i) = v(S)) then gets exactly 0, not rounding noise.
+    differences = v[with_i]
+    differences -= v[without]
+    differences *= pair_weights
+    return unit, float(v[-1]), float(v[0]), differences.sum(axis=1), None
 
 
 def sampled(network: Network, encoder: Encoder, x: Array, baseline: Array,

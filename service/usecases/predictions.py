@@ -126,7 +126,8 @@ def predict(
         network = learner.network
         limits.check_cost(len(rows), options.explain, options.steps, options.samples,
                           network.params.size, sum(network.sizes[1:]),
-                          answer_bytes(learner, len(rows), options.explain != "none"),
+                          answer_bytes(learner, len(rows), options.explain != "none",
+                                       options.explain == "shapley"),
                           len(learner.encoder.fields))
     encoded = learner.encode(rows)
     scores = learner.predict(encoded)
@@ -190,11 +191,14 @@ NUMBER_BYTES = 25
 RECORD_BYTES = 160
 
 
-def answer_bytes(learner: Any, records: int, explained: bool) -> int:
+def answer_bytes(learner: Any, records: int, explained: bool,
+                 standard_errors: bool = False) -> int:
     """At most how many bytes the answer of ``records`` rows takes: per record
     a probability per class (each named) or a value, and when ``explained``
-    an attribution per field; once, the baseline. Priced into the request's
-    budget (prediction_limits.py); it costs less than one record's answer."""
+    an attribution per field (and with ``standard_errors``, Shapley values',
+    a standard error per field too); once, the baseline. Priced into the
+    request's budget (prediction_limits.py); it costs less than one record's
+    answer."""
     per_record = RECORD_BYTES + NUMBER_BYTES
     if learner.task != "regression":
         keys = [class_key(c) for c in learner.classes]
@@ -207,6 +211,8 @@ def answer_bytes(learner: Any, records: int, explained: bool) -> int:
         encoder = learner.encoder
         fields = orjson.dumps(encoder.fields)
         per_record += len(fields) + NUMBER_BYTES * (len(encoder.fields) + 3)
+        if standard_errors:  # the member's name, then the fields again
+            per_record += RECORD_BYTES + len(fields) + NUMBER_BYTES * len(encoder.fields)
         levels = [str(level) for name in encoder.fields for level in encoder.levels.get(name, ())]
         once += len(fields) + len(orjson.dumps(levels)) + NUMBER_BYTES * (
             len(encoder.fields) + len(levels))

@@ -18,6 +18,7 @@ import engine
 from engine.shapley import MAX_EXACT_FIELDS
 from service.config import setting
 from service.usecases.prediction_limits import rows_per_record
+from service.usecases.predictions import answer_bytes
 from service.web.schemas.predictions import PredictionBatchSchema, PredictionSchema
 from tests.service.helpers import ApiClient, create_model
 from tests.service.predictions_factory import pump_rows
@@ -74,6 +75,8 @@ def test_more_fields_than_the_exact_limit_answer_422_unless_samples_are_given(
     posted = any_api.request("POST", PATH, 200, json_body={
         "records": [{"features": PUMP}], "explain": "shapley", "samples": 64, "seed": 9})
     assert posted["results"][0]["explanation"] == explanation
+    # The budget's estimate of the answer's size holds the standard errors too.
+    assert len(any_api.last.data) <= answer_bytes(learner, 1, True, True)
 
 
 def test_the_budget_counts_every_coalition_or_every_sampled_row(api: ApiClient) -> None:
