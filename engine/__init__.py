@@ -13,8 +13,9 @@ the kernel writes. `learner` ties them to `encoding`, `metrics` and `snapshot`.
 `track_record` keeps live metrics of served scores and the Page-Hinkley alarm.
 """
 
+from engine.attribution import DEFAULT_SAMPLES, Explanation, explain
+from engine.attribution import EXACT_FIELDS as SHAPLEY_EXACT_FIELDS
 from engine.attribution import METHODS as EXPLANATION_METHODS
-from engine.attribution import Explanation, explain
 from engine.batch import FitReport
 from engine.encoding import Encoder
 from engine.errors import (
@@ -45,7 +46,9 @@ from engine.spec import (
 
 __all__ = [
     "ACTIVATIONS",
+    "DEFAULT_SAMPLES",
     "EXPLANATION_METHODS",
+    "SHAPLEY_EXACT_FIELDS",
     "FEATURE_TYPES",
     "LEGACY_LR_SCHEDULES",
     "LEGACY_TRAINING_KEYS",

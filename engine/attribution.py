@@ -22,6 +22,9 @@ are summed.
 - `smoothgrad`: the mean gradient at `samples` points x + N(0, noise^2) (noise in
   encoded units, i.e. standard deviations of a numeric field), reported like
   `gradient` (Smilkov et al. 2017).
+- `shapley`: each field's Shapley value for v(S) = f(x on S, the baseline
+  elsewhere), exact for up to `exact_fields` fields, above that estimated from
+  `samples` random orders with standard errors (engine.shapley).
 """
 
 from __future__ import annotations
@@ -40,8 +43,12 @@ from .errors import InvalidInputError
 from .input_gradients import explained_pass, gradient_at
 from .kernel import Workspace, hidden_preactivations
 from .network import Network
+from .shapley import exact, sampled
 
-METHODS = ("integrated_gradients", "gradient", "gradient_times_input", "smoothgrad")
+METHODS = ("integrated_gradients", "gradient", "gradient_times_input", "smoothgrad",
+           "shapley")
+DEFAULT_SAMPLES = 32  # smoothgrad's noisy points when `samples` is not given
+EXACT_FIELDS = 12  # shapley: exact up to this many fields
 MAX_STEPS = 4096
 MAX_SAMPLES = 4096
 
@@ -115,13 +122,18 @@ class Explanation:
     value: float
     baseline_value: float
     completeness_gap: float | None
+    # Sampled Shapley values only: each field's standard error (else None).
+    standard_errors: dict[str, float] | None = None
 
     def as_dict(self) -> dict[str, Any]:
         """The JSON-able form the API answers with."""
-        return {"method": self.method, "output": self.output,
+        body = {"method": self.method, "output": self.output,
                 "attributions": self.attributions, "baseline": self.baseline,
                 "value": self.value, "baseline_value": self.baseline_value,
                 "completeness_gap": self.completeness_gap}
+        if self.method == "shapley":
+            body["standard_errors"] = self.standard_errors
+        return body
 
 
 _FLOAT64 = np.dtype(np.float64)
@@ -161,10 +173,11 @@ def explain(
     output_index: int | None,
     baseline: NDArray[np.float64],
     steps: int = 64,
-    samples: int = 32,
+    samples: int | None = None,
     noise: float = 0.15,
     seed: int = 0,
     raw_baseline: Mapping[str, Any] | None = None,
+    exact_fields: int = EXACT_FIELDS,
 ) -> Explanation:
     """Explain the network's output at one encoded row x (n_inputs,) relative to
     an encoded baseline row (n_inputs,). `output_index` is a class index, or None
@@ -195,7 +208,20 @@ def explain(
     # A binary head has one unit, p(class 1); class 0 is 1 - p.
     unit = output_index if task == "multiclass" else 0
 
-    if method == "integrated_gradients":
+    errors = None
+    if method == "shapley":
+        if len(encoder.fields) <= exact_fields:
+            unit, value, baseline_value, columns, errors = exact(
+                network, encoder, x, baseline, unit)
+        elif samples is None:
+            raise InvalidInputError(
+                f"exact Shapley values take at most {exact_fields} fields and this model "
+                f"has {len(encoder.fields)}: give samples to estimate them", field="samples")
+        else:
+            _check_count("samples", samples, MAX_SAMPLES)
+            unit, value, baseline_value, columns, errors = sampled(
+                network, encoder, x, baseline, unit, samples, seed)
+    elif method == "integrated_gradients":
         _check_count("steps", steps, MAX_STEPS)
         delta = x - baseline
         alphas, rule = path_rule(network, baseline, delta, steps)
@@ -209,6 +235,7 @@ def explain(
         columns = gradient * delta
     else:
         if method == "smoothgrad":
+            samples = DEFAULT_SAMPLES if samples is None else samples
             _check_count("samples", samples, MAX_SAMPLES)
             if not math.isfinite(noise) or noise < 0.0:
                 raise InvalidInputError("noise must be a finite number >= 0", field="noise")
@@ -236,12 +263,14 @@ def explain(
             columns = np.where(encoder.column_numeric, gradient / encoder.scale,
                                gradient * (x - baseline))
 
-    if encoder.n_inputs != len(encoder.fields):
+    if encoder.n_inputs != len(encoder.fields) and method != "shapley":  # (per field)
         columns = encoder.group(columns)
     label: Any = None
     if task == "regression":
         # Raw target units: value = standardised output * target_scale + target_center.
         columns = columns * encoder.target_scale
+        if errors is not None:
+            errors = errors * abs(encoder.target_scale)
         value = value * encoder.target_scale + encoder.target_center
         baseline_value = baseline_value * encoder.target_scale + encoder.target_center
     elif task == "binary":
@@ -254,7 +283,7 @@ def explain(
     else:
         label = encoder.label_of(unit)
     gap = None
-    if method == "integrated_gradients":
+    if method in ("integrated_gradients", "shapley"):
         gap = abs(float(np.add.reduce(columns)) - (value - baseline_value))  # = sum()
     return Explanation(
         method=method,
@@ -267,4 +296,6 @@ def explain(
         value=value,
         baseline_value=baseline_value,
         completeness_gap=gap,
+        standard_errors=None if errors is None else
+        dict(zip(encoder.fields, errors.tolist(), strict=True)),
     )

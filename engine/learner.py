@@ -14,7 +14,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from engine import batch, snapshot
-from engine.attribution import Explanation, check_row, explain
+from engine.attribution import EXACT_FIELDS, Explanation, check_row, explain
 from engine.encoding import Encoder
 from engine.errors import InvalidInputError, NonFiniteError, SnapshotError
 from engine.metrics import Prequential, batch_metrics
@@ -202,8 +202,9 @@ class Learner:
 
     def explain(self, x_row: Array | Mapping[str, Any],
                 method: str = "integrated_gradients", output: Any = None, steps: int = 64,
-                baseline: Array | Mapping[str, Any] | None = None, samples: int = 32,
-                noise: float = 0.15, seed: int = 0) -> Explanation:
+                baseline: Array | Mapping[str, Any] | None = None,
+                samples: int | None = None, noise: float = 0.15, seed: int = 0,
+                exact_fields: int = EXACT_FIELDS) -> Explanation:
         """Attributions of one prediction per field (see engine.attribution).
 
         `x_row` and `baseline` are encoded rows (n_inputs,) or raw feature mappings;
@@ -229,7 +230,7 @@ class Learner:
             index = self._output_index(output)
         return explain(self.network, self.encoder, x, method=method, output_index=index,
                        baseline=base, steps=steps, samples=samples, noise=noise, seed=seed,
-                       raw_baseline=raw_base)
+                       raw_baseline=raw_base, exact_fields=exact_fields)
 
     def _output_index(self, output: Any) -> int:
         """The class index of a class label; InvalidInputError (field output) if none."""

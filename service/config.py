@@ -66,6 +66,14 @@ def positive_number(value: Any) -> float:
     return parsed
 
 
+def exact_shapley_fields(value: Any) -> int:
+    """A field count from 1 to 16 (engine.shapley.MAX_EXACT_FIELDS: 2^16 coalitions)."""
+    parsed = whole_number(value)
+    if not 1 <= parsed <= 16:
+        raise ValueError("must be a whole number from 1 to 16")
+    return parsed
+
+
 FLAG_ON = ("1", "true", "yes")
 FLAG_OFF = ("0", "false", "no")
 
@@ -188,6 +196,9 @@ SETTINGS: tuple[Setting, ...] = (
             "README, \"Request budget\")"),
     Setting("KEELSON_PREDICTION_DEADLINE_SECONDS", API, 10.0, positive_number,
             "seconds a prediction request may compute before it answers 503"),
+    Setting("KEELSON_SHAPLEY_EXACT_FIELDS", API, 12, exact_shapley_fields,
+            "most fields whose Shapley values `explain=shapley` computes exactly, over all "
+            "2^fields coalitions (1 to 16); a model with more needs `samples` (422 without)"),
     Setting("KEELSON_DRIFT", API, True, flag,
             "`1`: each API process counts every prediction's fields for GET "
             "/v1/models/{name}/drift; `0`: nothing is counted"),

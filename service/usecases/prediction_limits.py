@@ -4,8 +4,11 @@ An explanation's work grows with the records, the rows the engine evaluates
 per record and the network's size. Per explained record the engine runs a
 forward and a backward pass over ``steps + 1`` points of the path plus the
 input and the baseline (integrated gradients), ``samples`` noisy points plus
-the same two (SmoothGrad), or the input and the baseline (a gradient). Without
-an explanation every record is one row of a single batched forward pass.
+the same two (SmoothGrad), or the input and the baseline (a gradient). Shapley
+values run forward passes only: every one of the 2^d coalitions of its d
+fields (exact, d up to KEELSON_SHAPLEY_EXACT_FIELDS), or ``samples`` orders of
+d + 1 points each (sampled). Without an explanation every record is one row of
+a single batched forward pass.
 
 The cost of a request, in budget units:
 
@@ -51,6 +54,7 @@ import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
 
+import engine
 from service.errors import KeelsonError
 
 log = logging.getLogger(__name__)
@@ -84,22 +88,31 @@ UNIT_COST = 100
 ANSWER_BYTE_COST = 500
 
 
-def rows_per_record(explain: str, steps: int, samples: int) -> int:
-    """Rows the engine evaluates per record, the passes' own cost included."""
+
+
+def rows_per_record(explain: str, steps: int, samples: int | None, fields: int = 0,
+                    exact_fields: int = engine.SHAPLEY_EXACT_FIELDS) -> int:
+    """Rows the engine evaluates per record, the passes' own cost included;
+    ``fields``: the model's (Shapley values' players)."""
     if explain == "none":
         return 1  # one row of the batched forward pass
     if explain == "integrated_gradients":
         return steps + 3 + PASS_ROWS
     if explain == "smoothgrad":
-        return samples + 2 + PASS_ROWS
+        return (engine.DEFAULT_SAMPLES if samples is None else samples) + 2 + PASS_ROWS
+    if explain == "shapley":
+        if fields <= exact_fields or samples is None:
+            return (1 << min(fields, exact_fields)) + PASS_ROWS
+        return samples * (fields + 1) + PASS_ROWS
     return 2 + PASS_ROWS  # gradient, gradient_times_input: the input and the baseline
 
 
-def request_cost(records: int, explain: str, steps: int, samples: int, parameters: int,
-                 units: int) -> int:
+def request_cost(records: int, explain: str, steps: int, samples: int | None,
+                 parameters: int, units: int, fields: int = 0,
+                 exact_fields: int = engine.SHAPLEY_EXACT_FIELDS) -> int:
     """The budget units a prediction request costs (see the module's docstring)."""
-    return records * rows_per_record(explain, steps, samples) * (parameters
-                                                                 + UNIT_COST * units)
+    rows = rows_per_record(explain, steps, samples, fields, exact_fields)
+    return records * rows * (parameters + UNIT_COST * units)
 
 
 @dataclass(slots=True)
@@ -109,19 +122,22 @@ class PredictionLimits:
 
     budget: int
     deadline_seconds: float
+    exact_fields: int = engine.SHAPLEY_EXACT_FIELDS
     started: float = field(default_factory=time.monotonic)
     client_gone: Callable[[], bool] | None = None
     _next_peek: float = 0.0
 
-    def check_cost(self, records: int, explain: str, steps: int, samples: int,
-                   parameters: int, units: int, answer_bytes: int = 0) -> None:
+    def check_cost(self, records: int, explain: str, steps: int, samples: int | None,
+                   parameters: int, units: int, answer_bytes: int = 0,
+                   fields: int = 0) -> None:
         """OverBudgetError, before any work, when the request costs too much:
         its computation, and ``answer_bytes``, at most what its answer takes."""
-        compute = request_cost(records, explain, steps, samples, parameters, units)
+        compute = request_cost(records, explain, steps, samples, parameters, units, fields,
+                               self.exact_fields)
         cost = compute + ANSWER_BYTE_COST * answer_bytes
         if cost <= self.budget:
             return
-        rows = rows_per_record(explain, steps, samples)
+        rows = rows_per_record(explain, steps, samples, fields, self.exact_fields)
         raise OverBudgetError(
             f"This request would cost {cost:,} budget units, over the budget of "
             f"{self.budget:,} per request: {compute:,} to compute ({records:,} records x "

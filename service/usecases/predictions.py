@@ -16,7 +16,7 @@ import numpy as np
 import orjson
 
 import engine
-from service.errors import ConflictError, KeelsonError, NotFoundError
+from service.errors import ConflictError, InvalidInputError, KeelsonError, NotFoundError
 from service.usecases.common import is_model_name, no_such_model
 from service.usecases.drift_tally import DriftTally
 from service.usecases.prediction_limits import PredictionLimits
@@ -34,7 +34,7 @@ from service.versions.cache import (
 EXPLAIN_METHODS = (*engine.EXPLANATION_METHODS, "none")
 DEFAULT_EXPLAIN = "integrated_gradients"
 DEFAULT_STEPS, MIN_STEPS, MAX_STEPS = 64, 2, 1024
-DEFAULT_SAMPLES, MAX_SAMPLES = 32, 1024
+MAX_SAMPLES = 1024
 DEFAULT_NOISE, MAX_NOISE = 0.15, 10.0
 
 
@@ -50,7 +50,7 @@ class PredictionOptions:
     version: int | None = None
     output: Any = None
     steps: int = DEFAULT_STEPS
-    samples: int = DEFAULT_SAMPLES
+    samples: int | None = None  # SmoothGrad: the engine's default; shapley: exact
     noise: float = DEFAULT_NOISE
     seed: int = 0
 
@@ -119,11 +119,16 @@ def predict(
     """
     loaded = load_version(cache, entry, options.version)
     learner = loaded.learner
+    exact_fields = engine.SHAPLEY_EXACT_FIELDS if limits is None else limits.exact_fields
+    if options.explain == "shapley":
+        _check_shapley(len(learner.encoder.fields), options.samples, exact_fields)
     if limits is not None:
         network = learner.network
         limits.check_cost(len(rows), options.explain, options.steps, options.samples,
                           network.params.size, sum(network.sizes[1:]),
-                          answer_bytes(learner, len(rows), options.explain != "none"))
+                          answer_bytes(learner, len(rows), options.explain != "none",
+                                       options.explain == "shapley"),
+                          len(learner.encoder.fields))
     encoded = learner.encode(rows)
     scores = learner.predict(encoded)
     classes = learner.classes if learner.task != "regression" else None
@@ -147,7 +152,7 @@ def predict(
                 explained = learner.explain(
                     encoded[index], method=options.explain, output=output,
                     steps=options.steps, samples=options.samples, noise=options.noise,
-                    seed=options.seed)
+                    seed=options.seed, exact_fields=exact_fields)
                 explanation = _explanation(explained)
                 if baseline is None:
                     baseline = {name: _baseline(v) for name, v in explained.baseline.items()}
@@ -160,6 +165,25 @@ def predict(
     return loaded.number, baseline, answers
 
 
+def _check_shapley(fields: int, samples: int | None, exact_fields: int) -> None:
+    """InvalidInputError (422, before any work) for Shapley values the engine
+    would refuse: more fields than the exact limit without ``samples``, or a
+    single sample (whose standard error is undefined)."""
+    if fields <= exact_fields:
+        return
+    if samples is None:
+        raise InvalidInputError(
+            f"This model has {fields} fields: exact Shapley values are computed for at most "
+            f"{exact_fields} fields (2^{exact_fields} coalitions). Give samples (random "
+            "orders of the fields, at least 2) to estimate them with standard errors.",
+            errors={"samples": [f"Required for explain=shapley over more than {exact_fields} "
+                                "fields."]})
+    if samples < 2:
+        raise InvalidInputError(
+            "Sampled Shapley values need at least 2 samples: one order of the fields "
+            "gives no standard error.", errors={"samples": ["At least 2 for explain=shapley."]})
+
+
 # The longest number an answer holds ("-2.2250738585072014e-308") and its
 # separator; the members every record's answer has beside its numbers and
 # names (member names, the method, the brackets).
@@ -167,11 +191,14 @@ NUMBER_BYTES = 25
 RECORD_BYTES = 160
 
 
-def answer_bytes(learner: Any, records: int, explained: bool) -> int:
+def answer_bytes(learner: Any, records: int, explained: bool,
+                 standard_errors: bool = False) -> int:
     """At most how many bytes the answer of ``records`` rows takes: per record
     a probability per class (each named) or a value, and when ``explained``
-    an attribution per field; once, the baseline. Priced into the request's
-    budget (prediction_limits.py); it costs less than one record's answer."""
+    an attribution per field (and with ``standard_errors``, Shapley values',
+    a standard error per field too); once, the baseline. Priced into the
+    request's budget (prediction_limits.py); it costs less than one record's
+    answer."""
     per_record = RECORD_BYTES + NUMBER_BYTES
     if learner.task != "regression":
         keys = [class_key(c) for c in learner.classes]
@@ -184,6 +211,8 @@ def answer_bytes(learner: Any, records: int, explained: bool) -> int:
         encoder = learner.encoder
         fields = orjson.dumps(encoder.fields)
         per_record += len(fields) + NUMBER_BYTES * (len(encoder.fields) + 3)
+        if standard_errors:  # the member's name, then the fields again
+            per_record += RECORD_BYTES + len(fields) + NUMBER_BYTES * len(encoder.fields)
         levels = [str(level) for name in encoder.fields for level in encoder.levels.get(name, ())]
         once += len(fields) + len(orjson.dumps(levels)) + NUMBER_BYTES * (
             len(encoder.fields) + len(levels))
@@ -256,7 +285,7 @@ def _regression(scores: Any) -> dict[str, Any]:
 
 def _explanation(explained: Any) -> dict[str, Any]:
     gap = explained.completeness_gap
-    return {
+    body = {
         "method": explained.method,
         "output": explained.output,
         "attributions": {name: _finite(v) for name, v in explained.attributions.items()},
@@ -264,6 +293,11 @@ def _explanation(explained: Any) -> dict[str, Any]:
         "value": _finite(explained.value),
         "baseline_value": _finite(explained.baseline_value),
     }
+    if explained.method == "shapley":  # sampled: each value's standard error
+        errors = explained.standard_errors
+        body["standard_errors"] = None if errors is None else {
+            name: _finite(v) for name, v in errors.items()}
+    return body
 
 
 def _finite(value: Any) -> float:

@@ -184,7 +184,7 @@ def test_bad_prediction_records_are_capped_too(stations: ApiClient) -> None:
     assert len(problem["errors"]) == LISTED and problem["errors_omitted"] == 3000 - LISTED
 
 
-@pytest.mark.parametrize("explain", ["integrated_gradients", "gradient", "none"])
+@pytest.mark.parametrize("explain", ["integrated_gradients", "gradient", "shapley", "none"])
 def test_a_large_prediction_batch_answers_a_bounded_multiple_of_its_size(
         any_api: ApiClient, explain: str) -> None:
     spec = station_spec("risk", classes=["ok", "failed"])

@@ -342,7 +342,8 @@ def test_the_openapi_document_describes_both_prediction_routes(api: ApiClient) -
     assert set(parameters) == {"features", "explain", "version", "output", "steps", "samples",
                                "noise", "seed"}
     assert parameters["explain"]["schema"]["enum"] == [
-        "integrated_gradients", "gradient", "gradient_times_input", "smoothgrad", "none"]
+        "integrated_gradients", "gradient", "gradient_times_input", "smoothgrad", "shapley",
+        "none"]
     assert parameters["steps"]["schema"] == {"type": "integer", "minimum": 2, "maximum": 1024}
     assert route["get"]["x-scope"] == route["post"]["x-scope"] == "predict"
     ok = route["get"]["responses"]["200"]["content"]["application/json"]["schema"]

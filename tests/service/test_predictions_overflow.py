@@ -51,7 +51,8 @@ def served(api: ApiClient) -> ApiClient:
     return serve(api, "regression")
 
 
-@pytest.mark.parametrize("explain", ["none", "gradient", "integrated_gradients", "smoothgrad"])
+@pytest.mark.parametrize("explain", ["none", "gradient", "integrated_gradients", "smoothgrad",
+                                     "shapley"])
 def test_a_get_whose_output_overflows_answers_422_naming_the_fields(
     served: ApiClient, explain: str,
 ) -> None:
@@ -84,7 +85,7 @@ def test_a_classifier_at_extreme_inputs_answers_finite_numbers_or_422(
     """A logistic output saturates rather than overflows, but inf - inf inside
     the network is NaN all the same: either answer is fine, a 500 is not."""
     serve(api, "binary")
-    for explain in ("none", "gradient", "integrated_gradients", "smoothgrad"):
+    for explain in ("none", "gradient", "integrated_gradients", "smoothgrad", "shapley"):
         response = api.client.get(f"{PATH}?{values}&family=lobe&explain={explain}",
                                   headers={"Authorization": f"Bearer {ADMIN_TOKEN}"})
         assert response.status_code in (200, 422), response.get_data(True)

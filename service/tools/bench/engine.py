@@ -171,7 +171,28 @@ def _latencies() -> dict[str, float]:
         "integrated_gradients_64": _median_us(
             lambda: learner.explain(x, method="integrated_gradients", output=label, steps=64),
             1000),
+        "shapley_7_fields": _shapley_latency(),
     }
+
+
+def _shapley_latency() -> float:
+    """Exact Shapley values (2^7 coalitions) of one record on 20-32-16-1 whose 20
+    inputs are 7 fields: 5 numbers and two categorical fields of 8 and 7 levels."""
+    levels = {"c5": [f"a{i}" for i in range(8)], "c6": [f"b{i}" for i in range(7)]}
+    spec = {"task": "binary", "hidden_layers": [32, 16],
+            "features": [{"name": f"x{i}", "type": "numeric"} for i in range(5)]
+            + [{"name": name, "type": "categorical", "levels": values}
+               for name, values in levels.items()]}
+    X, y = _problem(5, 2000)
+    rng = np.random.default_rng(1)
+    rows = [{**{f"x{i}": float(v) for i, v in enumerate(x)},
+             **{name: values[int(rng.integers(len(values)))] for name, values in levels.items()}}
+            for x in X]
+    learner = Learner.create(spec, warmup=rows[:200], warmup_labels=y[:200].tolist())
+    encoded = learner.encode(rows)
+    learner.learn(encoded, y)
+    x, label = encoded[0], learner.classes[1]
+    return _median_us(lambda: learner.explain(x, method="shapley", output=label), 1000)
 
 
 def _gradient_cost() -> dict[str, float]:

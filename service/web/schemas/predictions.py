@@ -17,12 +17,12 @@ from typing import Any
 from marshmallow import RAISE, Schema, ValidationError, fields, validate
 from werkzeug.datastructures import MultiDict
 
+import engine
 from service.errors import InvalidInputError, TooLargeError
 from service.usecases.predictions import (
     CASE_KEY,
     DEFAULT_EXPLAIN,
     DEFAULT_NOISE,
-    DEFAULT_SAMPLES,
     DEFAULT_STEPS,
     EXPLAIN_METHODS,
     MAX_NOISE,
@@ -69,12 +69,16 @@ def options_fields(text: bool) -> dict[str, fields.Field[Any]]:
         "steps": integer(minimum=MIN_STEPS, maximum=MAX_STEPS, metadata={
             "description": f"Integrated gradients: trapezoid intervals; default {DEFAULT_STEPS}."}),
         "samples": integer(minimum=1, maximum=MAX_SAMPLES, metadata={
-            "description": f"SmoothGrad: noisy samples; default {DEFAULT_SAMPLES}."}),
+            "description": f"SmoothGrad: noisy samples; default {engine.DEFAULT_SAMPLES}. "
+            "Shapley: random orders of the fields for an estimate with standard errors (at least "
+            "2), required above the exact limit (KEELSON_SHAPLEY_EXACT_FIELDS fields, 422 "
+            "without); below it the values are exact and samples is not used."}),
         "noise": number(minimum=0, maximum=MAX_NOISE, as_float=True, metadata={
             "description": "SmoothGrad: noise standard deviation in standardised units; "
             f"default {DEFAULT_NOISE}."}),
         "seed": integer(minimum=0, maximum=MAX_SEED, metadata={
-            "description": "SmoothGrad: seed of the noise; default 0."}),
+            "description": "SmoothGrad: seed of the noise; sampled Shapley values: seed of "
+            "the orders; default 0."}),
     }
 
 
@@ -319,7 +323,12 @@ class ExplanationSchema(Schema):
                                metadata={"description": "Declared feature -> attribution, "
                                          "in output units."})
     completeness_gap = fields.Float(required=True, allow_none=True, metadata={
-        "description": "Integrated gradients: |sum(attributions) - (value - baseline_value)|."})
+        "description": "Integrated gradients and Shapley values: "
+        "|sum(attributions) - (value - baseline_value)|."})
+    standard_errors = fields.Dict(
+        keys=fields.String(), values=fields.Float(), allow_none=True, metadata={
+            "description": "Shapley values only: declared feature -> standard error of its "
+            "sampled estimate; null when the values are exact."})
     value = fields.Float(required=True, metadata={"description": "f(input) explained."})
     baseline_value = fields.Float(required=True, metadata={"description": "f(baseline)."})
 

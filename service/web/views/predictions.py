@@ -64,6 +64,7 @@ def _limits(started: float) -> PredictionLimits:
     config = current_app.config
     return PredictionLimits(budget=config["KEELSON_PREDICTION_BUDGET"],
                             deadline_seconds=config["KEELSON_PREDICTION_DEADLINE_SECONDS"],
+                            exact_fields=config["KEELSON_SHAPLEY_EXACT_FIELDS"],
                             started=started, client_gone=client_gone_probe(request.environ))
 
 
