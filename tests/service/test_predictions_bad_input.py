@@ -32,7 +32,7 @@ GOOD_ROW = {"vibration_rms": 4.1, "pump_family": "screw", "has_vfd": True}
 INVALID = "urn:keelson:problem:invalid-input"
 LEVELS = "expected one of ['centrifugal', 'screw']."
 EXPLAINS = ("Must be one of: integrated_gradients, gradient, gradient_times_input, "
-            "smoothgrad, none.")
+            "smoothgrad, shapley, none.")
 
 
 @pytest.fixture
@@ -82,7 +82,7 @@ GET_CASES = [
     ("not a boolean", query(has_vfd="maybe"), {"has_vfd": ["Not a boolean (true or false)."]}),
     ("repeated parameter", query() + "&pump_family=screw",
      {"pump_family": ["Given more than once."]}),
-    ("bad explain", query(explain="shapley"), {"explain": [EXPLAINS]}),
+    ("bad explain", query(explain="lime"), {"explain": [EXPLAINS]}),
     ("unknown output class", query(output="broken"),
      {"output": ["Unknown class 'broken'; expected one of ['ok', 'failed']."]}),
     ("steps too few", query(steps="1"), {"steps": ["Must be at least 2."]}),
