@@ -10,7 +10,6 @@ is a 409 that changes nothing. Unkeyed predictions never come here.
 
 from __future__ import annotations
 
-import functools
 import json
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
@@ -23,6 +22,7 @@ from sqlalchemy.orm import Session, sessionmaker
 
 from service.errors import ConflictError
 from service.store.tables import ScoredCaseRow, VersionRow, utcnow
+from service.usecases.case_writer import case_writer
 
 KEY_CHUNK = 500  # keys per IN (...) on SQLite: under its parameter limit
 
@@ -47,10 +47,11 @@ def keep_cases(sessions: sessionmaker[Session], model_id: int, version_number: i
     """Store ``cases`` scored by version ``version_number`` of the model, in one
     write transaction; per case whether it was a re-score.
 
-    One case with a new key (a keyed GET, the common request) is one INSERT on
-    a pooled driver connection (``_insert_new``): the ORM session's cost per
-    request was three times the explained prediction itself. Anything else
-    (a batch, a key seen before) takes the session path below.
+    One case with a new key (a keyed GET, the common request) goes to the
+    process's group commit (usecases/case_writer.py): one INSERT and one
+    commit for all keyed requests waiting at that moment, no ORM session (its
+    cost per request was three times the explained prediction itself).
+    Anything else (a batch, a key seen before) takes the session path below.
 
     ``paths`` name each case's key in an error (``key``, ``records.3.key``).
     Raises CaseConflictError, naming every key sent before with other features
@@ -58,7 +59,8 @@ def keep_cases(sessions: sessionmaker[Session], model_id: int, version_number: i
     the same key (PostgreSQL: the unique constraint) is retried once, and is
     then a re-score or a conflict like any other.
     """
-    if len(cases) == 1 and _insert_new(sessions, model_id, version_number, cases[0]):
+    if len(cases) == 1 and case_writer(sessions).insert_new(model_id, version_number,
+                                                            cases[0]):
         return [False]
     for attempt in (1, 2):
         try:
@@ -68,63 +70,6 @@ def keep_cases(sessions: sessionmaker[Session], model_id: int, version_number: i
             if attempt == 2:
                 raise
     raise AssertionError("unreachable")
-
-
-# A new case in one statement and one round trip: the version's id looked up
-# inside it, nothing done when the key is taken (then the session path
-# decides: a re-score or a conflict), committed by the statement itself
-# (SQLite connections run without implicit transactions, see
-# service/store/database.py; a PostgreSQL connection is put in autocommit
-# for it, and back before it returns to the pool).
-_COLUMNS = "(model_id, key, features, version_id, output, scored_at, rescored)"
-_INSERT_NEW = {
-    "sqlite": f"INSERT INTO scored_cases {_COLUMNS} VALUES (?, ?, ?, (SELECT id FROM versions "
-              "WHERE model_id = ? AND number = ?), ?, ?, 0) ON CONFLICT (model_id, key) "
-              "DO NOTHING",
-    "postgresql": f"INSERT INTO scored_cases {_COLUMNS} VALUES (%s, %s, %s, (SELECT id FROM "
-                  "versions WHERE model_id = %s AND number = %s), %s, %s, 0) "
-                  "ON CONFLICT (model_id, key) DO NOTHING",
-}
-
-
-def _insert_new(sessions: sessionmaker[Session], model_id: int, version_number: int,
-                case: ScoredCase) -> bool:
-    """Store ``case`` if its key is new to the model; whether it was."""
-    engine = sessions.kw["bind"]
-    dialect = engine.dialect
-    statement = _INSERT_NEW.get(dialect.name)
-    if statement is None:
-        return False
-    stamp = _stamp(dialect)(utcnow())
-    postgres = dialect.name == "postgresql"
-    connection = engine.raw_connection()
-    driver = connection.driver_connection
-    try:
-        if postgres:
-            driver.autocommit = True  # psycopg: a local switch on an idle connection
-        cursor = connection.cursor()
-        try:
-            cursor.execute(statement, (
-                model_id, case.key, json.dumps(case.features), model_id, version_number,
-                json.dumps(case.output, allow_nan=False), stamp))
-            return bool(cursor.rowcount == 1)
-        finally:
-            cursor.close()
-    finally:
-        if postgres:
-            try:
-                driver.autocommit = False
-            except Exception:  # a broken connection: never back to the pool in autocommit
-                connection.invalidate()
-        connection.close()  # back to the pool
-
-
-@functools.cache
-def _stamp(dialect: Any) -> Any:
-    """How the scored_at column spells a time for this dialect's driver."""
-    process = ScoredCaseRow.__table__.c.scored_at.type.dialect_impl(dialect).bind_processor(
-        dialect)
-    return process or (lambda moment: moment)
 
 
 def _keep(session: Session, model_id: int, version_number: int,
