@@ -311,6 +311,25 @@ def import_(model: str, csv_file: Path, batch_size: int) -> None:
         sys.exit(1)
 
 
+@cli.command("export")
+@click.argument("model")
+@click.argument("output", metavar="FILE", type=click.Path(dir_okay=False, path_type=Path))
+@click.option("--format", "format_", type=click.Choice(["csv", "ndjson"]), default=None,
+              help="File format [default: from FILE's extension, .ndjson or .jsonl for "
+                   "NDJSON, else CSV].")
+@click.option("--split", type=click.Choice(["train", "holdout"]), default=None,
+              help="Only this split's records [default: both].")
+def export_command(model: str, output: Path, format_: str | None, split: str | None) -> None:
+    """Write every stored record of MODEL to FILE with a progress bar: the
+    very file `GET /v1/models/MODEL/records` answers. A CSV export reads back
+    with `keelson import`."""
+    from service.tools.exporting import export_records, format_of
+
+    summary = export_records(_config(), model, output, format=format_of(output, format_),
+                             split=split)
+    click.echo(summary.describe())
+
+
 @cli.command("export-version")
 @click.argument("model")
 @click.argument("number", metavar="N", type=click.IntRange(min=1))
