@@ -15,7 +15,7 @@ from collections.abc import Iterator
 from dataclasses import dataclass
 from typing import Any
 
-from sqlalchemy import select
+from sqlalchemy import Text, select, type_coerce
 from sqlalchemy.orm import Session, sessionmaker
 
 from service.store.record_log import decode_named, json_text
@@ -41,7 +41,7 @@ class StoredRecords:
     seqs: list[int]
     keys: list[str | None]
     splits: list[str]
-    times: list[dt.datetime]
+    times: list[str]  # RFC 3339, UTC: "2026-12-03T14:20:25.123456+00:00"
     features: list[dict[str, Any]]
     labels: list[Any]
 
@@ -53,7 +53,11 @@ def read_stored(session: Session, model_id: int, which: RecordFilter, limit: int
                 ) -> StoredRecords:
     """Up to ``limit`` records matching ``which``, in sequence order."""
     dialect = session.get_bind().dialect.name
-    query = select(RecordRow.seq, RecordRow.key, RecordRow.split, RecordRow.received_at,
+    # SQLite keeps a time as text: read it so, and convert each distinct one
+    # once (a batch's records share theirs), not once a row.
+    received = (type_coerce(RecordRow.received_at, Text) if dialect == "sqlite"
+                else RecordRow.received_at)
+    query = select(RecordRow.seq, RecordRow.key, RecordRow.split, received,
                    json_text(RecordRow.features, dialect),
                    json_text(RecordRow.label, dialect)).where(
         RecordRow.model_id == model_id, RecordRow.seq > which.after)
@@ -70,14 +74,21 @@ def read_stored(session: Session, model_id: int, which: RecordFilter, limit: int
         return StoredRecords([], [], [], [], [], [])
     seqs, keys, splits, times, features, labels = (list(column) for column in zip(*rows,
                                                                                  strict=True))
-    return StoredRecords(seqs, keys, splits, [_utc(t) for t in times],
+    texts: dict[Any, str] = {}
+    return StoredRecords(seqs, keys, splits,
+                         [texts.get(t) or texts.setdefault(t, _rfc3339(t)) for t in times],
                          decode_named(features, seqs, "features are"),
                          decode_named(labels, seqs, "label is"))
 
 
-def _utc(moment: dt.datetime) -> dt.datetime:
-    """SQLite hands a stored time back without its zone; it was written in UTC."""
-    return moment if moment.tzinfo is not None else moment.replace(tzinfo=dt.UTC)
+def _rfc3339(moment: dt.datetime | str) -> str:
+    """A stored time as RFC 3339 in UTC. SQLite's is text without its zone
+    (SQLAlchemy writes it so); it was written in UTC."""
+    if isinstance(moment, str):
+        moment = dt.datetime.fromisoformat(moment)
+    if moment.tzinfo is None:
+        moment = moment.replace(tzinfo=dt.UTC)
+    return moment.astimezone(dt.UTC).isoformat()
 
 
 def iter_stored(sessions: sessionmaker[Session], model_id: int, which: RecordFilter,

@@ -44,7 +44,9 @@ def _setup(database_url: str, count: int) -> None:
                for i in range(count)]
     for i, row in enumerate(records):
         if i % 7:  # some records carry no key
-            row["key"] = f"station-{i % 13}/week-{i}"
+            # a quote, a backslash, a newline: cells the CSV must quote and escape
+            row["key"] = f"station-{i % 13}/week-{i}" if i % 11 else f'lift "{i}"\\\n{i}'
+
     answer = client.post("/v1/models/pump-flow/records", json={"records": records},
                          headers=auth)
     assert answer.status_code == 201, answer.get_json()
