@@ -21,7 +21,8 @@ import platform
 import tempfile
 import time
 import tracemalloc
-from collections.abc import Callable
+from collections.abc import Callable, Mapping
+from functools import partial
 from typing import Any
 
 import numpy as np
@@ -100,7 +101,7 @@ def _measure(url: str, records: int, progress: Progress) -> dict[str, Any]:
                                   "records_per_second": round(records / seconds)}
         progress(f"[{backend}] memory (tracemalloc)")
         figures["peak_traced_mib"] = {
-            str(count): _peak_mib(lambda count=count: export("csv", limit=count))
+            str(count): _peak_mib(partial(export, "csv", limit=count))
             for count in (records // 4, records)}
     finally:
         engine.dispose()
@@ -152,7 +153,7 @@ def _store(writes: Any, records: int) -> None:
     for start in range(0, records, INSERT_BATCH):
         n = min(INSERT_BATCH, records - start)
         values = rng.normal(50, 15, size=(n, len(NUMERIC))).tolist()
-        batch = [{"key": f"station-{(start + i) % 40:02d}/week-{start + i}",
+        batch: list[Mapping[str, Any]] = [{"key": f"station-{(start + i) % 40:02d}/week-{start + i}",
                   "features": {**dict(zip(NUMERIC, row, strict=True)),
                                "pump_family": families[i % 3], "has_vfd": bool(i % 2)},
                   "label": "failed" if row[3] > 70 else "ok"}
