@@ -153,7 +153,8 @@ def _store(writes: Any, records: int) -> None:
     for start in range(0, records, INSERT_BATCH):
         n = min(INSERT_BATCH, records - start)
         values = rng.normal(50, 15, size=(n, len(NUMERIC))).tolist()
-        batch: list[Mapping[str, Any]] = [{"key": f"station-{(start + i) % 40:02d}/week-{start + i}",
+        batch: list[Mapping[str, Any]] = [
+                 {"key": f"station-{(start + i) % 40:02d}/week-{start + i}",
                   "features": {**dict(zip(NUMERIC, row, strict=True)),
                                "pump_family": families[i % 3], "has_vfd": bool(i % 2)},
                   "label": "failed" if row[3] > 70 else "ok"}
