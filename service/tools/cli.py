@@ -333,22 +333,41 @@ def export_command(model: str, output: Path, format_: str | None, split: str | N
 @cli.command("export-version")
 @click.argument("model")
 @click.argument("number", metavar="N", type=click.IntRange(min=1))
-@click.argument("output", metavar="FILE.onnx", type=click.Path(dir_okay=False, path_type=Path))
-def export_version_command(model: str, number: int, output: Path) -> None:
-    """Write version N of MODEL to FILE.onnx: an ONNX model taking the raw
-    fields and answering the probabilities or the value, as the HTTP export
-    (`GET /v1/models/MODEL/versions/N/export?format=onnx`) does."""
+@click.argument("output", metavar="FILE", type=click.Path(dir_okay=False, path_type=Path))
+@click.option("--format", "format_", type=click.Choice(["onnx", "snapshot"]), default=None,
+              help="onnx or snapshot [default: snapshot for a FILE ending in .keelson, "
+                   "else onnx].")
+def export_version_command(model: str, number: int, output: Path, format_: str | None) -> None:
+    """Write version N of MODEL to FILE, as the HTTP export
+    (`GET /v1/models/MODEL/versions/N/export`) does: an ONNX model taking the
+    raw fields and answering the probabilities or the value, or Keelson's own
+    snapshot file for `keelson restore`."""
     from service.usecases.exports import export_version
     from service.versions.cache import VersionCache
 
+    chosen = format_ or ("snapshot" if output.suffix == ".keelson" else "onnx")
     database = _database()
     try:
-        exported = export_version(VersionCache(database.read, max_age=0.0), model, number,
-                                  "onnx")
+        exported = export_version(VersionCache(database.read, max_age=0.0), database.read,
+                                  model, number, chosen)
     finally:
         database.engine.dispose()
     output.write_bytes(exported.data)
     click.echo(f"version {number} of {model} written to {output} ({len(exported.data):,} bytes)")
+
+
+@cli.command("restore")
+@click.argument("snapshot", metavar="FILE",
+                type=click.Path(exists=True, dir_okay=False, path_type=Path))
+@click.option("--as", "name", required=True, metavar="NAME",
+              help="The new model's name (it must not exist yet).")
+def restore(snapshot: Path, name: str) -> None:
+    """Load a snapshot file (`keelson export-version MODEL N FILE.keelson`, or
+    the HTTP export with format=snapshot) into this installation's database
+    as a new model NAME, with that version active."""
+    from service.tools.restoring import restore_file
+
+    click.echo(restore_file(_config(), snapshot, name))
 
 
 cli.add_command(outcomes)  # keelson outcomes import (service/tools/outcome_import.py)

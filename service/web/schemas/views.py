@@ -109,7 +109,7 @@ class ExportQuerySchema(Schema):
         unknown = RAISE
 
     format = fields.String(required=True, validate=validate.OneOf(EXPORT_FORMATS),
-                           metadata={"description": "The file format: `onnx`."})
+                           metadata={"description": "The file format: `onnx` or `snapshot`."})
 
 
 class RecordExportQuerySchema(Schema):
