@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import csv
 import io
+import json
 import operator
 from collections.abc import Callable, Iterator, Mapping
 from dataclasses import dataclass
@@ -89,10 +90,9 @@ def open_export(sessions: sessionmaker[Session], name: str, format: str,
 
 
 def ndjson_chunk(chunk: StoredRecords) -> bytes:
-    """One JSON object per line (orjson spells a time as RFC 3339)."""
-    dumps = orjson.dumps
+    """One JSON object per line."""
     return b"".join(
-        dumps({"key": key, "sequence": seq, "split": split, "time": time,
+        _json({"key": key, "sequence": seq, "split": split, "time": time,
                "fields": features, "label": label}) + b"\n"
         for seq, key, split, time, features, label in zip(
             chunk.seqs, chunk.keys, chunk.splits, chunk.times, chunk.features, chunk.labels,
@@ -118,7 +118,6 @@ def csv_encoder(spec: Mapping[str, Any]) -> Callable[[StoredRecords], bytes]:
     names = [f["name"] for f in spec["features"]]
     values = operator.itemgetter(*names) if len(names) > 1 else (
         lambda features: (features[names[0]],))
-    dumps = orjson.dumps
 
     def encode(chunk: StoredRecords) -> bytes:
         lines = []
@@ -126,13 +125,22 @@ def csv_encoder(spec: Mapping[str, Any]) -> Callable[[StoredRecords], bytes]:
                 chunk.seqs, chunk.keys, chunk.splits, chunk.times, chunk.features,
                 chunk.labels, strict=True):
             row = [key or "", seq, split, time, *values(features), label]
-            text = dumps(row)
+            text = _json(row)
             lines.append(text[1:-1] if b"\\" not in text else
                          _csv_text([map(_cell, row)]).rstrip(b"\r\n"))
         lines.append(b"")
         return b"\r\n".join(lines)
 
     return encode
+
+
+def _json(value: Any) -> bytes:
+    """Compact JSON: orjson's, or the standard library's for what orjson
+    refuses (an integer beyond 64 bits); the same values either way."""
+    try:
+        return orjson.dumps(value)
+    except orjson.JSONEncodeError:
+        return json.dumps(value, ensure_ascii=False, separators=(",", ":")).encode("utf-8")
 
 
 def _cell(value: Any) -> Any:
