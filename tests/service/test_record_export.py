@@ -127,3 +127,15 @@ def test_refusals_change_nothing_and_are_problems(any_api: ApiClient) -> None:
     any_api.request("GET", f"{URL}?cursor=3", 422)
     any_api.request("GET", URL, 406, headers={"Accept": "application/xml"})
     assert _stored(any_api) == before
+
+
+def test_the_accept_header_chooses_by_preference(any_api: ApiClient) -> None:
+    # RFC 9110 section 12.5.1: the highest q wins; */* takes either (NDJSON here).
+    _fill(any_api, count=4)
+    for accept, expected in (("*/*", "application/x-ndjson"),
+                             ("text/csv;q=0.9, application/x-ndjson;q=0.5", "text/csv"),
+                             ("application/json, text/*", "text/csv"),
+                             ("application/x-ndjson", "application/x-ndjson")):
+        response = any_api.client.get(URL, headers={
+            "Authorization": "Bearer test-admin-token", "Accept": accept})
+        assert (response.status_code, response.mimetype) == (200, expected), accept
