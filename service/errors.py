@@ -47,6 +47,12 @@ class NotFoundError(KeelsonError):
     status = 404
 
 
+class NotAcceptableError(KeelsonError):
+    """No representation the client accepts (RFC 9110 section 15.5.7): 406."""
+
+    status = 406
+
+
 class ConflictError(KeelsonError):
     status = 409
 

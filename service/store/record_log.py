@@ -53,7 +53,7 @@ def decode_column(values: Sequence[Any]) -> list[Any]:
     return [None if value is None else decode_json(value) for value in values]
 
 
-def _json_text(column: Any, dialect: str) -> Any:
+def json_text(column: Any, dialect: str) -> Any:
     """A JSON column as its stored text, decoded by :func:`decode_column` (not
     by SQLAlchemy's per-value result processor, several times dearer).
     PostgreSQL: cast to text (psycopg's per-value JSON loader is dearer still).
@@ -64,8 +64,8 @@ def _json_text(column: Any, dialect: str) -> Any:
 
 def record_columns(session: Session) -> tuple[Any, ...]:
     dialect = session.get_bind().dialect.name
-    return (RecordRow.seq, _json_text(RecordRow.features, dialect),
-            _json_text(RecordRow.label, dialect), RecordRow.split)
+    return (RecordRow.seq, json_text(RecordRow.features, dialect),
+            json_text(RecordRow.label, dialect), RecordRow.split)
 
 
 def fetch_chunk(session: Session, query: Any) -> RecordChunk:
@@ -84,7 +84,7 @@ class UnreadableRecord(ValueError):
         self.detail = detail
 
 
-def _decode_named(values: Sequence[Any], seqs: Sequence[int], what: str) -> list[Any]:
+def decode_named(values: Sequence[Any], seqs: Sequence[int], what: str) -> list[Any]:
     """:func:`decode_column`, and on failure an :class:`UnreadableRecord`
     naming the first record that does not decode (the one-call path cannot
     say which; only a failure pays for finding it)."""
@@ -122,8 +122,8 @@ class RecordChunk:
         seqs, features, labels, splits = zip(*rows, strict=True)
         return cls(
             seqs=np.array(seqs, dtype=np.int64),
-            features=_decode_named(features, seqs, "features are"),
-            labels=_decode_named(labels, seqs, "label is"),
+            features=decode_named(features, seqs, "features are"),
+            labels=decode_named(labels, seqs, "label is"),
             is_train=np.fromiter(map("train".__eq__, splits), dtype=bool, count=len(splits)),
         )
 

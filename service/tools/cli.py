@@ -311,25 +311,63 @@ def import_(model: str, csv_file: Path, batch_size: int) -> None:
         sys.exit(1)
 
 
+@cli.command("export")
+@click.argument("model")
+@click.argument("output", metavar="FILE", type=click.Path(dir_okay=False, path_type=Path))
+@click.option("--format", "format_", type=click.Choice(["csv", "ndjson"]), default=None,
+              help="File format [default: from FILE's extension, .ndjson or .jsonl for "
+                   "NDJSON, else CSV].")
+@click.option("--split", type=click.Choice(["train", "holdout"]), default=None,
+              help="Only this split's records [default: both].")
+def export_command(model: str, output: Path, format_: str | None, split: str | None) -> None:
+    """Write every stored record of MODEL to FILE with a progress bar: the
+    very file `GET /v1/models/MODEL/records` answers. A CSV export reads back
+    with `keelson import`."""
+    from service.tools.exporting import export_records, format_of
+
+    summary = export_records(_config(), model, output, format=format_of(output, format_),
+                             split=split)
+    click.echo(summary.describe())
+
+
 @cli.command("export-version")
 @click.argument("model")
 @click.argument("number", metavar="N", type=click.IntRange(min=1))
-@click.argument("output", metavar="FILE.onnx", type=click.Path(dir_okay=False, path_type=Path))
-def export_version_command(model: str, number: int, output: Path) -> None:
-    """Write version N of MODEL to FILE.onnx: an ONNX model taking the raw
-    fields and answering the probabilities or the value, as the HTTP export
-    (`GET /v1/models/MODEL/versions/N/export?format=onnx`) does."""
+@click.argument("output", metavar="FILE", type=click.Path(dir_okay=False, path_type=Path))
+@click.option("--format", "format_", type=click.Choice(["onnx", "snapshot"]), default=None,
+              help="onnx or snapshot [default: snapshot for a FILE ending in .keelson, "
+                   "else onnx].")
+def export_version_command(model: str, number: int, output: Path, format_: str | None) -> None:
+    """Write version N of MODEL to FILE, as the HTTP export
+    (`GET /v1/models/MODEL/versions/N/export`) does: an ONNX model taking the
+    raw fields and answering the probabilities or the value, or Keelson's own
+    snapshot file for `keelson restore`."""
     from service.usecases.exports import export_version
     from service.versions.cache import VersionCache
 
+    chosen = format_ or ("snapshot" if output.suffix == ".keelson" else "onnx")
     database = _database()
     try:
-        exported = export_version(VersionCache(database.read, max_age=0.0), model, number,
-                                  "onnx")
+        exported = export_version(VersionCache(database.read, max_age=0.0), database.read,
+                                  model, number, chosen)
     finally:
         database.engine.dispose()
     output.write_bytes(exported.data)
     click.echo(f"version {number} of {model} written to {output} ({len(exported.data):,} bytes)")
+
+
+@cli.command("restore")
+@click.argument("snapshot", metavar="FILE",
+                type=click.Path(exists=True, dir_okay=False, path_type=Path))
+@click.option("--as", "name", required=True, metavar="NAME",
+              help="The new model's name (it must not exist yet).")
+def restore(snapshot: Path, name: str) -> None:
+    """Load a snapshot file (`keelson export-version MODEL N FILE.keelson`, or
+    the HTTP export with format=snapshot) into this installation's database
+    as a new model NAME, with that version active."""
+    from service.tools.restoring import restore_file
+
+    click.echo(restore_file(_config(), snapshot, name))
 
 
 cli.add_command(outcomes)  # keelson outcomes import (service/tools/outcome_import.py)

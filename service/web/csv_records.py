@@ -1,7 +1,9 @@
 """Records from CSV text (RFC 4180), checked by the model's rules.
 
 The header names the columns: every feature, the target, and optionally
-``key``; order is free. Each row becomes a record of the JSON shape
+``key``; order is free. The columns a records export adds
+(``record.sequence``, ``record.split``, ``record.time``) are allowed and
+skipped, so an exported file reads back as it is. Each row becomes a record of the JSON shape
 (``{"key"?, "features", "label"}``, cells as text), then the model's compiled
 rules load it in their text form: a CSV cell obeys exactly the rules a JSON
 value does, and an error names ``records.<row>.features.<column>`` (row 0 is
@@ -16,6 +18,7 @@ from collections.abc import Mapping
 from typing import Any
 
 from service.errors import InvalidInputError, MalformedError, TooLargeError
+from service.usecases.record_export import EXPORT_ONLY_COLUMNS
 from service.web.schemas.rules import NO_RECORDS, RecordRules, rules_for
 
 KEY_COLUMN = "key"
@@ -95,7 +98,7 @@ def broken_reason(reason: str) -> str:
 def _check_header(header: list[str], features: list[str], target: str) -> None:
     errors: dict[str, list[str]] = {}
     seen: set[str] = set()
-    allowed = {*features, target, KEY_COLUMN}
+    allowed = {*features, target, KEY_COLUMN, *EXPORT_ONLY_COLUMNS}
     for name in header:
         if name in seen:
             errors[f"columns.{name}"] = ["This column appears twice."]

@@ -40,6 +40,7 @@ def request_for(method: str, rule: str, model: str, job: int) -> tuple[str, Any]
         ("GET", "/v1/models/{}/schema"): None,
         ("POST", "/v1/models/{}/records"): {"records": [
             {"key": "r-new", "features": row, "label": pump_rule(row)}]},
+        ("GET", "/v1/models/{}/records"): None,
         ("POST", "/v1/models/{}/outcomes"): {"outcomes": [{"key": "case-0", "label": "ok"}]},
         ("GET", "/v1/models/{}/versions"): None,
         ("GET", "/v1/models/{}/versions/{}"): None,

@@ -115,4 +115,21 @@ def bench_cases(as_json: bool, duration: int, connections: int, postgres_url: st
     emit(run_cases_bench(duration=duration, connections=connections,
                          postgres_url=postgres_url, progress=_progress), as_json)
 
+
+
+@bench.command("export")
+@click.option("--json", "as_json", is_flag=True, help="One JSON object.")
+@click.option("--records", type=click.IntRange(min=1000), default=200_000, show_default=True,
+              help="Records stored, then exported.")
+@click.option("--postgres-url", default=_bench_postgres_url,
+              help="Also measure on this PostgreSQL server (a scratch database is made) "
+                   "[env KEELSON_BENCH_POSTGRES_URL].")
+def bench_export(as_json: bool, records: int, postgres_url: str | None) -> None:
+    """Taking the records out as CSV and NDJSON: records per second, memory."""
+    from service.tools.bench.export import run_export_bench
+
+    emit(run_export_bench(records=records, postgres_url=postgres_url, progress=_progress),
+         as_json)
+
+
 bench.add_command(bench_track_record)

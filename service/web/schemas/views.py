@@ -6,10 +6,13 @@ out (flask-smorest dumps each view's return value through its schema).
 
 from __future__ import annotations
 
+import datetime as dt
+
 from marshmallow import RAISE, Schema, fields, validate
 
 from service.usecases.exports import EXPORT_FORMATS
-from service.web.schemas.fields import StrictBoolean
+from service.usecases.record_export import RECORD_FORMATS
+from service.web.schemas.fields import IntegerFromText, StrictBoolean
 from service.web.schemas.paging import NEXT
 from service.web.schemas.rules import RecordRules, batch_schema_class
 from service.web.schemas.spec import ModelSpecSchema
@@ -106,7 +109,30 @@ class ExportQuerySchema(Schema):
         unknown = RAISE
 
     format = fields.String(required=True, validate=validate.OneOf(EXPORT_FORMATS),
-                           metadata={"description": "The file format: `onnx`."})
+                           metadata={"description": "The file format: `onnx` or `snapshot`."})
+
+
+class RecordExportQuerySchema(Schema):
+    """GET /v1/models/{name}/records query: which records, in which format."""
+
+    class Meta:
+        unknown = RAISE
+
+    format = fields.String(validate=validate.OneOf(RECORD_FORMATS), metadata={
+        "description": "`csv` or `ndjson`; without it the `Accept` header decides "
+                       "(text/csv or application/x-ndjson; NDJSON when either will do)."})
+    after = IntegerFromText(minimum=0, maximum=2**63 - 1, load_default=0, metadata={
+        "description": "Records with a sequence above this (the last `sequence` read: "
+                       "the cursor to go on from)."})
+    limit = IntegerFromText(minimum=1, maximum=2**63 - 1, metadata={
+        "description": "At most this many records (default: all)."})
+    split = fields.String(validate=validate.OneOf(["train", "holdout"]), metadata={
+        "description": "Only the records of this split."})
+    since = fields.AwareDateTime(default_timezone=dt.UTC, metadata={
+        "description": "Only records received at or after this time (RFC 3339; UTC "
+                       "without an offset)."})
+    until = fields.AwareDateTime(default_timezone=dt.UTC, metadata={
+        "description": "Only records received before this time."})
 
 
 class RetrainRequestSchema(Schema):

@@ -48,13 +48,15 @@ def promote_version(name: str, number: int) -> dict[str, Any]:
 @requires("admin")
 @blueprint.arguments(ExportQuerySchema, location="query", as_kwargs=True, unknown=RAISE)
 @blueprint.doc(responses={"200": {
-    "description": "The version as an ONNX model (binary protobuf, docs/http-api.md).",
+    "description": "The version as an ONNX model (binary protobuf) or Keelson's snapshot "
+                   "file (docs/http-api.md, docs/snapshot-format.md).",
     "content": {ONNX_MEDIA_TYPE: {"schema": {"type": "string", "format": "binary"}}}}})
 def export(name: str, number: int, format: str) -> Response:
     """This version as a file for use outside Keelson: `format=onnx`, an ONNX
     model with the encoding inside (raw fields in, probabilities or the value
-    out)."""
-    exported = export_version(get_version_cache(), name, number, format)
+    out); `format=snapshot`, Keelson's own snapshot file, which `keelson
+    restore` loads into another installation."""
+    exported = export_version(get_version_cache(), get_database().read, name, number, format)
     response = Response(exported.data, mimetype=exported.media_type)
     response.headers["Content-Disposition"] = f'attachment; filename="{exported.filename}"'
     return response
