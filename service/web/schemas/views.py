@@ -116,6 +116,16 @@ class RetrainRequestSchema(Schema):
     warm_start = StrictBoolean(load_default=False)
 
 
+class DeleteModelQuerySchema(Schema):
+    """DELETE /v1/models/{name} query."""
+
+    class Meta:
+        unknown = RAISE
+
+    confirm = fields.String(load_default=None, metadata={
+        "description": "The model's name again: a delete needs it twice."})
+
+
 class JobSchema(Schema):
     id = fields.Integer(required=True)
     model = fields.String(required=True)
