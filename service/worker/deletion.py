@@ -130,7 +130,12 @@ def _delete_batch(writes: sessionmaker[Session], key: InstrumentedAttribute[Any]
     with transaction(writes) as session:
         # Two statements: PostgreSQL may run a LIMIT subquery inside a DELETE
         # more than once, deleting more than a batch (as retention.py does).
-        found = list(session.scalars(select(key).where(owner == model_id).limit(size)))
+        # Records go oldest first (their (model_id, seq) index gives that
+        # order for free); the other tables in whatever order their index has.
+        query = select(key).where(owner == model_id).limit(size)
+        if key is RecordRow.seq:
+            query = query.order_by(key)
+        found = list(session.scalars(query))
         if not found:
             return 0
         result = session.execute(delete(key.class_).where(owner == model_id, key.in_(found))
