@@ -36,7 +36,9 @@ def test_a_delete_needs_the_name_twice_and_a_refusal_changes_nothing(any_api: Ap
     api = any_api
     pump_model(api, OWN)
     before = everything(api.app)
-    for query in ["", "?confirm=", f"?confirm={OTHER}", f"?confirm={OWN.upper()}",
+    problem = api.request("DELETE", f"/v1/models/{OWN}", 422)
+    assert problem["errors"] == {"query.confirm": ["Missing data for required field."]}
+    for query in ["?confirm=", f"?confirm={OTHER}", f"?confirm={OWN.upper()}",
                   f"?confirm={OWN}-", f"?confirm={OWN}&confirm={OTHER}"]:
         problem = api.request("DELETE", f"/v1/models/{OWN}{query}", 422)
         assert problem["type"] == "urn:keelson:problem:invalid-input", query

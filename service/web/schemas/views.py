@@ -122,8 +122,9 @@ class DeleteModelQuerySchema(Schema):
     class Meta:
         unknown = RAISE
 
-    confirm = fields.String(load_default=None, metadata={
-        "description": "The model's name again: a delete needs it twice."})
+    confirm = fields.String(required=True, metadata={
+        "description": "The model's name again, once: a delete needs the name twice "
+                       "(any other value is refused with 422)."})
 
 
 class JobSchema(Schema):
