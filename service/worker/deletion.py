@@ -93,6 +93,11 @@ def run_delete(settings: WorkerSettings, reads: sessionmaker[Session],
     progress: dict[str, Any] = {"step": None, "records_total": total,
                                 "records_deleted": total - left, "deleted": {}}
     reported = time.monotonic()
+    # SQLite has one write lock: a writer that found it taken sleeps in its
+    # busy handler (up to tens of milliseconds a time) and would find the next
+    # batch holding it again. Resting as long as each batch took leaves the
+    # lock free half the time, so other models' writes get in.
+    rest = writes.kw["bind"].dialect.name == "sqlite"
     for name, key, owner, big in STEPS:
         size = min(settings.delete_batch, VERSION_BATCH) if big else settings.delete_batch
         progress["step"] = name
@@ -100,7 +105,10 @@ def run_delete(settings: WorkerSettings, reads: sessionmaker[Session],
         while True:
             if cancel():
                 raise TrainingCancelled(f"delete job {job_id} was stopped")
+            began = time.monotonic()
             count = _delete_batch(writes, key, owner, model_id, size)
+            if rest:
+                time.sleep(time.monotonic() - began)
             removed += count
             if name == "records":
                 progress["records_deleted"] += count
