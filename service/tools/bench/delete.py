@@ -9,7 +9,8 @@ the app (Flask's test client, no network):
 
 * ``baseline``: GET predictions of ``pump-risk``, alternately without and with
   a case key (a keyed one stores a scored case: a write transaction), one
-  after another, for ``--seconds``;
+  after another, for ``--seconds``; percentiles of all, of the unkeyed and of
+  the keyed ones;
 * ``during_delete``: ``DELETE /v1/models/pump-retired?confirm=pump-retired``,
   a worker started as its own process (``python -m service.worker``) runs the
   delete job, and the same predictions go on until the job has succeeded.
@@ -100,12 +101,12 @@ def _measure(url: str, scratch: Path, records: int, seconds: float,
     path = f"/v1/models/{demo_data.MODEL_NAME}/predictions?{query}"
     counter = iter(range(10**12))
 
-    def predict() -> float:
+    def predict() -> tuple[bool, float]:
         number = next(counter)
         keyed = f"&key=bench-{number}" if number % 2 else ""
         started = time.perf_counter()
         api.call("GET", path + keyed)
-        return time.perf_counter() - started
+        return bool(keyed), time.perf_counter() - started
 
     progress(f"[{backend}] baseline predictions for {seconds} s")
     deadline = time.monotonic() + seconds
@@ -122,7 +123,7 @@ def _measure(url: str, scratch: Path, records: int, seconds: float,
                            expect=(202,))
         job_path = f"/v1/jobs/{body['job']['id']}"
         accepted = time.perf_counter()
-        during: list[float] = []
+        during: list[tuple[bool, float]] = []
         job: dict[str, Any] = {}
         while True:
             during.extend(predict() for _ in range(50))
@@ -144,7 +145,11 @@ def _measure(url: str, scratch: Path, records: int, seconds: float,
     return {
         "baseline": base,
         "during_delete": busy,
-        "p99_during_to_baseline": round(busy["p99_ms"] / base["p99_ms"], 3),
+        "p99_during_to_baseline": round(busy["all"]["p99_ms"] / base["all"]["p99_ms"], 3),
+        "p99_during_to_baseline_unkeyed": round(
+            busy["unkeyed"]["p99_ms"] / base["unkeyed"]["p99_ms"], 3),
+        "p99_during_to_baseline_keyed": round(
+            busy["keyed"]["p99_ms"] / base["keyed"]["p99_ms"], 3),
         "delete": {"records": job["progress"]["records_deleted"],
                    "accepted_to_done_s": round(elapsed, 2),
                    "job_started_at": started, "job_finished_at": finished,
@@ -152,13 +157,21 @@ def _measure(url: str, scratch: Path, records: int, seconds: float,
     }
 
 
-def _percentiles(seconds: list[float]) -> dict[str, Any]:
+def _percentiles(timed: list[tuple[bool, float]]) -> dict[str, Any]:
+    """Latency percentiles of every prediction, of the unkeyed ones (no
+    database touched: the version is cached) and of the keyed ones (each
+    stores a scored case: a write transaction)."""
     import numpy as np
 
-    values = np.array(seconds) * 1000.0
-    return {"predictions": len(seconds),
-            **{f"p{q}_ms": round(float(np.percentile(values, q)), 3) for q in (50, 90, 99)},
-            "max_ms": round(float(values.max()), 3)}
+    def summary(seconds: list[float]) -> dict[str, Any]:
+        values = np.array(seconds) * 1000.0
+        return {"predictions": len(seconds),
+                **{f"p{q}_ms": round(float(np.percentile(values, q)), 3) for q in (50, 90, 99)},
+                "max_ms": round(float(values.max()), 3)}
+
+    return {"all": summary([s for _, s in timed]),
+            "unkeyed": summary([s for keyed, s in timed if not keyed]),
+            "keyed": summary([s for keyed, s in timed if keyed])}
 
 
 def _bulk_load(url: str, records: int) -> None:
