@@ -263,6 +263,8 @@ SETTINGS: tuple[Setting, ...] = (
     Setting("KEELSON_CASE_RETENTION_DAYS", WORKER, 180.0, positive_number,
             "days a scored case waits for its outcome; older ones without an outcome are "
             "deleted by the worker, in batches"),
+    Setting("KEELSON_WORKER_DELETE_BATCH", WORKER, 2000, positive_whole_number,
+            "rows a model's delete job removes per transaction"),
     Setting("KEELSON_BENCH_POSTGRES_URL", TOOLS, None, text,
             "PostgreSQL server `keelson bench http`, `keelson bench worker` and `keelson "
             "bench cases` also measure on (in a scratch database; same as `--postgres-url`)"),

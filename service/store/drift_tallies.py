@@ -23,7 +23,7 @@ from numpy.typing import NDArray
 from sqlalchemy import func, insert, select, update
 from sqlalchemy.orm import Session
 
-from service.store.tables import DriftTallyRow, utcnow
+from service.store.tables import DriftTallyRow, VersionRow, utcnow
 
 COUNT = np.dtype("<i8")
 
@@ -44,9 +44,19 @@ class Tally:
 
 
 def write_tallies(session: Session, writer: str, tallies: Iterable[Tally]) -> None:
-    """Store each of ``tallies`` as ``writer``'s row (in the caller's transaction)."""
+    """Store each of ``tallies`` as ``writer``'s row (in the caller's transaction).
+
+    A tally of a version that is gone (its model was deleted while this
+    process still counted its predictions) is dropped: its row could not
+    reference the version, and a flush that failed on it would fail for every
+    model, every time."""
     now = utcnow()
+    tallies = list(tallies)
+    there = set(session.scalars(select(VersionRow.id).where(
+        VersionRow.id.in_({tally.version_id for tally in tallies}))))
     for tally in tallies:
+        if tally.version_id not in there:
+            continue
         key = (DriftTallyRow.model_id == tally.model_id,
                DriftTallyRow.version_id == tally.version_id,
                DriftTallyRow.bucket_start == tally.bucket_start,

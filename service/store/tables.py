@@ -99,6 +99,17 @@ class ModelRow(Base):
     records_train: Mapped[int] = mapped_column(BigInteger, default=0)
     records_holdout: Mapped[int] = mapped_column(BigInteger, default=0)
     created_at: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True), default=utcnow)
+    # Set once a delete was accepted: the name the model had. The row then
+    # carries a tombstone ``name`` (``tombstone_name``) that no request can
+    # address, so the model is gone at once and its name free for a new one;
+    # the row stays as the anchor of its delete job (service/worker/deletion.py).
+    deleted_name: Mapped[str | None] = mapped_column(String(64))
+
+
+def tombstone_name(model_id: int) -> str:
+    """The name a deleted model's row takes: unique, and never a valid model
+    name (``~`` is outside the name pattern), so lookups by name miss it."""
+    return f"~{model_id}"
 
 
 class TrainerRow(Base):
@@ -177,7 +188,7 @@ class VersionRow(Base):
 
 
 class JobRow(Base):
-    """A queued piece of work for a worker (today: a retrain)."""
+    """A queued piece of work for a worker: a retrain or a model's delete."""
 
     __tablename__ = "jobs"
     __table_args__ = (Index("ix_jobs_status_id", "status", "id"),)

@@ -5,7 +5,7 @@ from __future__ import annotations
 from collections.abc import Collection
 from typing import Any
 
-from sqlalchemy import select
+from sqlalchemy import func, select
 
 from service.errors import ConflictError, NotFoundError
 from service.store.database import Database, transaction
@@ -47,7 +47,9 @@ def get_job(db: Database, job_id: int, *, only: Collection[str] | None = None
     is not there, word for word as a job that does not exist."""
     with db.read() as session:
         row = session.execute(
-            select(JobRow, ModelRow.name, VersionRow.number)
+            # A deleted model's jobs show the name it had (see deletion.py).
+            select(JobRow, func.coalesce(ModelRow.deleted_name, ModelRow.name),
+                   VersionRow.number)
             .join(ModelRow, ModelRow.id == JobRow.model_id)
             .outerjoin(VersionRow, VersionRow.id == JobRow.version_id)
             .where(JobRow.id == job_id)

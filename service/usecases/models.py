@@ -59,7 +59,8 @@ def list_models(db: Database, *, limit: int, after: str | None = None,
     """Up to ``limit`` models named after ``after``, by name, and the name to
     ask after for the next page (None when there is none); only those named in
     ``only`` when given (a token limited to models)."""
-    query = select(ModelRow).order_by(ModelRow.name).limit(limit + 1)
+    query = (select(ModelRow).where(ModelRow.deleted_name.is_(None))
+             .order_by(ModelRow.name).limit(limit + 1))
     if only is not None:
         query = query.where(ModelRow.name.in_(sorted(only)))
     if after is not None:
@@ -74,7 +75,8 @@ def model_states(db: Database) -> list[dict[str, Any]]:
     """Every model as GET /v1/models answers it (the metrics read their counts,
     lags and active versions at scrape time), in three queries."""
     with db.read() as session:
-        return _views(session, list(session.scalars(select(ModelRow).order_by(ModelRow.name))))
+        return _views(session, list(session.scalars(
+            select(ModelRow).where(ModelRow.deleted_name.is_(None)).order_by(ModelRow.name))))
 
 
 def _views(session: Session, rows: list[ModelRow]) -> list[dict[str, Any]]:

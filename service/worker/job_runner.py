@@ -18,7 +18,9 @@ from sqlalchemy.orm import Session, sessionmaker
 
 from engine import TrainingCancelled
 from service.store.database import transaction
+from service.usecases.deletion import DELETE_JOB
 from service.versions.writes import Fenced
+from service.worker.deletion import run_delete
 from service.worker.faults import describe, is_expected, log_text
 from service.worker.jobs import fail_job, requeue_job, retry_job
 from service.worker.leasing import claim_job, renew_job
@@ -53,11 +55,11 @@ class JobRunner:
         self._next_poll = now + max(self.settings.poll_seconds, 1.0)
         with transaction(self.writes) as session:
             job = claim_job(session, self.worker_id, self.settings.lease_seconds)
-            job_id = None if job is None else job.id
+            job_id, kind = (None, "") if job is None else (job.id, job.kind)
         if job_id is None:
             return True
         log.info("job %s: claimed by %s", job_id, self.worker_id)
-        self._thread = threading.Thread(target=self._run, args=(job_id,),
+        self._thread = threading.Thread(target=self._run, args=(job_id, kind),
                                         name=f"job-{job_id}", daemon=True)
         self._thread.start()
         return True
@@ -67,15 +69,19 @@ class JobRunner:
         if self._thread is not None:
             self._thread.join()
 
-    def _run(self, job_id: int) -> None:
+    def _run(self, job_id: int, kind: str) -> None:
         lost = threading.Event()
         done = threading.Event()
         keeper = threading.Thread(target=self._keep_lease, args=(job_id, lost, done),
                                   daemon=True)
         keeper.start()
+        cancel = lambda: self.stop.is_set() or lost.is_set()  # noqa: E731
         try:
-            run_retrain(self.settings, self.reads, self.writes, job_id, self.worker_id,
-                        cancel=lambda: self.stop.is_set() or lost.is_set())
+            if kind == DELETE_JOB:
+                run_delete(self.settings, self.reads, self.writes, job_id, self.worker_id, cancel)
+            else:
+                run_retrain(self.settings, self.reads, self.writes, job_id, self.worker_id,
+                            cancel=cancel)
         except TrainingCancelled:
             if not lost.is_set():
                 requeue_job(self.writes, job_id, self.worker_id)

@@ -27,6 +27,7 @@ _KEYS = {
     "retry_seconds": "KEELSON_WORKER_RETRY_SECONDS",
     "retry_max_seconds": "KEELSON_WORKER_RETRY_MAX_SECONDS",
     "case_retention_days": "KEELSON_CASE_RETENTION_DAYS",
+    "delete_batch": "KEELSON_WORKER_DELETE_BATCH",
 }
 
 
@@ -59,6 +60,9 @@ class WorkerSettings:
     retry_max_seconds: float = _default("retry_max_seconds")
     # Scored cases without an outcome are deleted this many days after scoring.
     case_retention_days: float = _default("case_retention_days")
+    # A delete job's transactions stay short: this many rows each (versions,
+    # which hold snapshots, fewer: see service/worker/deletion.py).
+    delete_batch: int = _default("delete_batch")
 
     def __post_init__(self) -> None:
         if not 0 < self.retry_seconds <= self.retry_max_seconds:

@@ -201,3 +201,29 @@ def test_a_failed_flush_keeps_the_counts_for_the_next(sqlite_url, monkeypatch):
         summed = sum_tallies(session, model_id, version_id, EPOCH, sizes_of(app, version_id))
     assert summed.predictions == 9
     tally.close()
+
+
+def test_counts_of_a_deleted_model_are_dropped_at_the_flush(database_url):
+    """Predictions counted just before their model was deleted (and its
+    versions removed by the delete job) must not fail the flush: a failing
+    flush would keep failing, losing every model's counts."""
+    from sqlalchemy import delete as delete_rows
+
+    from service.store.tables import VersionRow
+
+    app = build_app(database_url, KEELSON_DRIFT_FLUSH_SECONDS=3600)
+    api = ApiClient(app)
+    version_id = pump_model_with_reference(api)
+    tally = get_drift_tally(app)
+    get_drift_references(app).load(version_id)
+    for row in pump_rows(5, seed=4):
+        api.request("GET", f"{PATH}?{predict_query(row)}", 200)
+    api.request("DELETE", "/v1/models/pump-risk?confirm=pump-risk", 202)
+    with get_database(app).write() as session:  # what the delete job ends with
+        session.execute(delete_rows(VersionRow).where(VersionRow.id == version_id))
+        session.commit()
+    assert tally.flush() == 1  # handed to the store, which drops it
+    with get_database(app).read() as session:
+        assert session.scalars(select(DriftTallyRow)).all() == []
+    assert tally.flush() == 0  # and not again
+    tally.close()

@@ -37,6 +37,7 @@ def request_for(method: str, rule: str, model: str, job: int) -> tuple[str, Any]
     row = ROWS[0]
     bodies: dict[tuple[str, str], Any] = {
         ("GET", "/v1/models/{}"): None,
+        ("DELETE", "/v1/models/{}"): None,
         ("GET", "/v1/models/{}/schema"): None,
         ("POST", "/v1/models/{}/records"): {"records": [
             {"key": "r-new", "features": row, "label": pump_rule(row)}]},
@@ -61,6 +62,8 @@ def request_for(method: str, rule: str, model: str, job: int) -> tuple[str, Any]
         path += "?" + predict_query(row)
     if path.endswith("/export"):
         path += "?format=onnx"
+    if method == "DELETE":
+        path += f"?confirm={model}"
     return path, body
 
 
@@ -124,7 +127,8 @@ def test_a_limited_token_reaches_its_models_and_no_other(any_api: ApiClient) -> 
         checked += 1
     assert everything(api.app) == before  # nothing changed
     assert checked >= 13
-    for method, rule, _ in app_routes(api.app):
+    # The delete last: after it, the model is gone for every other route.
+    for method, rule, _ in sorted(app_routes(api.app), key=lambda r: r[0] == "DELETE"):
         if "<model:name>" not in rule and "<int:job_id>" not in rule:
             continue
         path, body = request_for(method, rule, OWN, own_job)

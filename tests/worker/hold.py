@@ -43,20 +43,24 @@ def _postgres(db: Database) -> bool:
     return db.engine.dialect.name == "postgresql"
 
 
-def install_hold(db: Database, table: str, column: str) -> None:
-    """Create the hold table (empty: nothing held) and the stalling trigger."""
-    name = f"test_hold_{table}"
+def install_hold(db: Database, table: str, column: str, on: str = "INSERT") -> None:
+    """Create the hold table (empty: nothing held) and the stalling trigger;
+    ``on="DELETE"`` stalls deletes of rows whose ``column`` lies beyond the
+    held value instead."""
+    assert on in ("INSERT", "DELETE")
+    name = f"test_hold_{table}_{on.lower()}"
+    row = "NEW" if on == "INSERT" else "OLD"
     if _postgres(db):
         statements = [
             "CREATE TABLE IF NOT EXISTS test_hold (beyond bigint NOT NULL)",
             f"""CREATE FUNCTION {name}() RETURNS trigger AS $$
                 BEGIN
-                  IF EXISTS (SELECT 1 FROM test_hold WHERE NEW.{column} > beyond) THEN
+                  IF EXISTS (SELECT 1 FROM test_hold WHERE {row}.{column} > beyond) THEN
                     PERFORM pg_sleep({POSTGRES_SLEEP_SECONDS});
                   END IF;
-                  RETURN NEW;
+                  RETURN {row};
                 END $$ LANGUAGE plpgsql""",
-            f"""CREATE TRIGGER {name} AFTER INSERT ON {table}
+            f"""CREATE TRIGGER {name} AFTER {on} ON {table}
                 FOR EACH ROW EXECUTE FUNCTION {name}()""",
         ]
     else:
@@ -66,8 +70,8 @@ def install_hold(db: Database, table: str, column: str) -> None:
             "DELETE FROM test_hold_rows",
             "WITH RECURSIVE c(n) AS (SELECT 1 UNION ALL SELECT n + 1 FROM c WHERE n < 320) "
             "INSERT INTO test_hold_rows SELECT n FROM c",
-            f"""CREATE TRIGGER {name} AFTER INSERT ON {table}
-                WHEN EXISTS (SELECT 1 FROM test_hold WHERE NEW.{column} > beyond)
+            f"""CREATE TRIGGER {name} AFTER {on} ON {table}
+                WHEN EXISTS (SELECT 1 FROM test_hold WHERE {row}.{column} > beyond)
                 BEGIN SELECT count(*) FROM test_hold_rows a, test_hold_rows b,
                                             test_hold_rows c, test_hold_rows d;
                 END""",

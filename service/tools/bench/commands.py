@@ -132,4 +132,22 @@ def bench_export(as_json: bool, records: int, postgres_url: str | None) -> None:
          as_json)
 
 
+@bench.command("delete")
+@click.option("--json", "as_json", is_flag=True, help="One JSON object.")
+@click.option("--records", type=click.IntRange(min=1000), default=1_000_000, show_default=True,
+              help="Records of the model that is deleted.")
+@click.option("--seconds", type=click.FloatRange(min=1.0), default=20.0, show_default=True,
+              help="Seconds of baseline predictions.")
+@click.option("--postgres-url", default=_bench_postgres_url,
+              help="Also measure on this PostgreSQL server (a scratch database is made) "
+                   "[env KEELSON_BENCH_POSTGRES_URL].")
+def bench_delete(as_json: bool, records: int, seconds: float, postgres_url: str | None
+                 ) -> None:
+    """Other models' prediction latency while a model of many records is deleted."""
+    from service.tools.bench.delete import run_delete_bench
+
+    emit(run_delete_bench(records=records, seconds=seconds, postgres_url=postgres_url,
+                          progress=_progress), as_json)
+
+
 bench.add_command(bench_track_record)

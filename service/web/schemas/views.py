@@ -142,6 +142,17 @@ class RetrainRequestSchema(Schema):
     warm_start = StrictBoolean(load_default=False)
 
 
+class DeleteModelQuerySchema(Schema):
+    """DELETE /v1/models/{name} query."""
+
+    class Meta:
+        unknown = RAISE
+
+    confirm = fields.String(required=True, metadata={
+        "description": "The model's name again, once: a delete needs the name twice "
+                       "(any other value is refused with 422)."})
+
+
 class JobSchema(Schema):
     id = fields.Integer(required=True)
     model = fields.String(required=True)

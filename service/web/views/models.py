@@ -1,4 +1,5 @@
-"""/v1/models: create (admin), list, show and publish a model's own schema (predict)."""
+"""/v1/models: create and delete (admin), list, show and publish a model's own
+schema (predict)."""
 
 from __future__ import annotations
 
@@ -10,7 +11,7 @@ from flask import current_app, request
 from marshmallow import RAISE
 
 from service.errors import InvalidInputError
-from service.usecases import models
+from service.usecases import deletion, models
 from service.usecases.model_limits import ModelLimits, spec_bytes_error
 from service.usecases.predictions import find_model
 from service.web.auth import filters_by_model, requires, token_models
@@ -19,7 +20,13 @@ from service.web.schemas.json_schema import limits, model_documents
 from service.web.schemas.paging import ModelPageSchema
 from service.web.schemas.rules import rules_of
 from service.web.schemas.spec import ModelSpecSchema
-from service.web.schemas.views import ModelDocumentsSchema, ModelListSchema, ModelSchema
+from service.web.schemas.views import (
+    DeleteModelQuerySchema,
+    JobEnvelopeSchema,
+    ModelDocumentsSchema,
+    ModelListSchema,
+    ModelSchema,
+)
 from service.web.views.base import Blueprint
 
 blueprint = Blueprint("models", __name__, url_prefix="/v1/models", description="Models.")
@@ -71,6 +78,25 @@ def list_models(limit: int, after: str | None = None) -> dict[str, Any]:
 def get_model(name: str) -> dict[str, Any]:
     """One model: spec, active version, record counts and trainer position."""
     return models.get_model(get_database(), name)
+
+
+@blueprint.route("/<model:name>", methods=["DELETE"])
+@requires("admin")
+@blueprint.arguments(DeleteModelQuerySchema, location="query", as_kwargs=True, unknown=RAISE)
+@blueprint.response(202, JobEnvelopeSchema, headers={"Location": {"schema": {"type": "string"}}})
+def delete_model(name: str, confirm: str | None = None
+                 ) -> tuple[dict[str, Any], dict[str, str]]:
+    """Delete the model, its records, cases, versions and jobs (give the name
+    twice: `?confirm=` repeats it). It is gone at once; a job removes its rows:
+    follow the Location header. Asking again answers with the same job."""
+    # Once, and equal: several confirms are not a choice among names.
+    if confirm != name or len(request.args.getlist("confirm")) > 1:
+        raise InvalidInputError(
+            "Deleting a model needs its name twice: add ?confirm= with the model's name.",
+            errors={"query.confirm": ["Must be given once, equal to the model's name."]})
+    job = deletion.request_delete(get_database(), name)
+    get_version_cache().forget(name)  # this process serves it no more, now
+    return {"job": job}, {"Location": f"/v1/jobs/{job['id']}"}
 
 
 @blueprint.route("/<model:name>/schema", methods=["GET"])
