@@ -10,6 +10,7 @@ from marshmallow import RAISE, Schema, fields, validate
 
 from service.usecases.exports import EXPORT_FORMATS
 from service.web.schemas.fields import StrictBoolean
+from service.web.schemas.history import reason_field
 from service.web.schemas.paging import NEXT
 from service.web.schemas.rules import RecordRules, batch_schema_class
 from service.web.schemas.spec import ModelSpecSchema
@@ -33,6 +34,10 @@ class TrainerStateSchema(Schema):
         "lineage is promoted."})
     retry_at = fields.DateTime(metadata={
         "description": "When the worker tries this model again (with `error`)."})
+    paused = fields.Boolean(required=True, metadata={
+        "description": "Whether an admin paused online training: records are still "
+                       "stored (lag grows) and predictions served."})
+    paused_at = fields.DateTime(metadata={"description": "Since when (when paused)."})
 
 
 class ModelSchema(ModelSpecSchema):
@@ -114,6 +119,7 @@ class RetrainRequestSchema(Schema):
         unknown = RAISE
 
     warm_start = StrictBoolean(load_default=False)
+    reason = reason_field()
 
 
 class JobSchema(Schema):

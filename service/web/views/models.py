@@ -13,7 +13,7 @@ from service.errors import InvalidInputError
 from service.usecases import models
 from service.usecases.model_limits import ModelLimits, spec_bytes_error
 from service.usecases.predictions import find_model
-from service.web.auth import filters_by_model, requires, token_models
+from service.web.auth import filters_by_model, requires, token_models, token_name
 from service.web.extensions import get_database, get_version_cache
 from service.web.schemas.json_schema import limits, model_documents
 from service.web.schemas.paging import ModelPageSchema
@@ -49,7 +49,7 @@ def _spec_bytes_bounded(view: Callable[..., Any]) -> Callable[..., Any]:
 def create_model(spec: dict[str, Any]) -> dict[str, Any]:
     """Create a model from its spec (size limits: docs/http-api.md, "Models")."""
     return models.create_model(get_database(), spec,
-                               ModelLimits.from_config(current_app.config))
+                               ModelLimits.from_config(current_app.config), token=token_name())
 
 
 @blueprint.route("", methods=["GET"])

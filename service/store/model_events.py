@@ -1,0 +1,45 @@
+"""A model's history: adding an event, in the transaction of the act it records.
+
+Every event carries the model's last record sequence at that moment
+(``at_seq``): a settings change takes effect after it, so the history says
+which records were learned under which settings. One index range read
+(``ix_records_model_id_seq``), paid only by admin acts and versions.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from typing import Any
+
+from sqlalchemy import func, select
+from sqlalchemy.orm import Session
+
+from service.store.tables import ModelEventRow, RecordRow
+
+# The kinds of event a history holds (docs/http-api.md, "History").
+CREATED = "created"
+SETTINGS_CHANGED = "settings_changed"
+PROMOTED = "promoted"
+RETRAIN_REQUESTED = "retrain_requested"
+PAUSED = "paused"
+RESUMED = "resumed"
+KINDS = (CREATED, SETTINGS_CHANGED, PROMOTED, RETRAIN_REQUESTED, PAUSED, RESUMED)
+
+
+def last_seq(session: Session, model_id: int) -> int:
+    """The model's last record sequence (0 before any record)."""
+    found = session.scalar(select(func.max(RecordRow.seq)).where(RecordRow.model_id == model_id))
+    return int(found or 0)
+
+
+def add_event(session: Session, model_id: int, kind: str, *, token: str | None = None,
+              reason: str | None = None, details: Mapping[str, Any] | None = None,
+              at_seq: int | None = None) -> ModelEventRow:
+    """Add one event (the caller's transaction commits it with the act)."""
+    if kind not in KINDS:
+        raise ValueError(f"unknown event kind {kind!r}")
+    event = ModelEventRow(model_id=model_id, kind=kind, token=token, reason=reason,
+                          details=dict(details or {}),
+                          at_seq=last_seq(session, model_id) if at_seq is None else at_seq)
+    session.add(event)
+    return event
