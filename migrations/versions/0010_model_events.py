@@ -1,4 +1,5 @@
-"""a model's history (model_events) and pausing its online training
+"""a model's history (model_events), pausing its online training, and the
+settings position each version was trained under
 
 Revision ID: 0010
 Revises: 0009
@@ -38,9 +39,13 @@ def upgrade() -> None:
     # batch mode: SQLite alters a table by copying it (Alembic "batch migrations").
     with op.batch_alter_table("trainers") as batch:
         batch.add_column(sa.Column("paused_at", sa.DateTime(timezone=True), nullable=True))
+    with op.batch_alter_table("versions") as batch:
+        batch.add_column(sa.Column("settings_from_seq", sa.BigInteger(), nullable=True))
 
 
 def downgrade() -> None:
+    with op.batch_alter_table("versions") as batch:
+        batch.drop_column("settings_from_seq")
     with op.batch_alter_table("trainers") as batch:
         batch.drop_column("paused_at")
     op.drop_index("ix_model_events_model_id_id", table_name="model_events")

@@ -26,6 +26,37 @@ RESUMED = "resumed"
 KINDS = (CREATED, SETTINGS_CHANGED, PROMOTED, RETRAIN_REQUESTED, PAUSED, RESUMED)
 
 
+# The settings a change may touch; an event records them whole, as they are
+# from its position on (service/usecases/settings.py).
+SETTINGS_KEYS = ("promotion", "training", "alarm")
+
+
+def settings_of(spec: Mapping[str, Any]) -> dict[str, Any]:
+    return {key: spec[key] for key in SETTINGS_KEYS if key in spec}
+
+
+def settings_changes(session: Session, model_id: int, after_id: int = 0
+                     ) -> list[tuple[int, int, dict[str, Any]]]:
+    """(event id, at_seq, settings) of the model's settings changes after
+    event ``after_id``, in the order they were made."""
+    rows = session.execute(
+        select(ModelEventRow.id, ModelEventRow.at_seq, ModelEventRow.details)
+        .where(ModelEventRow.model_id == model_id, ModelEventRow.id > after_id,
+               ModelEventRow.kind == SETTINGS_CHANGED)
+        .order_by(ModelEventRow.id))
+    return [(int(i), int(at), dict(details["settings"])) for i, at, details in rows]
+
+
+def created_settings(session: Session, model_id: int) -> dict[str, Any] | None:
+    """The settings the model was created with (None for a model created
+    before its history was kept)."""
+    details = session.scalar(
+        select(ModelEventRow.details)
+        .where(ModelEventRow.model_id == model_id, ModelEventRow.kind == CREATED)
+        .order_by(ModelEventRow.id).limit(1))
+    return None if details is None or "settings" not in details else dict(details["settings"])
+
+
 def last_seq(session: Session, model_id: int) -> int:
     """The model's last record sequence (0 before any record)."""
     found = session.scalar(select(func.max(RecordRow.seq)).where(RecordRow.model_id == model_id))

@@ -175,6 +175,10 @@ class VersionRow(Base):
     metrics: Mapped[dict[str, Any]]
     parent_id: Mapped[int | None] = mapped_column(ForeignKey("versions.id", ondelete="SET NULL"))
     job_id: Mapped[int | None] = mapped_column(Integer)
+    # The record position of the settings change this version was trained
+    # under (0: the settings it was created with; None: made before settings
+    # could change). The change itself is in the model's history.
+    settings_from_seq: Mapped[int | None] = mapped_column(BigInteger)
     created_at: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True), default=utcnow)
     promoted_at: Mapped[dt.datetime | None] = mapped_column(DateTime(timezone=True))
 

@@ -12,7 +12,7 @@ from sqlalchemy.orm import Session
 import engine
 from service.errors import ConflictError, InvalidInputError
 from service.store.database import Database, transaction
-from service.store.model_events import CREATED, add_event
+from service.store.model_events import CREATED, add_event, settings_of
 from service.store.tables import ModelRow, RecordRow, TrainerRow, VersionRow
 from service.usecases.common import find_model, model_view
 from service.usecases.model_limits import ModelLimits, size_errors
@@ -43,7 +43,8 @@ def create_model(db: Database, validated: Mapping[str, Any], limits: ModelLimits
             session.add(row)
             session.flush()
             session.add(TrainerRow(model_id=row.id, cursor=0))
-            add_event(session, row.id, CREATED, token=token, at_seq=0)
+            add_event(session, row.id, CREATED, token=token, at_seq=0,
+                      details={"settings": settings_of(spec)})
     except IntegrityError as exc:  # a concurrent create won the race
         raise taken from exc
     return model_view(row, active_version=None, cursor=0, lag=0)

@@ -23,6 +23,7 @@ _COLUMNS = (
     VersionRow.id, VersionRow.number, VersionRow.origin, VersionRow.status,
     VersionRow.records_seen, VersionRow.cursor, VersionRow.metrics,
     VersionRow.created_at, VersionRow.promoted_at, _Parent.number.label("parent"),
+    VersionRow.settings_from_seq,
 )
 
 
@@ -37,6 +38,7 @@ def version_view(row: Row[Any]) -> dict[str, Any]:
         "created_at": as_utc(row.created_at),
         "promoted_at": as_utc(row.promoted_at),
         "parent": row.parent,
+        "settings_from_seq": row.settings_from_seq,
     }
 
 

@@ -43,6 +43,7 @@ class NewVersion:
     metrics: dict[str, Any]
     parent_id: int | None
     job_id: int | None = None
+    settings_from_seq: int | None = None
 
 
 def lock_trainer(session: Session, model_id: int) -> TrainerRow:
@@ -84,6 +85,7 @@ def insert_version(session: Session, model_id: int, new: NewVersion) -> VersionR
         metrics=new.metrics,
         parent_id=new.parent_id,
         job_id=new.job_id,
+        settings_from_seq=new.settings_from_seq,
     )
     session.add(version)
     session.flush()

@@ -95,6 +95,10 @@ class VersionSchema(Schema):
     promoted_at = fields.DateTime(allow_none=True, required=True)
     parent = fields.Integer(allow_none=True, required=True,
                             metadata={"description": "Number of the version it grew from."})
+    settings_from_seq = fields.Integer(allow_none=True, required=True, metadata={
+        "description": "The record position of the settings change it was trained under "
+                       "(its `at_seq` in the model's history; 0: the settings it was created "
+                       "with; null: made before settings could change)."})
 
 
 class VersionListSchema(Schema):

@@ -1,4 +1,5 @@
-"""/v1/models: create (admin), list, show and publish a model's own schema (predict)."""
+"""/v1/models: create and change settings (admin), list, show and publish a
+model's own schema (predict)."""
 
 from __future__ import annotations
 
@@ -10,7 +11,7 @@ from flask import current_app, request
 from marshmallow import RAISE
 
 from service.errors import InvalidInputError
-from service.usecases import models
+from service.usecases import models, settings
 from service.usecases.model_limits import ModelLimits, spec_bytes_error
 from service.usecases.predictions import find_model
 from service.web.auth import filters_by_model, requires, token_models, token_name
@@ -18,6 +19,7 @@ from service.web.extensions import get_database, get_version_cache
 from service.web.schemas.json_schema import limits, model_documents
 from service.web.schemas.paging import ModelPageSchema
 from service.web.schemas.rules import rules_of
+from service.web.schemas.settings import ModelPatchSchema
 from service.web.schemas.spec import ModelSpecSchema
 from service.web.schemas.views import ModelDocumentsSchema, ModelListSchema, ModelSchema
 from service.web.views.base import Blueprint
@@ -70,6 +72,25 @@ def list_models(limit: int, after: str | None = None) -> dict[str, Any]:
 @blueprint.response(200, ModelSchema)
 def get_model(name: str) -> dict[str, Any]:
     """One model: spec, active version, record counts and trainer position."""
+    return models.get_model(get_database(), name)
+
+
+@blueprint.route("/<model:name>", methods=["PATCH"])
+@requires("admin")
+@_spec_bytes_bounded
+@blueprint.arguments(ModelPatchSchema)
+@blueprint.response(200, ModelSchema)
+def change_model(changes: dict[str, Any], name: str) -> dict[str, Any]:
+    """Change settings that keep the network and the fields: promotion,
+    training options for the steps and retrains to come, checkpoint interval,
+    alarm. They apply from the record after the model's last one now (the
+    history's `at_seq`); fields, classes, layers, activation, task or target
+    answer 422 (a new model is needed)."""
+    reason = changes.pop("reason", None)
+    settings.change_settings(get_database(), name, changes,
+                             ModelLimits.from_config(current_app.config),
+                             token=token_name(), reason=reason)
+    get_version_cache().forget(name)  # this process reads the new settings at once
     return models.get_model(get_database(), name)
 
 
