@@ -35,7 +35,7 @@ class ModelPatchSchema(Schema):
         unknown = RAISE
 
     promotion = ModelSpecSchema._declared_fields["promotion"]
-    training = fields.Nested(TrainingSchema)
+    training = fields.Nested(TrainingSchema(exclude=FIXED_TRAINING))
     alarm = fields.Nested(AlarmSchema)
     reason = reason_field()
 
