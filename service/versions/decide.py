@@ -9,7 +9,7 @@ be tested, and its reasons recorded, without a database.
 from __future__ import annotations
 
 from collections.abc import Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any
 
 from service.versions.policy import holdout_value, primary_metric, should_promote
@@ -25,7 +25,8 @@ class Promotion:
     for the new version and for the active one (None when there was none)."""
 
     over: int | None
-    figures: Mapping[str, Any] | None = None
+    # What the decision is a record of, not part of it: equal decisions compare equal.
+    figures: Mapping[str, Any] | None = field(default=None, compare=False)
 
 
 @dataclass(frozen=True)
