@@ -48,13 +48,27 @@ def settings_changes(session: Session, model_id: int, after_id: int = 0
 
 
 def created_settings(session: Session, model_id: int) -> dict[str, Any] | None:
-    """The settings the model was created with (None for a model created
-    before its history was kept)."""
+    """The settings the model was created with: its ``created`` event's, or
+    for a model created before its history was kept, its first change's with
+    that change undone (None when it has neither: its spec is as created)."""
     details = session.scalar(
         select(ModelEventRow.details)
-        .where(ModelEventRow.model_id == model_id, ModelEventRow.kind == CREATED)
+        .where(ModelEventRow.model_id == model_id,
+               ModelEventRow.kind.in_((CREATED, SETTINGS_CHANGED)))
         .order_by(ModelEventRow.id).limit(1))
-    return None if details is None or "settings" not in details else dict(details["settings"])
+    if details is None or "settings" not in details:
+        return None
+    settings = {key: dict(value) if isinstance(value, dict) else value
+                for key, value in details["settings"].items()}
+    for path, change in details.get("changes", {}).items():  # a change: undo it
+        key, _, inner = path.partition(".")
+        if inner:
+            settings[key][inner] = change["from"]
+        elif change["from"] is None:  # the spec had no such section then
+            settings.pop(key, None)
+        else:
+            settings[key] = change["from"]
+    return settings
 
 
 def last_seq(session: Session, model_id: int) -> int:

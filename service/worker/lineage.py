@@ -239,9 +239,8 @@ class OnlineLineage:
             self._last_change_id = changes[-1][0]
         in_effect = [change for change in changes if change[1] <= self.cursor]
         settings = in_effect[-1][2] if in_effect else created_settings(session, self.model_id)
-        if settings is None:
-            return  # a model from before its history: its spec as stored
-        self._use_settings(settings, in_effect[-1][1] if in_effect else 0)
+        if settings is not None:  # None: a model from before its history, as stored
+            self._use_settings(settings, in_effect[-1][1] if in_effect else 0)
         self._pending = [change for change in changes if change[1] > self.cursor]
 
     def _read_changes(self, session: Session) -> None:

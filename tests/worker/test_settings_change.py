@@ -92,3 +92,33 @@ def test_records_before_a_change_learn_with_the_old_options_after_with_the_new(
     assert made[-1].settings_from_seq == third
     assert all(v.settings_from_seq in (0, first, second, third) for v in made)
     db.engine.dispose()
+
+
+def test_a_model_from_before_the_history_applies_its_first_change_in_place(
+        database_url: str) -> None:
+    # Made before migration 0010: no "created" event; its later change still
+    # waits for its position.
+    from sqlalchemy import delete
+
+    from service.store.tables import ModelEventRow
+    db = database(database_url)
+    spec = numeric_spec("pumps", ["x", "z"], classes=["ok", "failed"],
+                        training={"warmup_records": 20, "holdout_fraction": 0.0})
+    model_id = new_model(db, spec)
+    with db.write() as session:
+        session.execute(delete(ModelEventRow))
+        session.commit()
+    send(db, "pumps", rows(50))
+    at = change(db, learning_rate=0.2)
+    send(db, "pumps", rows(30, start=50))
+    with worker_thread(database_url):
+        wait_until(lambda: caught_up(db, model_id))
+    features, labels = train_records(db, model_id, after=0)
+    by_hand = Learner.create(spec, warmup=features[:20], warmup_labels=labels[:20])
+    for lower, upper in ((0, at), (at, None)):
+        if lower:
+            by_hand.retune({"learning_rate": 0.2})
+        part, part_labels = train_records(db, model_id, after=lower, upto=upper)
+        by_hand.learn(by_hand.encode(part), by_hand.encode_labels(part_labels))
+    assert np.array_equal(head(db, model_id).network.params, by_hand.network.params)
+    db.engine.dispose()
