@@ -59,6 +59,24 @@ class Learner:
         self.optimizer = optimizer
         self._trainer = OnlineTrainer(network, optimizer, self.loss)
 
+    def retune(self, training: Mapping[str, Any]) -> None:
+        """Learn on with other training options (a settings change): the
+        weights, the optimizer's state and step count stay; only the options
+        (rate, schedule, momentum, clipping, ...) change. The same result as
+        snapshotting, editing the spec's training and loading it back, so a
+        replay can apply a change at the same record. Retuning to the options
+        it has changes nothing. InvalidInputError for another optimizer kind
+        (its state would not carry over)."""
+        spec = apply_defaults({**self.spec, "training": {**self.spec["training"], **training}})
+        optimizer = make_optimizer(self.network.params.size, spec["training"])
+        if optimizer.kind != self.optimizer.kind:
+            raise InvalidInputError("the optimizer cannot change during training",
+                                    field="training.optimizer")
+        state, steps = self.optimizer.state_arrays(), self.optimizer.step_count
+        self.spec, self._spec_hash = spec, None
+        self._install(self.network, optimizer)
+        optimizer.load_state(state, steps)
+
     # ----------------------------------------------------------------- creation
     @classmethod
     def create(cls, spec: Mapping[str, Any], warmup: Iterable[Mapping[str, Any]] = (),

@@ -140,6 +140,9 @@ class TrainerRow(Base):
     fault: Mapped[str | None] = mapped_column(Text)
     faults: Mapped[int] = mapped_column(Integer, default=0, server_default="0")
     retry_at: Mapped[dt.datetime | None] = mapped_column(DateTime(timezone=True))
+    # Set while an admin has paused online training: no worker leases the
+    # model (leasing.py), records still arrive and wait.
+    paused_at: Mapped[dt.datetime | None] = mapped_column(DateTime(timezone=True))
     updated_at: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True), default=utcnow)
 
     def clear_fault(self) -> None:
@@ -183,8 +186,32 @@ class VersionRow(Base):
     metrics: Mapped[dict[str, Any]]
     parent_id: Mapped[int | None] = mapped_column(ForeignKey("versions.id", ondelete="SET NULL"))
     job_id: Mapped[int | None] = mapped_column(Integer)
+    # The record position of the settings change this version was trained
+    # under (0: the settings it was created with; None: made before settings
+    # could change). The change itself is in the model's history.
+    settings_from_seq: Mapped[int | None] = mapped_column(BigInteger)
     created_at: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True), default=utcnow)
     promoted_at: Mapped[dt.datetime | None] = mapped_column(DateTime(timezone=True))
+
+
+class ModelEventRow(Base):
+    """One entry of a model's history (GET /v1/models/{name}/history): what
+    happened (``kind``), who did it (the token's name; None for the worker's
+    own acts), why (the admin's optional reason), and the model's last record
+    sequence at that moment (``at_seq``: where a settings change takes
+    effect). Written in the transaction of the act it records."""
+
+    __tablename__ = "model_events"
+    __table_args__ = (Index("ix_model_events_model_id_id", "model_id", "id"),)
+
+    id: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=True)
+    model_id: Mapped[int] = mapped_column(ForeignKey("models.id", ondelete="CASCADE"))
+    kind: Mapped[str] = mapped_column(String(32))
+    token: Mapped[str | None] = mapped_column(String(100))
+    reason: Mapped[str | None] = mapped_column(Text)
+    at_seq: Mapped[int] = mapped_column(BigInteger)
+    details: Mapped[dict[str, Any]]
+    created_at: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True), default=utcnow)
 
 
 class JobRow(Base):

@@ -59,12 +59,16 @@ def as_utc(moment: dt.datetime | None) -> dt.datetime | None:
 def model_view(
     row: ModelRow, *, active_version: int | None, cursor: int, lag: int,
     error: str | None = None, retry_at: dt.datetime | None = None,
+    paused_at: dt.datetime | None = None,
 ) -> dict[str, Any]:
     """GET /v1/models/{name}: the stored spec and the model's state; the
     trainer's ``error`` only when it cannot train (records then wait), with
     ``retry_at`` when the worker tries again by itself (a back-off) and without
-    it when the lineage stopped until a promotion."""
-    trainer: dict[str, Any] = {"cursor": cursor, "lag": lag}
+    it when the lineage stopped until a promotion; ``paused`` while an admin
+    has paused online training (with ``paused_at``)."""
+    trainer: dict[str, Any] = {"cursor": cursor, "lag": lag, "paused": paused_at is not None}
+    if paused_at is not None:
+        trainer["paused_at"] = as_utc(paused_at)
     if error is not None:
         trainer["error"] = error
     if retry_at is not None:

@@ -9,6 +9,7 @@ from sqlalchemy import func, select
 
 from service.errors import ConflictError, NotFoundError
 from service.store.database import Database, transaction
+from service.store.model_events import RETRAIN_REQUESTED, add_event
 from service.store.tables import JobRow, ModelRow, VersionRow
 from service.usecases.common import as_utc, find_model
 
@@ -28,7 +29,8 @@ def job_view(job: JobRow, model_name: str, version_number: int | None) -> dict[s
     }
 
 
-def request_retrain(db: Database, name: str, *, warm_start: bool) -> dict[str, Any]:
+def request_retrain(db: Database, name: str, *, warm_start: bool, token: str | None = None,
+                    reason: str | None = None) -> dict[str, Any]:
     """Queue a full retrain for a worker. A warm start continues from the
     active version, so it needs one (ConflictError otherwise)."""
     with transaction(db.write) as session:
@@ -38,6 +40,9 @@ def request_retrain(db: Database, name: str, *, warm_start: bool) -> dict[str, A
         job = JobRow(model_id=model.id, kind="retrain", status="queued",
                      params={"warm_start": warm_start}, attempts=0)
         session.add(job)
+        session.flush()
+        add_event(session, model.id, RETRAIN_REQUESTED, token=token, reason=reason,
+                  details={"job": job.id, "warm_start": warm_start})
     return job_view(job, model.name, None)
 
 

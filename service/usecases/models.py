@@ -12,14 +12,15 @@ from sqlalchemy.orm import Session
 import engine
 from service.errors import ConflictError, InvalidInputError
 from service.store.database import Database, transaction
+from service.store.model_events import CREATED, add_event, settings_of
 from service.store.tables import ModelRow, RecordRow, TrainerRow, VersionRow
 from service.usecases.common import find_model, model_view
 from service.usecases.model_limits import ModelLimits, size_errors
 from service.usecases.predictions import QUERY_NAMES
 
 
-def create_model(db: Database, validated: Mapping[str, Any], limits: ModelLimits
-                 ) -> dict[str, Any]:
+def create_model(db: Database, validated: Mapping[str, Any], limits: ModelLimits,
+                 *, token: str | None = None) -> dict[str, Any]:
     """Store a model from a validated spec, defaults filled by the engine, with
     its online trainer at cursor 0. InvalidInputError when it breaks a size
     limit, ConflictError when the name is taken."""
@@ -42,6 +43,8 @@ def create_model(db: Database, validated: Mapping[str, Any], limits: ModelLimits
             session.add(row)
             session.flush()
             session.add(TrainerRow(model_id=row.id, cursor=0))
+            add_event(session, row.id, CREATED, token=token, at_seq=0,
+                      details={"settings": settings_of(spec)})
     except IntegrityError as exc:  # a concurrent create won the race
         raise taken from exc
     return model_view(row, active_version=None, cursor=0, lag=0)
@@ -93,10 +96,10 @@ def _views(session: Session, rows: list[ModelRow]) -> list[dict[str, Any]]:
         ).all()
     )
     trainers = {
-        model_id: (cursor, error or fault, retry_at)
-        for model_id, cursor, error, fault, retry_at in session.execute(
+        model_id: (cursor, error or fault, retry_at, paused_at)
+        for model_id, cursor, error, fault, retry_at, paused_at in session.execute(
             select(TrainerRow.model_id, TrainerRow.cursor, TrainerRow.error,
-                   TrainerRow.fault, TrainerRow.retry_at)
+                   TrainerRow.fault, TrainerRow.retry_at, TrainerRow.paused_at)
             .where(TrainerRow.model_id.in_(ids))
         ).all()
     }
@@ -111,10 +114,11 @@ def _views(session: Session, rows: list[ModelRow]) -> list[dict[str, Any]]:
     )
     views = []
     for row in rows:
-        cursor, error, retry_at = trainers.get(row.id, (0, None, None))
+        cursor, error, retry_at, paused_at = trainers.get(row.id, (0, None, None, None))
         views.append(model_view(row, active_version=active.get(row.id), cursor=cursor,
                                 lag=lags.get(row.id, 0), error=error,
-                                retry_at=None if error is None else retry_at))
+                                retry_at=None if error is None else retry_at,
+                                paused_at=paused_at))
         clashes = reserved_name_clashes(row.spec)
         if clashes:
             views[-1]["reserved_name_clashes"] = clashes

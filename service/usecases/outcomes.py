@@ -28,7 +28,7 @@ from service.errors import ConflictError, InvalidInputError
 from service.store.tables import ModelRow, ScoredCaseRow, utcnow
 from service.usecases.cases import find_cases
 from service.usecases.common import as_utc, find_model
-from service.usecases.records import ModelChangedError, store_records
+from service.usecases.records import ModelChangedError, same_record_shape, store_records
 from service.usecases.track_record import JoinedOutcome, record_outcomes
 
 NAMED_IN_DETAIL = 10  # keys named in a problem's detail (its errors name all)
@@ -69,7 +69,7 @@ def ingest_outcomes(sessions: sessionmaker[Session] | Session, model_name: str,
     session = sessions() if isinstance(sessions, sessionmaker) else sessions
     try:
         locked = find_model(session, model_name, lock=True)
-        if locked.id != checked.model_id or locked.spec != checked.spec:
+        if locked.id != checked.model_id or not same_record_shape(locked.spec, checked.spec):
             raise ModelChangedError(
                 f"Model {model_name!r} changed while its outcomes were checked; nothing "
                 "was stored. Send them again.", headers={"Retry-After": "0"})

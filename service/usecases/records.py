@@ -55,6 +55,15 @@ class ModelChangedError(ConflictError):
     """The model was replaced after its records were checked: nothing stored."""
 
 
+# What a record is checked against; settings (PATCH /v1/models/{name}) may
+# change under a check without making it stale.
+RECORD_SHAPE = ("task", "target", "classes", "features")
+
+
+def same_record_shape(spec: Mapping[str, Any], other: Mapping[str, Any]) -> bool:
+    return all(spec.get(key) == other.get(key) for key in RECORD_SHAPE)
+
+
 def ingest_records(
     sessions: sessionmaker[Session] | Session, model_name: str, checked: CheckedRecords
 ) -> IngestResult:
@@ -70,7 +79,7 @@ def ingest_records(
     session = sessions() if isinstance(sessions, sessionmaker) else sessions
     try:
         locked = find_model(session, model_name, lock=True)
-        if locked.id != checked.model_id or locked.spec != checked.spec:
+        if locked.id != checked.model_id or not same_record_shape(locked.spec, checked.spec):
             raise ModelChangedError(
                 f"Model {model_name!r} changed while its records were checked; nothing "
                 "was stored. Send them again.", headers={"Retry-After": "0"})

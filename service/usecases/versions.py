@@ -13,6 +13,7 @@ from sqlalchemy.orm import Session, aliased, defer
 
 from service.errors import NotFoundError
 from service.store.database import Database, transaction
+from service.store.model_events import PROMOTED, add_event
 from service.store.tables import VersionRow
 from service.usecases.common import as_utc, find_model
 from service.versions.promote import promote
@@ -22,6 +23,7 @@ _COLUMNS = (
     VersionRow.id, VersionRow.number, VersionRow.origin, VersionRow.status,
     VersionRow.records_seen, VersionRow.cursor, VersionRow.metrics,
     VersionRow.created_at, VersionRow.promoted_at, _Parent.number.label("parent"),
+    VersionRow.settings_from_seq,
 )
 
 
@@ -36,6 +38,7 @@ def version_view(row: Row[Any]) -> dict[str, Any]:
         "created_at": as_utc(row.created_at),
         "promoted_at": as_utc(row.promoted_at),
         "parent": row.parent,
+        "settings_from_seq": row.settings_from_seq,
     }
 
 
@@ -68,8 +71,10 @@ def get_version(db: Database, name: str, number: int) -> dict[str, Any]:
         return _one(session, model.id, name, number)
 
 
-def promote_version(db: Database, name: str, number: int) -> dict[str, Any]:
-    """Make version ``number`` the active one (idempotent for the active one)."""
+def promote_version(db: Database, name: str, number: int, *, token: str | None = None,
+                    reason: str | None = None) -> dict[str, Any]:
+    """Make version ``number`` the active one (idempotent for the active one:
+    promoting it again changes nothing and records nothing)."""
     with transaction(db.write) as session:
         model = find_model(session, name, lock=True)
         version = session.scalars(
@@ -80,7 +85,11 @@ def promote_version(db: Database, name: str, number: int) -> dict[str, Any]:
         if version is None:
             raise NotFoundError(f"Model {name!r} has no version {number}.")
         if model.active_version_id != version.id:
+            replaced = None if model.active_version_id is None else session.scalar(
+                select(VersionRow.number).where(VersionRow.id == model.active_version_id))
             promote(session, model, version)
+            add_event(session, model.id, PROMOTED, token=token, reason=reason, details={
+                "version": number, "automatic": False, "replaced": replaced})
     with db.read() as session:
         return _one(session, model.id, name, number)
 

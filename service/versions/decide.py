@@ -9,10 +9,10 @@ be tested, and its reasons recorded, without a database.
 from __future__ import annotations
 
 from collections.abc import Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any
 
-from service.versions.policy import should_promote
+from service.versions.policy import holdout_value, primary_metric, should_promote
 
 
 @dataclass(frozen=True)
@@ -20,9 +20,13 @@ class Promotion:
     """The decision to promote, made against ``over`` (the active version id
     it was compared with, None when none was active). If another version was
     made active meanwhile (an admin's promotion), that choice stands and the
-    new version stays a candidate."""
+    new version stays a candidate. ``figures`` are what decided it, as the
+    model's history shows them: the metric compared, and its holdout value
+    for the new version and for the active one (None when there was none)."""
 
     over: int | None
+    # What the decision is a record of, not part of it: equal decisions compare equal.
+    figures: Mapping[str, Any] | None = field(default=None, compare=False)
 
 
 @dataclass(frozen=True)
@@ -44,5 +48,9 @@ def decide(context: PromotionContext) -> Promotion | None:
         return None
     active = None if context.active_id is None else context.active_metrics
     if should_promote(context.spec, context.new_metrics, active):
-        return Promotion(over=context.active_id)
+        metric = primary_metric(context.spec)
+        figures = {"metric": metric,
+                   "new": holdout_value(context.new_metrics, metric),
+                   "active": holdout_value(active, metric)}
+        return Promotion(over=context.active_id, figures=figures)
     return None

@@ -43,10 +43,10 @@ def should_promote(
     metric never beats an active one that has one.
     """
     name = primary_metric(spec)
-    new_value = _holdout_value(new_metrics, name)
+    new_value = holdout_value(new_metrics, name)
     if new_value is not None and not math.isfinite(new_value):
         return False
-    active_value = _holdout_value(active_metrics, name)
+    active_value = holdout_value(active_metrics, name)
     if active_value is None or not math.isfinite(active_value):
         return True
     if new_value is None:
@@ -55,7 +55,7 @@ def should_promote(
     return new_value <= active_value + slack
 
 
-def _holdout_value(metrics: Mapping[str, Any] | None, name: str) -> float | None:
+def holdout_value(metrics: Mapping[str, Any] | None, name: str) -> float | None:
     holdout = (metrics or {}).get("holdout") or {}
     value = holdout.get(name)
     return None if value is None else float(value)

@@ -21,6 +21,7 @@ from sqlalchemy import func, select
 from sqlalchemy.orm import Session, sessionmaker
 
 from service.store.database import transaction
+from service.store.model_events import PROMOTED, add_event
 from service.store.tables import JobRow, TrainerRow, VersionRow, utcnow
 from service.versions.decide import Promotion
 from service.versions.promote import lock_model, promote
@@ -42,6 +43,7 @@ class NewVersion:
     metrics: dict[str, Any]
     parent_id: int | None
     job_id: int | None = None
+    settings_from_seq: int | None = None
 
 
 def lock_trainer(session: Session, model_id: int) -> TrainerRow:
@@ -60,6 +62,8 @@ def check_owner(trainer: TrainerRow, worker_id: str, head_id: int | None) -> Non
         raise Fenced(f"head of model {trainer.model_id} moved to {trainer.head_version_id}")
     if trainer.error is not None:
         raise Fenced(f"lineage of model {trainer.model_id} is stopped")
+    if trainer.paused_at is not None:  # paused mid-lease: learning stops here
+        raise Fenced(f"model {trainer.model_id} is paused")
 
 
 def insert_version(session: Session, model_id: int, new: NewVersion) -> VersionRow:
@@ -81,6 +85,7 @@ def insert_version(session: Session, model_id: int, new: NewVersion) -> VersionR
         metrics=new.metrics,
         parent_id=new.parent_id,
         job_id=new.job_id,
+        settings_from_seq=new.settings_from_seq,
     )
     session.add(version)
     session.flush()
@@ -93,7 +98,14 @@ def _maybe_promote(session: Session, model_id: int, version: VersionRow,
         return
     model = lock_model(session, model_id)
     if model.active_version_id == promotion.over:
+        over = None if promotion.over is None else session.scalar(
+            select(VersionRow.number).where(VersionRow.id == promotion.over))
         promote(session, model, version)
+        # The worker's own act: no token, no reason; the figures say why.
+        add_event(session, model_id, PROMOTED, details={
+            "version": version.number, "automatic": True,
+            "replaced": over,
+            "holdout": dict(promotion.figures or {})})
 
 
 def write_online_version(

@@ -22,6 +22,7 @@ from service.web.schemas.views import ProblemSchema
 from service.web.track_record_metrics import TrackRecordCollector
 from service.web.views import (
     drift,
+    history,
     jobs,
     models,
     ops,
@@ -43,6 +44,7 @@ BLUEPRINTS = [
     drift.blueprint,
     jobs.blueprint,
     track_record.blueprint,
+    history.blueprint,
 ]
 
 # The largest id or number a path can name: job ids and version numbers are

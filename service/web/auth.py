@@ -67,6 +67,12 @@ def filters_by_model(view: F) -> F:
     return view
 
 
+def token_name() -> str | None:
+    """The name of the request's token (None on a public route)."""
+    name: str | None = g.get("token_name")
+    return name
+
+
 def token_models() -> frozenset[str] | None:
     """The models the request's token is limited to; None when it is not."""
     models: frozenset[str] | None = g.get("token_models")
@@ -74,13 +80,17 @@ def token_models() -> frozenset[str] | None:
 
 
 class Grant(NamedTuple):
-    """What a token may do: its scopes, and its models (None: every model)."""
+    """What a token may do: its scopes, and its models (None: every model);
+    and its name, which a model's history records for an admin act."""
 
     scopes: frozenset[str]
     models: frozenset[str] | None
+    name: str = ""
 
 
-_EVERYTHING = Grant(frozenset(SCOPES), None)
+# The token from the configuration has no row, so no name of its own.
+ADMIN_TOKEN_NAME = "KEELSON_ADMIN_TOKEN"
+_EVERYTHING = Grant(frozenset(SCOPES), None, ADMIN_TOKEN_NAME)
 
 
 def declared_scope(view: Callable[..., Any] | None) -> str | None:
@@ -136,7 +146,8 @@ def grant_for_token(token: str) -> Grant | None:
         return cached
     with get_database().read() as session:
         row = session.execute(
-            select(TokenRow.token_hash, TokenRow.scopes, TokenRow.models).where(
+            select(TokenRow.token_hash, TokenRow.scopes, TokenRow.models,
+                   TokenRow.name).where(
                 TokenRow.token_hash == digest, TokenRow.revoked_at.is_(None)
             )
         ).first()
@@ -145,7 +156,7 @@ def grant_for_token(token: str) -> Grant | None:
     if row is None or not hmac.compare_digest(row.token_hash, digest):
         return None
     grant = Grant(frozenset(row.scopes),
-                  None if row.models is None else frozenset(row.models))
+                  None if row.models is None else frozenset(row.models), row.name)
     cache.put(digest, grant)
     return grant
 
@@ -189,6 +200,7 @@ def authenticate() -> None:
             headers=_challenge("insufficient_scope", needed),
         )
     g.token_models = granted.models
+    g.token_name = granted.name
 
 
 def _check_model_limits(models: frozenset[str], view: Callable[..., Any] | None) -> None:

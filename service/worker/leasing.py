@@ -59,8 +59,8 @@ def claim_trainers(
 ) -> list[int]:
     """Lease up to ``limit`` free, unstopped trainers to ``worker_id`` (its own
     leases count as free, except the models in ``exclude``), leaving out the
-    models backed off until later (faults.py); returns their model ids. Call
-    inside a write transaction."""
+    models backed off until later (faults.py) and the paused ones; returns
+    their model ids. Call inside a write transaction."""
     if limit <= 0:
         return []
     now = utcnow()
@@ -68,6 +68,7 @@ def claim_trainers(
         select(TrainerRow.model_id)
         .where(
             TrainerRow.error.is_(None),
+            TrainerRow.paused_at.is_(None),
             or_(TrainerRow.retry_at.is_(None), TrainerRow.retry_at <= now),
             TrainerRow.model_id.not_in(list(exclude)),
             or_(
@@ -94,7 +95,8 @@ def renew_trainers(
     session: Session, worker_id: str, model_ids: Iterable[int], lease_seconds: float
 ) -> dict[int, int | None]:
     """Extend this worker's leases; returns {model id: head version id} for the
-    ones it still holds (a lease another worker took over is not renewed)."""
+    ones it still holds (a lease another worker took over is not renewed, nor
+    one of a model paused since: its worker lets it go at the next chunk)."""
     ids = list(model_ids)
     if not ids:
         return {}
@@ -104,6 +106,7 @@ def renew_trainers(
             TrainerRow.model_id.in_(ids),
             TrainerRow.leased_by == worker_id,
             TrainerRow.error.is_(None),
+            TrainerRow.paused_at.is_(None),
         )
         .values(lease_expires_at=_expiry(utcnow(), lease_seconds))
         .returning(TrainerRow.model_id, TrainerRow.head_version_id)

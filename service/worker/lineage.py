@@ -26,6 +26,7 @@ import numpy as np
 from sqlalchemy.orm import Session, sessionmaker
 
 from engine import EngineError, Learner, NonFiniteError
+from service.store.model_events import created_settings, settings_changes
 from service.store.record_log import RecordChunk, read_after, read_latest_holdout
 from service.store.tables import TrainerRow, VersionRow
 from service.versions.compare import (
@@ -80,6 +81,12 @@ class OnlineLineage:
         self._warmup_seen = -1
         # The active version id read with the current chunk (UNREAD outside one).
         self._active_id: Any = UNREAD
+        # Settings changes not yet reached: (event id, at_seq, settings), each
+        # applied just before the first record after its at_seq.
+        self._pending: list[tuple[int, int, dict[str, Any]]] = []
+        self._last_change_id = 0
+        # The position of the settings in use (None: a model without a history).
+        self.settings_from_seq: int | None = None
         with reads() as session:
             self.spec: dict[str, Any] = load_spec(session, model_id)
             trainer = session.get(TrainerRow, model_id)
@@ -99,6 +106,7 @@ class OnlineLineage:
                 self.records_before = int(self.learner.extra.get(RECORDS_BEFORE_KEY, 0))
                 self.cursor = self.stored_cursor = trainer.cursor
                 self._fill_window(session)
+            self._start_settings(session)
         self.active = new_active_score(self.spec)
         training = self.spec.get("training", {})
         self.checkpoint_every = int(training.get("checkpoint_every", 1000))
@@ -111,6 +119,8 @@ class OnlineLineage:
             return self._warm_up()
         with self.reads() as session:
             chunk = read_after(session, self.model_id, self.cursor, self.settings.chunk_records)
+            if len(chunk):  # a change made before these records committed is seen here
+                self._read_changes(session)
             if self._reaches_a_version(chunk):
                 # In this transaction rather than one more per version.
                 self._active_id = read_active_id(session, self.model_id)
@@ -163,7 +173,11 @@ class OnlineLineage:
             raise self._unencodable(chunk) from None
         start = 0
         while start < len(chunk):
+            self._settle(int(chunk.seqs[start]))
             stop = self._segment_end(chunk.is_train, start)
+            if self._pending:  # the next change cuts the segment after its at_seq
+                stop = min(stop, start + int(np.searchsorted(
+                    chunk.seqs[start:], self._pending[0][1], side="right")))
             train = chunk.is_train[start:stop]
             X_part, Y_part = X[start:stop], Y[start:stop]
             if train.all():
@@ -216,6 +230,42 @@ class OnlineLineage:
         stop_lineage(self.writes, self.model_id, self.worker_id, self.head_id, error)
         raise LineageStopped(error)
 
+    # ------------------------------------------------------------------ settings
+    def _start_settings(self, session: Session) -> None:
+        """Take the settings in effect after the cursor: those of the last
+        change at or before it (or the creation's); later changes wait."""
+        changes = settings_changes(session, self.model_id)
+        if changes:
+            self._last_change_id = changes[-1][0]
+        in_effect = [change for change in changes if change[1] <= self.cursor]
+        settings = in_effect[-1][2] if in_effect else created_settings(session, self.model_id)
+        if settings is not None:  # None: a model from before its history, as stored
+            self._use_settings(settings, in_effect[-1][1] if in_effect else 0)
+        self._pending = [change for change in changes if change[1] > self.cursor]
+
+    def _read_changes(self, session: Session) -> None:
+        for change in settings_changes(session, self.model_id, self._last_change_id):
+            self._pending.append(change)
+            self._last_change_id = change[0]
+
+    def _settle(self, seq: int) -> None:
+        """Apply every change that takes effect before record ``seq``."""
+        while self._pending and self._pending[0][1] < seq:
+            _, at_seq, settings = self._pending.pop(0)
+            self._use_settings(settings, at_seq)
+            log.info("model %s: settings of record %s on applied", self.model_id, at_seq)
+
+    def _use_settings(self, settings: dict[str, Any], at_seq: int) -> None:
+        self.spec = {**self.spec, **settings}
+        self.checkpoint_every = int(self.spec["training"]["checkpoint_every"])
+        self.settings_from_seq = at_seq
+        if self.learner is not None:
+            try:  # the same options again change nothing (a head that has them)
+                self.learner.retune(self.spec["training"])
+            except EngineError as exc:
+                raise ModelFault(f"the settings of record {at_seq} on cannot be "
+                                 f"applied: {exc}") from None
+
     # ------------------------------------------------------------------ versions
     def _write_version(self) -> None:
         learner = self.learner
@@ -235,7 +285,7 @@ class OnlineLineage:
         new = NewVersion(snapshot=snapshot, origin="online", cursor=self.cursor,
                          records_seen=self.records_before + learner.records_seen,
                          metrics=metrics,
-                         parent_id=self.head_id)
+                         parent_id=self.head_id, settings_from_seq=self.settings_from_seq)
         version = write_online_version(self.writes, self.model_id, self.worker_id,
                                        self.head_id, new, promotion)
         if version.status == "active":

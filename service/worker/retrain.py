@@ -24,6 +24,7 @@ from sqlalchemy import func, select
 from sqlalchemy.orm import Session, sessionmaker
 
 from engine import Learner, TrainingCancelled
+from service.store.model_events import settings_changes
 from service.store.record_log import (
     RecordChunk,
     count_records,
@@ -68,6 +69,9 @@ def run_retrain(
         assert job is not None
         model_id = job.model_id
         spec = load_spec(session, model_id)  # ModelFault: the job fails saying why
+        # The spec's settings are the latest change's (0: as created).
+        changes = settings_changes(session, model_id)
+        settings_from_seq = changes[-1][1] if changes else 0
         active_version_id = read_active_id(session, model_id)
         warm_start = bool((job.params or {}).get("warm_start"))
         cursor = last_seq(session, model_id)
@@ -78,6 +82,7 @@ def run_retrain(
             raise ModelFault("the model has no train records to retrain on")
         if active is not None:
             learner = Learner.from_bytes(active.snapshot)
+            learner.retune(spec["training"])  # a retrain fits with today's settings
             encoder, parent_id = encoder_of(learner), active.id
         else:
             sample = _stats_sample(session, model_id, cursor, n_train)
@@ -118,7 +123,8 @@ def run_retrain(
                                        "model_id": model_id, "job_id": job_id})
     new = NewVersion(snapshot=snapshot, origin="retrain", cursor=cursor,
                      records_seen=n_train, metrics=metrics,
-                     parent_id=parent_id, job_id=job_id)
+                     parent_id=parent_id, job_id=job_id,
+                     settings_from_seq=settings_from_seq)
     version = write_retrain_version(writes, job_id, worker_id, new, promotion)
     log.info("job %s: version %s of model %s (%s)", job_id, version.number, model_id,
              version.status)

@@ -34,7 +34,7 @@ def expected_model(**overrides: Any) -> dict[str, Any]:
         "alarm": {"delta": 0.01, "threshold": 20.0},
         "active_version": None,
         "records": {"total": 0, "train": 0, "holdout": 0},
-        "trainer": {"cursor": 0, "lag": 0},
+        "trainer": {"cursor": 0, "lag": 0, "paused": False},
     }
     body.update(overrides)
     return body

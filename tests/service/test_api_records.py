@@ -49,7 +49,7 @@ def test_records_are_stored_as_sent_in_sequence_order(any_api: ApiClient, any_ap
     shown = any_api.request("GET", "/v1/models/pump-risk", 200)
     holdout = sum(r.split == "holdout" for r in rows)
     assert shown["records"] == {"total": 5, "train": 5 - holdout, "holdout": holdout}
-    assert shown["trainer"] == {"cursor": 0, "lag": 5}
+    assert shown["trainer"] == {"cursor": 0, "lag": 5, "paused": False}
     assert model["records"]["total"] == 0
 
 

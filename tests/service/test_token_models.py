@@ -53,6 +53,10 @@ def request_for(method: str, rule: str, model: str, job: int) -> tuple[str, Any]
         ("GET", "/v1/models/{}/track-record"): None,
         ("GET", "/v1/models/{}/drift"): None,
         ("POST", "/v1/models/{}/retrain"): {},
+        ("GET", "/v1/models/{}/history"): None,
+        ("PATCH", "/v1/models/{}"): {"training": {"learning_rate": 0.005}},
+        ("POST", "/v1/models/{}/pause"): {"reason": "maintenance"},
+        ("POST", "/v1/models/{}/resume"): {},
         ("GET", "/v1/jobs/{}"): None,
     }
     body = bodies[route_key(method, rule)]

@@ -25,6 +25,9 @@ def test_the_first_version_is_promoted_over_nothing() -> None:
 def test_a_version_at_least_as_good_within_the_tolerance_is_promoted_over_the_active_one() -> None:
     assert decide(PromotionContext(SPEC, holdout(0.50), 3, holdout(0.50))) == Promotion(over=3)
     assert decide(PromotionContext(SPEC, holdout(0.5049), 3, holdout(0.50))) == Promotion(over=3)
+    promotion = decide(PromotionContext(SPEC, holdout(0.5049), 3, holdout(0.50)))
+    assert promotion is not None
+    assert promotion.figures == {"metric": "log_loss", "new": 0.5049, "active": 0.50}
     assert decide(PromotionContext(SPEC, holdout(0.52), 3, holdout(0.50))) is None
 
 

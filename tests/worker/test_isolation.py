@@ -145,7 +145,8 @@ def test_a_damaged_model_backs_off_alone_while_the_others_train(
     assert expected in state["error"], state
     assert "Traceback" not in state["error"]
     assert state["retry_at"]
-    assert shown(api, "healthy") == {"cursor": trainer(db, healthy).cursor, "lag": 0}
+    assert shown(api, "healthy") == {"cursor": trainer(db, healthy).cursor, "lag": 0,
+                                     "paused": False}
     row = trainer(db, damaged)
     assert row.leased_by is None and row.error is None  # backed off, not stopped
     # One line per try, each try one step of the back-off (not a line per poll).

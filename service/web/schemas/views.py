@@ -13,6 +13,7 @@ from marshmallow import RAISE, Schema, fields, validate
 from service.usecases.exports import EXPORT_FORMATS
 from service.usecases.record_export import RECORD_FORMATS
 from service.web.schemas.fields import IntegerFromText, StrictBoolean
+from service.web.schemas.history import reason_field
 from service.web.schemas.paging import NEXT
 from service.web.schemas.rules import RecordRules, batch_schema_class
 from service.web.schemas.spec import ModelSpecSchema
@@ -36,6 +37,10 @@ class TrainerStateSchema(Schema):
         "lineage is promoted."})
     retry_at = fields.DateTime(metadata={
         "description": "When the worker tries this model again (with `error`)."})
+    paused = fields.Boolean(required=True, metadata={
+        "description": "Whether an admin paused online training: records are still "
+                       "stored (lag grows) and predictions served."})
+    paused_at = fields.DateTime(metadata={"description": "Since when (when paused)."})
 
 
 class ModelSchema(ModelSpecSchema):
@@ -93,6 +98,10 @@ class VersionSchema(Schema):
     promoted_at = fields.DateTime(allow_none=True, required=True)
     parent = fields.Integer(allow_none=True, required=True,
                             metadata={"description": "Number of the version it grew from."})
+    settings_from_seq = fields.Integer(allow_none=True, required=True, metadata={
+        "description": "The record position of the settings change it was trained under "
+                       "(its `at_seq` in the model's history; 0: the settings it was created "
+                       "with; null: made before settings could change)."})
 
 
 class VersionListSchema(Schema):
@@ -140,6 +149,7 @@ class RetrainRequestSchema(Schema):
         unknown = RAISE
 
     warm_start = StrictBoolean(load_default=False)
+    reason = reason_field()
 
 
 class DeleteModelQuerySchema(Schema):

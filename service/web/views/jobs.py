@@ -5,7 +5,7 @@ from __future__ import annotations
 from typing import Any
 
 from service.usecases import jobs
-from service.web.auth import filters_by_model, requires, token_models
+from service.web.auth import filters_by_model, requires, token_models, token_name
 from service.web.extensions import get_database
 from service.web.schemas.views import JobEnvelopeSchema, JobSchema, RetrainRequestSchema
 from service.web.views.base import Blueprint
@@ -19,7 +19,8 @@ blueprint = Blueprint("jobs", __name__, url_prefix="/v1", description="Retrainin
 @blueprint.response(202, JobEnvelopeSchema, headers={"Location": {"schema": {"type": "string"}}})
 def retrain(body: dict[str, Any], name: str) -> tuple[dict[str, Any], dict[str, str]]:
     """Queue a full retrain; follow the Location header to watch it."""
-    job = jobs.request_retrain(get_database(), name, warm_start=body["warm_start"])
+    job = jobs.request_retrain(get_database(), name, warm_start=body["warm_start"],
+                               token=token_name(), reason=body.get("reason"))
     return {"job": job}, {"Location": f"/v1/jobs/{job['id']}"}
 
 

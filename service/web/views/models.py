@@ -1,5 +1,5 @@
-"""/v1/models: create and delete (admin), list, show and publish a model's own
-schema (predict)."""
+"""/v1/models: create, change settings and delete (admin), list, show and
+publish a model's own schema (predict)."""
 
 from __future__ import annotations
 
@@ -11,14 +11,15 @@ from flask import current_app, request
 from marshmallow import RAISE
 
 from service.errors import InvalidInputError
-from service.usecases import deletion, models
+from service.usecases import deletion, models, settings
 from service.usecases.model_limits import ModelLimits, spec_bytes_error
 from service.usecases.predictions import find_model
-from service.web.auth import filters_by_model, requires, token_models
+from service.web.auth import filters_by_model, requires, token_models, token_name
 from service.web.extensions import get_database, get_version_cache
 from service.web.schemas.json_schema import limits, model_documents
 from service.web.schemas.paging import ModelPageSchema
 from service.web.schemas.rules import rules_of
+from service.web.schemas.settings import ModelPatchSchema
 from service.web.schemas.spec import ModelSpecSchema
 from service.web.schemas.views import (
     DeleteModelQuerySchema,
@@ -56,7 +57,7 @@ def _spec_bytes_bounded(view: Callable[..., Any]) -> Callable[..., Any]:
 def create_model(spec: dict[str, Any]) -> dict[str, Any]:
     """Create a model from its spec (size limits: docs/http-api.md, "Models")."""
     return models.create_model(get_database(), spec,
-                               ModelLimits.from_config(current_app.config))
+                               ModelLimits.from_config(current_app.config), token=token_name())
 
 
 @blueprint.route("", methods=["GET"])
@@ -97,6 +98,25 @@ def delete_model(name: str, confirm: str | None = None
     job = deletion.request_delete(get_database(), name)
     get_version_cache().forget(name)  # this process serves it no more, now
     return {"job": job}, {"Location": f"/v1/jobs/{job['id']}"}
+
+
+@blueprint.route("/<model:name>", methods=["PATCH"])
+@requires("admin")
+@_spec_bytes_bounded
+@blueprint.arguments(ModelPatchSchema)
+@blueprint.response(200, ModelSchema)
+def change_model(changes: dict[str, Any], name: str) -> dict[str, Any]:
+    """Change settings that keep the network and the fields: promotion,
+    training options for the steps and retrains to come, checkpoint interval,
+    alarm. They apply from the record after the model's last one now (the
+    history's `at_seq`); fields, classes, layers, activation, task or target
+    answer 422 (a new model is needed)."""
+    reason = changes.pop("reason", None)
+    settings.change_settings(get_database(), name, changes,
+                             ModelLimits.from_config(current_app.config),
+                             token=token_name(), reason=reason)
+    get_version_cache().forget(name)  # this process reads the new settings at once
+    return models.get_model(get_database(), name)
 
 
 @blueprint.route("/<model:name>/schema", methods=["GET"])

@@ -9,8 +9,9 @@ from marshmallow import RAISE
 
 from service.usecases import versions
 from service.usecases.exports import ONNX_MEDIA_TYPE, export_version
-from service.web.auth import requires
+from service.web.auth import requires, token_name
 from service.web.extensions import get_database, get_version_cache
+from service.web.schemas.history import ActRequestSchema
 from service.web.schemas.paging import VersionPageSchema
 from service.web.schemas.views import ExportQuerySchema, VersionListSchema, VersionSchema
 from service.web.views.base import Blueprint
@@ -38,10 +39,13 @@ def get_version(name: str, number: int) -> dict[str, Any]:
 
 @blueprint.route("/<model:name>/versions/<int:number>/promote", methods=["POST"])
 @requires("admin")
+@blueprint.arguments(ActRequestSchema, required=False)
 @blueprint.response(200, VersionSchema)
-def promote_version(name: str, number: int) -> dict[str, Any]:
-    """Make this version the active one: also the way to roll back."""
-    return versions.promote_version(get_database(), name, number)
+def promote_version(body: dict[str, Any], name: str, number: int) -> dict[str, Any]:
+    """Make this version the active one: also the way to roll back. The act and
+    its reason (optional) go into the model's history."""
+    return versions.promote_version(get_database(), name, number, token=token_name(),
+                                    reason=body.get("reason"))
 
 
 @blueprint.route("/<model:name>/versions/<int:number>/export", methods=["GET"])

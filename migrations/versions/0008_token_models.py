@@ -1,6 +1,6 @@
 """tokens limited to models: the names a token may reach (NULL: every model)
 
-Revision ID: 0009
+Revision ID: 0008
 Revises: 0007
 Create Date: 2026-12-03 14:20:00
 """
@@ -10,7 +10,7 @@ from __future__ import annotations
 import sqlalchemy as sa
 from alembic import op
 
-revision = "0009"
+revision = "0008"
 down_revision = "0007"
 branch_labels = None
 depends_on = None

@@ -1,7 +1,7 @@
 """model deletion: a model being deleted keeps its row under a tombstone name
 and its former name in ``deleted_name`` until its delete job has finished
 
-Revision ID: 0011
+Revision ID: 0010
 Revises: 0009
 Create Date: 2026-12-03 14:30:00
 """
@@ -11,7 +11,7 @@ from __future__ import annotations
 import sqlalchemy as sa
 from alembic import op
 
-revision = "0011"
+revision = "0010"
 down_revision = "0009"
 branch_labels = None
 depends_on = None
