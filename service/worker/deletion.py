@@ -30,6 +30,7 @@ from service.store.database import transaction
 from service.store.tables import (
     DriftTallyRow,
     JobRow,
+    ModelEventRow,
     ModelRow,
     RecordRow,
     ScoredCaseRow,
@@ -62,6 +63,7 @@ STEPS: tuple[tuple[str, InstrumentedAttribute[Any], InstrumentedAttribute[Any], 
     ("track_record_alarms", TrackRecordAlarmRow.version_id, TrackRecordAlarmRow.model_id, False),
     ("track_record_days", TrackRecordDayRow.id, TrackRecordDayRow.model_id, False),
     ("scored_cases", ScoredCaseRow.id, ScoredCaseRow.model_id, False),
+    ("model_events", ModelEventRow.id, ModelEventRow.model_id, False),
     ("records", RecordRow.seq, RecordRow.model_id, False),
     ("versions", VersionRow.id, VersionRow.model_id, True),
 )
