@@ -27,6 +27,15 @@ NEW_MODEL_MESSAGE = ("Changes the network or the fields; this needs a new model 
                      "(create one, and send it the records).")
 
 
+class TrainingChangeSchema(TrainingSchema):
+    """The training options a patch may change: all but FIXED_TRAINING. A
+    class of its own, so the published document names it (a nested schema
+    with ``exclude`` would be a second schema called Training)."""
+
+    class Meta:
+        exclude = FIXED_TRAINING
+
+
 class ModelPatchSchema(Schema):
     """The settings to change, each optional; training and alarm are merged
     into the stored ones key by key."""
@@ -35,7 +44,7 @@ class ModelPatchSchema(Schema):
         unknown = RAISE
 
     promotion = ModelSpecSchema._declared_fields["promotion"]
-    training = fields.Nested(TrainingSchema(exclude=FIXED_TRAINING))
+    training = fields.Nested(TrainingChangeSchema)
     alarm = fields.Nested(AlarmSchema)
     reason = reason_field()
 
