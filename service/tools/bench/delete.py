@@ -25,7 +25,6 @@ from __future__ import annotations
 
 import os
 import platform
-import secrets
 import subprocess
 import sys
 import tempfile
@@ -36,6 +35,7 @@ from typing import Any
 from urllib.parse import urlencode
 
 from service.tools.bench.scratch import scratch_postgres
+from service.tools.bench.trained import trained_demo
 from service.tools.demo import data as demo_data
 
 Progress = Callable[[str], None]
@@ -68,28 +68,10 @@ def run_delete_bench(records: int = 1_000_000, seconds: float = 20.0,
 
 def _measure(url: str, scratch: Path, records: int, seconds: float,
              progress: Progress) -> dict[str, Any]:
-    from service.config import load_config
-    from service.store.schema import upgrade_database
-    from service.tools.demo.run import (
-        InProcessApi,
-        create_demo_model,
-        send_records,
-        train_until_current,
-    )
-    from service.web.app import create_app
     from service.web.extensions import close_drift_tally, get_database
 
-    backend = url.split(":", 1)[0].split("+", 1)[0]
-    progress(f"[{backend}] preparing a trained model")
-    upgrade_database(url)
-    token = secrets.token_urlsafe(24)
-    config = load_config({"KEELSON_DATABASE_URL": url, "KEELSON_ADMIN_TOKEN": token})
-    app = create_app(config)
-    api = InProcessApi(app, token)
-    create_demo_model(api, progress)
-    send_records(api, demo_data.generate_records(TRAINING_RECORDS, seed=11),
-                 TRAINING_RECORDS, progress)
-    train_until_current(api, config, progress, idle_seconds=0.5)
+    trained = trained_demo(url, TRAINING_RECORDS, progress)
+    backend, app, api = trained.backend, trained.app, trained.api
     api.call("POST", "/v1/models", expect=(201,),
              json={**demo_data.model_spec(), "name": RETIRED})
     progress(f"[{backend}] loading {records} records into {RETIRED}")

@@ -22,7 +22,6 @@ from __future__ import annotations
 import datetime as dt
 import os
 import platform
-import secrets
 import statistics
 import tempfile
 import time
@@ -31,6 +30,7 @@ from typing import Any
 from urllib.parse import urlencode
 
 from service.tools.bench.scratch import scratch_postgres
+from service.tools.bench.trained import trained_demo
 from service.tools.demo import data as demo_data
 
 Progress = Callable[[str], None]
@@ -69,27 +69,12 @@ def _measure(url: str, requests: int, writers: int, days: int,
              progress: Progress) -> dict[str, Any]:
     from service.config import load_config
     from service.store.database import refresh_planner_statistics
-    from service.store.schema import upgrade_database
-    from service.tools.demo.run import (
-        InProcessApi,
-        create_demo_model,
-        send_records,
-        train_until_current,
-    )
     from service.web.app import create_app
     from service.web.extensions import close_drift_tally, get_database
 
-    backend = url.split(":", 1)[0].split("+", 1)[0]
-    progress(f"[{backend}] preparing a trained model")
-    upgrade_database(url)
-    token = secrets.token_urlsafe(24)
+    trained = trained_demo(url, TRAINING_RECORDS, progress)
+    backend, token = trained.backend, trained.token
     base = {"KEELSON_DATABASE_URL": url, "KEELSON_ADMIN_TOKEN": token}
-    config = load_config(base)
-    setup = InProcessApi(create_app(config), token)
-    create_demo_model(setup, progress)
-    send_records(setup, demo_data.generate_records(TRAINING_RECORDS, seed=11),
-                 TRAINING_RECORDS, progress)
-    train_until_current(setup, config, progress, idle_seconds=0.5)
 
     # Flushes far apart: the measured requests count in memory only, as they
     # do between two flushes of a serving process.

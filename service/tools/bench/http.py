@@ -29,7 +29,6 @@ import os
 import platform
 import re
 import resource
-import secrets
 import shutil
 import signal
 import socket
@@ -47,6 +46,7 @@ from urllib.parse import urlencode
 import click
 
 from service.tools.bench.scratch import scratch_postgres
+from service.tools.bench.trained import trained_demo
 from service.tools.demo import data as demo_data
 
 Progress = Callable[[str], None]
@@ -90,26 +90,9 @@ def run_http_bench(duration: int = 10, connections: int = 16, postgres_url: str 
 
 def _measure(url: str, scratch: Path, wrk: str, duration: int, connections: int,
              progress: Progress) -> dict[str, Any]:
-    from service.config import load_config
-    from service.store.schema import upgrade_database
-    from service.tools.demo.run import (
-        InProcessApi,
-        create_demo_model,
-        send_records,
-        train_until_current,
-    )
-    from service.web.app import create_app
 
-    backend = url.split(":", 1)[0].split("+", 1)[0]
-    progress(f"[{backend}] preparing a trained model")
-    upgrade_database(url)
-    token = secrets.token_urlsafe(24)
-    config = load_config({"KEELSON_DATABASE_URL": url, "KEELSON_ADMIN_TOKEN": token})
-    api = InProcessApi(create_app(config), token)
-    create_demo_model(api, progress)
-    send_records(api, demo_data.generate_records(TRAINING_RECORDS, seed=11),
-                 TRAINING_RECORDS, progress)
-    train_until_current(api, config, progress, idle_seconds=0.5)
+    trained = trained_demo(url, TRAINING_RECORDS, progress)
+    backend, token = trained.backend, trained.token
 
     features = demo_data.SHOWCASE[0][1]
     query = {k: str(v).lower() if isinstance(v, bool) else v for k, v in features.items()}
