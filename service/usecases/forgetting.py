@@ -33,7 +33,7 @@ import hashlib
 from collections.abc import Sequence
 from typing import Any
 
-from sqlalchemy import String, any_, bindparam, delete, select, update
+from sqlalchemy import String, Table, any_, bindparam, delete, select, update
 from sqlalchemy.dialects.postgresql import ARRAY, BIGINT
 from sqlalchemy.orm import Session
 
@@ -159,7 +159,7 @@ def _mark_versions(session: Session, model_id: int, train_seqs: list[int]
         marked.append({"number": row.number, "status": row.status, "records": count})
         changes.append({"version_id": row.id, "count": count})
     if changes:
-        table = VersionRow.__table__  # Core: one executemany, no ORM bookkeeping
+        table: Table = VersionRow.__table__  # type: ignore[assignment]  # Core: one executemany
         session.connection().execute(
             update(table).where(table.c.id == bindparam("version_id")).values(
                 forgotten_records=table.c.forgotten_records + bindparam("count")), changes)
