@@ -373,7 +373,7 @@ def restore(snapshot: Path, name: str) -> None:
 
 
 cli.add_command(outcomes)  # keelson outcomes import (service/tools/outcome_import.py)
-cli.add_command(model)  # keelson model history|pause|resume|set (service/tools/model_commands.py)
+cli.add_command(model)  # keelson model history|pause|resume|set|delete (model_commands.py)
 cli.add_command(forget)  # keelson forget (service/tools/forget_command.py)
 
 

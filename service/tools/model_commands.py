@@ -1,9 +1,9 @@
-"""``keelson model history|pause|resume|set``: a model's history and the
-admin acts on it, from the command line.
+"""``keelson model history|pause|resume|set|delete``: a model's history and
+the admin acts on it, from the command line.
 
 Like ``keelson token`` these work on the database directly (the
 ``KEELSON_DATABASE_URL`` the service uses), through the same use cases the
-HTTP routes call (service/usecases/history.py, settings.py): the same rules,
+HTTP routes call (service/usecases/history.py, settings.py, deletion.py): the same rules,
 the same one transaction per act, the same event in the model's history.
 Settings go through the body schema of ``PATCH /v1/models/{name}``, so a
 value the API refuses is refused here with the same words.
@@ -41,7 +41,7 @@ def _json(value: Any) -> str:
 
 @click.group("model")
 def model() -> None:
-    """A model's history, and pausing, resuming and changing its settings."""
+    """A model's history; pausing, resuming, changing and deleting it."""
 
 
 @model.command("history")
@@ -181,3 +181,20 @@ def _flat(messages: Any, prefix: str = "") -> list[tuple[str, str]]:
     if isinstance(messages, list) and all(isinstance(m, str) for m in messages):
         return [(prefix or "body", "; ".join(messages))]
     return [(prefix or "body", str(messages))]
+
+
+@model.command("delete")
+@click.argument("name")
+@click.option("--confirm", required=True, metavar="NAME",
+              help="The model's name again: a slip of the keyboard deletes nothing.")
+def delete_command(name: str, confirm: str) -> None:
+    """Delete model NAME with its records, cases, versions and jobs (as
+    DELETE /v1/models/NAME?confirm=NAME): gone at once, a worker removes the
+    rows. Asking again shows the same job."""
+    from service.usecases.deletion import request_delete
+
+    if confirm != name:
+        raise click.UsageError(f"--confirm must repeat the model's name ({name!r}).")
+    job = request_delete(_database(), name)
+    click.echo(f"model {name}: deleted; job {job['id']} ({job['status']}) removes its rows "
+               f"(see GET /v1/jobs/{job['id']})")

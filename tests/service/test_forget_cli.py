@@ -96,3 +96,15 @@ def test_model_pause_resume_set_and_history(any_api: ApiClient, database_url: st
     assert status == 0 and "settings_changed" in out and "because: noisy month" in out
     status, _, err = run(database_url, "model", "history", "no-such-model")
     assert status == 1 and "There is no model named 'no-such-model'." in err
+
+
+def test_model_delete_needs_the_name_twice(any_api: ApiClient, database_url: str) -> None:
+    create_model(any_api)
+    assert run(database_url, "model", "delete", "pump-risk", "--confirm", "pump")[0] == 2
+    any_api.request("GET", "/v1/models/pump-risk", 200)
+    status, out, err = run(database_url, "model", "delete", "pump-risk", "--confirm",
+                           "pump-risk")
+    assert status == 0 and "deleted; job" in out, err
+    any_api.request("GET", "/v1/models/pump-risk", 404)
+    again = run(database_url, "model", "delete", "pump-risk", "--confirm", "pump-risk")[1]
+    assert again.split("job")[1] == out.split("job")[1]  # the same job
