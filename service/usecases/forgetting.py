@@ -53,7 +53,7 @@ from service.usecases.forget_outcomes import take_out_outcomes
 from service.usecases.jobs import job_view
 
 MAX_FORGET_KEYS = 10_000  # keys per request: one transaction stays short
-ABSENT_SHOWN = 100  # absent keys named in an answer (all are counted)
+SHOWN = 100  # absent keys and marked versions an answer names (all are counted)
 _CHUNK = 500  # values per IN (...) on SQLite: under its parameter limit
 
 
@@ -257,9 +257,9 @@ def _answer(name: str, wanted: list[str], absent: list[str], act: dict[str, Any]
         "keys": len(wanted),
         "forgotten": len(wanted) - len(absent),
         "absent": len(absent),
-        "absent_keys": absent[:ABSENT_SHOWN],
+        "absent_keys": absent[:SHOWN],
         "removed": empty if act is None else act["removed"],
-        "versions_marked": [] if act is None else act["marked"][:ABSENT_SHOWN],
+        "versions_marked": [] if act is None else act["marked"][:SHOWN],
         "versions_marked_count": 0 if act is None else len(act["marked"]),
         "active": None if act is None else act["active"],
         "message": message(act),

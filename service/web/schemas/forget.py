@@ -7,7 +7,7 @@ from typing import Any
 from marshmallow import RAISE, Schema, fields, pre_load, validate
 
 from service.errors import TooLargeError
-from service.usecases.forgetting import ABSENT_SHOWN, MAX_FORGET_KEYS
+from service.usecases.forgetting import MAX_FORGET_KEYS, SHOWN
 from service.web.schemas.fields import BooleanFromText
 from service.web.schemas.history import reason_field
 from service.web.schemas.rules import key_field
@@ -81,10 +81,10 @@ class ForgetAnswerSchema(Schema):
     absent = fields.Integer(required=True, metadata={
         "description": "Keys found nowhere: never stored, or forgotten before. Not an error."})
     absent_keys = fields.List(fields.String(), required=True, metadata={
-        "description": f"The first {ABSENT_SHOWN} absent keys."})
+        "description": f"The first {SHOWN} absent keys."})
     removed = fields.Nested(RemovedSchema, required=True)
     versions_marked = fields.List(fields.Nested(MarkedVersionSchema), required=True, metadata={
-        "description": f"The first {ABSENT_SHOWN} versions trained on any of these records "
+        "description": f"The first {SHOWN} versions trained on any of these records "
                        "(each now shows it in `forgotten_records`)."})
     versions_marked_count = fields.Integer(required=True)
     active = fields.Nested(ActiveVersionSchema, required=True, allow_none=True)
