@@ -170,7 +170,8 @@ class RecordRow(Base):
 
 
 class VersionRow(Base):
-    """An immutable trained state. Only ``status`` and ``promoted_at`` ever change."""
+    """An immutable trained state. Only ``status``, ``promoted_at`` and
+    ``forgotten_records`` ever change."""
 
     __tablename__ = "versions"
     __table_args__ = (UniqueConstraint("model_id", "number"),)
@@ -190,6 +191,12 @@ class VersionRow(Base):
     # under (0: the settings it was created with; None: made before settings
     # could change). The change itself is in the model's history.
     settings_from_seq: Mapped[int | None] = mapped_column(BigInteger)
+    # How many records this version was trained on, itself or through the
+    # versions it descends from, that have since been forgotten: set by the
+    # forget (service/usecases/forgetting.py), inherited from the parent when
+    # a version is written (service/versions/writes.py). Its weights still
+    # carry them; only a retrain from scratch without them is free of them.
+    forgotten_records: Mapped[int] = mapped_column(BigInteger, default=0, server_default="0")
     created_at: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True), default=utcnow)
     promoted_at: Mapped[dt.datetime | None] = mapped_column(DateTime(timezone=True))
 

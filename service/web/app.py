@@ -22,6 +22,7 @@ from service.web.schemas.views import ProblemSchema
 from service.web.track_record_metrics import TrackRecordCollector
 from service.web.views import (
     drift,
+    forget,
     history,
     jobs,
     models,
@@ -45,6 +46,7 @@ BLUEPRINTS = [
     jobs.blueprint,
     track_record.blueprint,
     history.blueprint,
+    forget.blueprint,
 ]
 
 # The largest id or number a path can name: job ids and version numbers are

@@ -149,9 +149,9 @@ def _load_train(reads: sessionmaker[Session], learner: Learner, model_id: int, c
         Y[filled : filled + len(chunk)] = Y_part
         filled += len(chunk)
     if X is None or Y is None or filled != n_train:
-        # Records at or before the cursor are all committed and never deleted
-        # while a job runs (docs/architecture.md, invariant 1), so this means
-        # the model was removed.
+        # Records at or before the cursor are all committed (docs/architecture.md,
+        # invariant 1); they go only with the model, or by a forget, which
+        # queues this job again (this attempt's writes are fenced).
         raise RuntimeError(f"expected {n_train} train records, read {filled}")
     return X, Y
 

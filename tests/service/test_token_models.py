@@ -42,6 +42,7 @@ def request_for(method: str, rule: str, model: str, job: int) -> tuple[str, Any]
         ("POST", "/v1/models/{}/records"): {"records": [
             {"key": "r-new", "features": row, "label": pump_rule(row)}]},
         ("GET", "/v1/models/{}/records"): None,
+        ("POST", "/v1/models/{}/records/forget"): {"keys": ["r-0"], "reason": "asked to"},
         ("POST", "/v1/models/{}/outcomes"): {"outcomes": [{"key": "case-0", "label": "ok"}]},
         ("GET", "/v1/models/{}/versions"): None,
         ("GET", "/v1/models/{}/versions/{}"): None,
