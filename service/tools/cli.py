@@ -17,6 +17,7 @@ import click
 
 from service.tools.bench.commands import bench
 from service.tools.outcome_import import outcomes
+from service.tools.replay import replay
 
 SCOPES = ("ingest", "predict", "admin")
 
@@ -371,6 +372,7 @@ def restore(snapshot: Path, name: str) -> None:
 
 
 cli.add_command(outcomes)  # keelson outcomes import (service/tools/outcome_import.py)
+cli.add_command(replay)  # keelson replay MODEL (service/tools/replay.py)
 
 
 # ------------------------------------------------------------- benchmarks
