@@ -70,6 +70,8 @@ def replay(model: str, number: int | None, quiet: bool) -> None:
       3  cannot replay (no such model or version, a version restored from a
          file, or no stored snapshot to compare with)
     """
+    from threadpoolctl import threadpool_limits
+
     from service.config import load_config
     from service.errors import KeelsonError
     from service.store.database import make_engine, make_sessionmaker
@@ -83,8 +85,11 @@ def replay(model: str, number: int | None, quiet: bool) -> None:
     engine = make_engine(config["KEELSON_DATABASE_URL"], json_deserializer=decode_json)
     bars = _Bars(shown=not quiet)
     try:
-        audit = audit_version(make_sessionmaker(engine), model, number,
-                              settings.chunk_records, bars)
+        # One BLAS thread, as the worker runs (service/process.py): the same
+        # sums in the same order, hence the same bits.
+        with threadpool_limits(limits=1, user_api="blas"):
+            audit = audit_version(make_sessionmaker(engine), model, number,
+                                  settings.chunk_records, bars)
     except (KeelsonError, CannotReplay) as error:
         bars.close()
         click.echo(f"keelson replay: {getattr(error, 'detail', None) or error}", err=True)

@@ -33,10 +33,12 @@ below its cursor, so fewer rows there means some are gone
 
 from __future__ import annotations
 
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 from typing import Any
 
+import numpy as np
+from numpy.typing import NDArray
 from sqlalchemy import select
 from sqlalchemy.orm import Session, sessionmaker
 
@@ -46,6 +48,7 @@ from service.store.record_log import count_records, iter_chunks, read_after
 from service.store.tables import JobRow, ModelEventRow, VersionRow
 from service.versions.compare import ENCODER_KEY, RECORDS_BEFORE_KEY, encoder_of
 from service.worker.faults import load_spec
+from service.worker.replay_reader import PIPELINE_MIN_RECORDS, Unencodable, encoded_chunks
 from service.worker.retrain import (
     RetrainStart,
     fit_retrain,
@@ -165,15 +168,42 @@ def _online(reads: sessionmaker[Session], model_id: int, head: tuple[int, Learne
                               split="train")
     label = f"version {target.number}: records {after + 1}..{target.cursor}"
     done = 0
-    for chunk in iter_chunks(reads, model_id, target.cursor, chunk_records, split="train",
-                             after=after):
-        stepper._apply(chunk)
-        done += len(chunk)
+    for seqs in _step(reads, model_id, stepper, after, target.cursor, chunk_records,
+                      total):
+        done += len(seqs)
         if progress is not None:
             progress(label, done, total)
     assert stepper.learner is not None
     return online_snapshot(stepper.learner, cursor=target.cursor, encoder=encoder,
                            records_before=records_before, model_id=model_id)
+
+
+def _step(reads: sessionmaker[Session], model_id: int, stepper: Stepper, after: int,
+          upto: int, chunk_records: int, total: int) -> Iterator[NDArray[np.int64]]:
+    """Step the train records in (after, upto], yielding each chunk's seqs:
+    read inline, or a chunk ahead by a second process for long replays
+    (replay_reader.py)."""
+    learner = stepper.learner
+    assert learner is not None
+    if total < PIPELINE_MIN_RECORDS:
+        for chunk in iter_chunks(reads, model_id, upto, chunk_records, split="train",
+                                 after=after):
+            stepper._apply(chunk)
+            yield chunk.seqs
+        return
+    bind = reads.kw["bind"]
+    try:
+        for seqs, is_train, X, Y in encoded_chunks(
+                bind.url.render_as_string(hide_password=False), model_id, after, upto,
+                chunk_records, learner.spec, learner.encoder.arrays(),
+                learner.encoder.meta()):
+            stepper._apply_encoded(seqs, is_train, X, Y)
+            yield seqs
+    except Unencodable as failed:  # step that chunk here: the worker's fault names it
+        with reads() as session:
+            stepper._apply(read_after(session, model_id, failed.after, chunk_records,
+                                      split="train"))
+        raise
 
 
 def _warm_up(session: Session, model_id: int, stepper: Stepper, target: Step,

@@ -94,21 +94,29 @@ class Stepper:
             Y = learner.encode_labels(chunk.labels)
         except EngineError:
             raise self._unencodable(chunk) from None
+        self._apply_encoded(chunk.seqs, chunk.is_train, X, Y)
+
+    def _apply_encoded(self, seqs: np.ndarray, is_train: np.ndarray, X: np.ndarray,
+                       Y: np.ndarray) -> None:
+        """Step records already encoded with the learner's encoder (which a
+        lineage never changes), in sequence order."""
+        learner = self.learner
+        assert learner is not None
         start = 0
-        while start < len(chunk):
-            self._settle(int(chunk.seqs[start]))
-            stop = self._segment_end(chunk.is_train, start)
+        while start < len(seqs):
+            self._settle(int(seqs[start]))
+            stop = self._segment_end(is_train, start)
             if self._pending:  # the next change cuts the segment after its at_seq
                 stop = min(stop, start + int(np.searchsorted(
-                    chunk.seqs[start:], self._pending[0][1], side="right")))
-            train = chunk.is_train[start:stop]
+                    seqs[start:], self._pending[0][1], side="right")))
+            train = is_train[start:stop]
             X_part, Y_part = X[start:stop], Y[start:stop]
             if train.all():
-                self._learn(X_part, Y_part, chunk.seqs[start:stop])
+                self._learn(X_part, Y_part, seqs[start:stop])
             else:
-                self._learn(X_part[train], Y_part[train], chunk.seqs[start:stop][train])
+                self._learn(X_part[train], Y_part[train], seqs[start:stop][train])
                 self._holdout(X_part[~train], Y_part[~train])
-            self.cursor = int(chunk.seqs[stop - 1])
+            self.cursor = int(seqs[stop - 1])
             start = stop
             if self.pending_train and learner.records_seen % self.checkpoint_every == 0:
                 self._checkpoint()

@@ -9,6 +9,7 @@ from __future__ import annotations
 from typing import Any
 
 import numpy as np
+import pytest
 from click.testing import CliRunner, Result
 from sqlalchemy import delete, select
 
@@ -19,6 +20,7 @@ from service.tools.cli import cli
 from service.usecases.jobs import request_retrain
 from service.usecases.model_limits import ModelLimits
 from service.usecases.settings import change_settings
+from service.worker import replay as replay_module
 from tests.worker.helpers import (
     caught_up,
     database,
@@ -89,6 +91,19 @@ def test_every_online_version_replays_identical_with_settings_changed_mid_stream
     assert result.exit_code == 0, result.output
     assert result.output.strip().endswith(": identical")
     for version in (made[0], made[len(made) // 2], made[-1]):
+        result = replay(database_url, "--version", str(version.number))
+        assert result.exit_code == 0, result.output
+        assert f"version {version.number} (online): identical" in result.output
+    db.engine.dispose()
+
+
+def test_a_long_replay_reads_ahead_in_a_second_process_to_the_same_result(
+        database_url: str, monkeypatch: pytest.MonkeyPatch) -> None:
+    # Every replay long enough reads, decodes and encodes in a child process
+    # (service/worker/replay_reader.py); here every replay is "long enough".
+    monkeypatch.setattr(replay_module, "PIPELINE_MIN_RECORDS", 1)
+    db, model_id = trained_online(database_url)
+    for version in versions(db, model_id)[-2:]:
         result = replay(database_url, "--version", str(version.number))
         assert result.exit_code == 0, result.output
         assert f"version {version.number} (online): identical" in result.output
