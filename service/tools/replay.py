@@ -68,7 +68,8 @@ def replay(model: str, number: int | None, quiet: bool) -> None:
       2  records the version learned were forgotten (deleted): how many is
          printed, and nothing is compared
       3  cannot replay (no such model or version, a version restored from a
-         file, or no stored snapshot to compare with)
+         file, no stored snapshot to compare with, the database unreachable)
+    A mistyped command line exits 2, as for every command.
     """
     from threadpoolctl import threadpool_limits
 
@@ -93,6 +94,11 @@ def replay(model: str, number: int | None, quiet: bool) -> None:
     except (KeelsonError, CannotReplay) as error:
         bars.close()
         click.echo(f"keelson replay: {getattr(error, 'detail', None) or error}", err=True)
+        sys.exit(CANNOT_REPLAY)
+    except Exception as error:  # noqa: BLE001 - a failure must not read as "differs" (1)
+        bars.close()
+        first = (str(error).strip().splitlines() or [""])[0]
+        click.echo(f"keelson replay: cannot replay: {type(error).__name__}: {first}", err=True)
         sys.exit(CANNOT_REPLAY)
     finally:
         bars.close()
