@@ -114,11 +114,14 @@ def check_records(session: Session, model_id: int, version: Step) -> int:
 
 
 def rebuild_snapshot(reads: sessionmaker[Session], model_id: int, version_id: int,
-                     chunk_records: int, progress: Progress | None = None) -> bytes:
+                     chunk_records: int, progress: Progress | None = None,
+                     read_ahead_from: int | None = None) -> bytes:
     """The snapshot bytes version ``version_id`` of ``model_id`` would hold if
     it were made again from the stored records and history (see the module
     docstring). RecordsForgotten, CannotReplay, or what the worker would
-    have failed with."""
+    have failed with. ``read_ahead_from``: the train records from which a
+    second process reads ahead (replay_reader.py; None: its default)."""
+    ahead = PIPELINE_MIN_RECORDS if read_ahead_from is None else read_ahead_from
     with reads() as session:
         target = read_step(session, version_id)
         chain = [target]
@@ -131,12 +134,12 @@ def rebuild_snapshot(reads: sessionmaker[Session], model_id: int, version_id: in
                                "learned from this installation's records")
         check_records(session, model_id, target)
     if root.origin == "retrain":
-        start = _rebuild_retrain(reads, model_id, root, chunk_records, progress)
+        start = _rebuild_retrain(reads, model_id, root, chunk_records, progress, ahead)
         if root is target:
             return start
         return _online(reads, model_id, (root.id, Learner.from_bytes(start)), root.cursor,
-                       target, chunk_records, progress)
-    return _online(reads, model_id, None, 0, target, chunk_records, progress)
+                       target, chunk_records, progress, ahead)
+    return _online(reads, model_id, None, 0, target, chunk_records, progress, ahead)
 
 
 class _Replay(Stepper):
@@ -146,7 +149,7 @@ class _Replay(Stepper):
 
 def _online(reads: sessionmaker[Session], model_id: int, head: tuple[int, Learner] | None,
             after: int, target: Step, chunk_records: int,
-            progress: Progress | None) -> bytes:
+            progress: Progress | None, ahead: int) -> bytes:
     """Step the train records in (after, target.cursor] from ``head`` (the
     root version's id and learner; None: a warm-up lineage's start) and return
     the target's snapshot bytes."""
@@ -169,7 +172,7 @@ def _online(reads: sessionmaker[Session], model_id: int, head: tuple[int, Learne
     label = f"version {target.number}: records {after + 1}..{target.cursor}"
     done = 0
     for seqs in _step(reads, model_id, stepper, after, target.cursor, chunk_records,
-                      total):
+                      total >= ahead):
         done += len(seqs)
         if progress is not None:
             progress(label, done, total)
@@ -179,13 +182,13 @@ def _online(reads: sessionmaker[Session], model_id: int, head: tuple[int, Learne
 
 
 def _step(reads: sessionmaker[Session], model_id: int, stepper: Stepper, after: int,
-          upto: int, chunk_records: int, total: int) -> Iterator[NDArray[np.int64]]:
+          upto: int, chunk_records: int, read_ahead: bool) -> Iterator[NDArray[np.int64]]:
     """Step the train records in (after, upto], yielding each chunk's seqs:
     read inline, or a chunk ahead by a second process for long replays
     (replay_reader.py)."""
     learner = stepper.learner
     assert learner is not None
-    if total < PIPELINE_MIN_RECORDS:
+    if not read_ahead:
         for chunk in iter_chunks(reads, model_id, upto, chunk_records, split="train",
                                  after=after):
             stepper._apply(chunk)
@@ -242,7 +245,7 @@ def _warmup_last(session: Session, model_id: int, target: Step) -> int | None:
 
 
 def _rebuild_retrain(reads: sessionmaker[Session], model_id: int, version: Step,
-                     chunk_records: int, progress: Progress | None) -> bytes:
+                     chunk_records: int, progress: Progress | None, ahead: int) -> bytes:
     """A retrain version's snapshot: its job's start, the batch fit, the bytes."""
     with reads() as session:
         job = session.get(JobRow, version.job_id) if version.job_id is not None else None
@@ -256,7 +259,7 @@ def _rebuild_retrain(reads: sessionmaker[Session], model_id: int, version: Step,
                                                 version.cursor, n_train)
     if version.parent_id is not None:  # a warm start from the version then active
         parent = Learner.from_bytes(rebuild_snapshot(reads, model_id, version.parent_id,
-                                                     chunk_records, progress))
+                                                     chunk_records, progress, ahead))
         start = warm_retrain(job.id, model_id, spec, version.cursor, n_train, parent,
                              version.parent_id)
     max_epochs = int(spec["training"].get("max_epochs", 0))

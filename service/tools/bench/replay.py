@@ -12,7 +12,9 @@ version holds every train record. Then, in this process:
   second, and whether the comparison found it identical;
 * ``engine``: ``Learner.learn`` over the same train records already encoded
   in memory (the engine's online rate);
-* ``ratio``: replay over engine (the target is at least 0.8).
+* ``ratio``: replay over engine (the target is at least 0.8);
+* ``inline_*``: the same replay with the records read in this process (no
+  reader process: what reading ahead is worth).
 
 Both sides run with BLAS held to one thread, as the worker and ``keelson
 replay`` do.
@@ -99,6 +101,13 @@ def _measure(url: str, records: int, progress: Progress) -> dict[str, Any]:
         begun = time.perf_counter()
         identical = first_difference(stored, rebuilt) is None
         compare_seconds = time.perf_counter() - begun
+        progress(f"[{backend}] replay again, reading inline (no second process)")
+        with threadpool_limits(limits=1, user_api="blas"):
+            started = time.perf_counter()
+            inline = rebuild_snapshot(reads, model_id, version_id, chunk,
+                                      read_ahead_from=records + 1)
+            inline_seconds = time.perf_counter() - started
+        identical = identical and first_difference(stored, inline) is None
         progress(f"[{backend}] engine alone")
         train = [i for i, split in enumerate(splits) if split == "train"]
         online, online_cpu, _ = worker_bench._engine_alone(
@@ -116,6 +125,9 @@ def _measure(url: str, records: int, progress: Progress) -> dict[str, Any]:
         "engine_learn_records_per_s": round(engine_rate),
         "ratio": round(replay_rate / engine_rate, 3),
         "target_ratio": 0.8,
+        # The same replay reading inline: what the second process is worth.
+        "inline_records_per_s": round(n_train / inline_seconds),
+        "inline_ratio": round(n_train / inline_seconds / engine_rate, 3),
         # CPU seconds of the stepping process (the database server's not
         # counted): less swayed by other load than the wall-clock ratio.
         "replay_cpu_seconds": round(cpu_seconds, 2),
