@@ -20,6 +20,8 @@ from service.tools.cli import cli
 from service.usecases.jobs import request_retrain
 from service.usecases.model_limits import ModelLimits
 from service.usecases.settings import change_settings
+from service.web.app import create_app
+from service.web.extensions import get_database
 from service.worker import replay as replay_module
 from tests.worker.helpers import (
     caught_up,
@@ -55,6 +57,17 @@ def replay(url: str, *args: str) -> Result:
                               env={"KEELSON_DATABASE_URL": url}, catch_exceptions=False)
 
 
+def patch(url: str, body: dict[str, Any]) -> None:
+    """PATCH /v1/models/pumps as an operator sends it."""
+    app = create_app({"KEELSON_DATABASE_URL": url, "KEELSON_ADMIN_TOKEN": "replay-admin"})
+    try:
+        response = app.test_client().patch(
+            "/v1/models/pumps", json=body, headers={"Authorization": "Bearer replay-admin"})
+        assert response.status_code == 200, response.get_json()
+    finally:
+        get_database(app).engine.dispose()
+
+
 def job_done(db: Any, job_id: int) -> bool:
     with db.read() as session:
         job = session.get(JobRow, job_id)
@@ -64,7 +77,7 @@ def job_done(db: Any, job_id: int) -> bool:
 
 def trained_online(url: str) -> tuple[Any, int]:
     """Records learned with two settings changes (one while no worker runs,
-    one while it runs) and a worker restart between them."""
+    one over HTTP while it runs) and a worker restart between them."""
     db = database(url)
     model_id = new_model(db, pump_spec(learning_rate=0.05))
     send(db, "pumps", rows(300, seed=1))
@@ -74,8 +87,7 @@ def trained_online(url: str) -> tuple[Any, int]:
     with worker_thread(url):
         wait_until(lambda: caught_up(db, model_id))
     with worker_thread(url, worker_id="second-worker"):  # starts from the stored head
-        change_settings(db, "pumps", {"training": {"learning_rate": 0.2}}, LIMITS,
-                        token="ops", reason=None)
+        patch(url, {"training": {"learning_rate": 0.2}, "reason": "after the pump swap"})
         send(db, "pumps", rows(250, seed=3))
         wait_until(lambda: caught_up(db, model_id))
     return db, model_id
