@@ -255,8 +255,9 @@ def _rebuild_retrain(reads: sessionmaker[Session], model_id: int, version: Step,
         spec = _spec_of_job(session, model_id, version, job)
         n_train = check_records(session, model_id, version)
         if version.parent_id is None:
-            start: RetrainStart = fresh_retrain(session, job.id, model_id, spec,
-                                                version.cursor, n_train)
+            start: RetrainStart = fresh_retrain(
+                session, job.id, model_id, spec, version.cursor, n_train,
+                bool((job.params or {}).get("warm_start")))
     if version.parent_id is not None:  # a warm start from the version then active
         parent = Learner.from_bytes(rebuild_snapshot(reads, model_id, version.parent_id,
                                                      chunk_records, progress, ahead))

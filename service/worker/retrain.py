@@ -85,7 +85,7 @@ def run_retrain(
             learner = Learner.from_bytes(active.snapshot)
             start = warm_retrain(job_id, model_id, spec, cursor, n_train, learner, active.id)
         else:
-            start = fresh_retrain(session, job_id, model_id, spec, cursor, n_train)
+            start = fresh_retrain(session, job_id, model_id, spec, cursor, n_train, warm_start)
 
     started = time.perf_counter()
     reporter = _ProgressReporter(writes, job_id, worker_id, settings.progress_seconds,
@@ -149,12 +149,14 @@ def warm_retrain(job_id: int, model_id: int, spec: dict[str, Any], cursor: int,
 
 
 def fresh_retrain(session: Session, job_id: int, model_id: int, spec: dict[str, Any],
-                  cursor: int, n_train: int) -> RetrainStart:
-    """From scratch: the encoder's statistics from a sample of the train records."""
+                  cursor: int, n_train: int, warm_start: bool = False) -> RetrainStart:
+    """From scratch: the encoder's statistics from a sample of the train records
+    (``warm_start``: the job asked for one, but no version was active; the fit
+    then starts from this fresh network, the same weights as from scratch)."""
     sample = _stats_sample(session, model_id, cursor, n_train)
     learner = Learner.create(spec, warmup=sample.features, warmup_labels=sample.labels)
     return RetrainStart(job_id, model_id, spec, cursor, n_train, learner,
-                        f"retrain:{job_id}", None, warm_start=False)
+                        f"retrain:{job_id}", None, warm_start=warm_start)
 
 
 def fit_retrain(reads: sessionmaker[Session], start: RetrainStart, chunk_records: int,
