@@ -52,8 +52,8 @@ def pump_spec(**training: Any) -> dict[str, Any]:
                                   "max_epochs": 8, "patience": 100, **training})
 
 
-def replay(url: str, *args: str) -> Result:
-    return CliRunner().invoke(cli, ["replay", "pumps", "--quiet", *args],
+def replay(url: str, *args: str, quiet: bool = True) -> Result:
+    return CliRunner().invoke(cli, ["replay", "pumps", *(["--quiet"] if quiet else []), *args],
                               env={"KEELSON_DATABASE_URL": url}, catch_exceptions=False)
 
 
@@ -99,13 +99,16 @@ def test_every_online_version_replays_identical_with_settings_changed_mid_stream
     made = versions(db, model_id)
     assert len(made) >= 4
     assert len({version.settings_from_seq for version in made}) == 3  # three settings used
-    result = replay(database_url)  # the active version
+    result = replay(database_url, quiet=False)  # the active version, with progress
     assert result.exit_code == 0, result.output
-    assert result.output.strip().endswith(": identical")
+    assert result.stdout.strip().endswith(": identical")
+    # Not a terminal: the phase's label on stderr, without a bar.
+    assert "version" in result.stderr and ": records " in result.stderr
     for version in (made[0], made[len(made) // 2], made[-1]):
         result = replay(database_url, "--version", str(version.number))
         assert result.exit_code == 0, result.output
         assert f"version {version.number} (online): identical" in result.output
+        assert result.stderr == ""  # --quiet
     db.engine.dispose()
 
 
