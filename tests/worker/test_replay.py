@@ -6,6 +6,7 @@ records must be told apart from that (exit 1 naming the parameter, exit 2)."""
 
 from __future__ import annotations
 
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -194,4 +195,22 @@ def test_a_version_that_is_not_there_cannot_be_replayed(database_url: str) -> No
     result = replay(database_url, "--version", "7")
     assert result.exit_code == 3
     assert "has no version 7" in result.output
+    db.engine.dispose()
+
+
+def test_a_restored_version_is_not_taken_for_a_replayable_one(
+        database_url: str, tmp_path: Path) -> None:
+    db, model_id = trained_online(database_url)
+    runner = CliRunner()
+    env = {"KEELSON_DATABASE_URL": database_url}
+    number = str(versions(db, model_id)[-1].number)
+    file = tmp_path / "pumps.keelson"
+    for args in (["export-version", "pumps", number, str(file)],
+                 ["restore", str(file), "--as", "pumps-copy"]):
+        done = runner.invoke(cli, args, env=env, catch_exceptions=False)
+        assert done.exit_code == 0, done.output
+    result = runner.invoke(cli, ["replay", "pumps-copy", "--quiet"], env=env,
+                           catch_exceptions=False)
+    assert result.exit_code == 3, result.output
+    assert "restored from a file" in result.stderr
     db.engine.dispose()
