@@ -48,7 +48,7 @@ from service.store.record_log import count_records, iter_chunks, read_after
 from service.store.tables import JobRow, ModelEventRow, VersionRow
 from service.versions.compare import ENCODER_KEY, RECORDS_BEFORE_KEY, encoder_of
 from service.worker.faults import load_spec
-from service.worker.replay_reader import PIPELINE_MIN_RECORDS, Unencodable, encoded_chunks
+from service.worker.replay_reader import PIPELINE_MIN_RECORDS, ReadAhead, Unencodable
 from service.worker.retrain import (
     RetrainStart,
     fit_retrain,
@@ -195,11 +195,19 @@ def _step(reads: sessionmaker[Session], model_id: int, stepper: Stepper, after: 
             yield chunk.seqs
         return
     bind = reads.kw["bind"]
+    reader = ReadAhead(bind.url.render_as_string(hide_password=False), model_id, upto,
+                       chunk_records, learner.spec, learner.encoder.arrays(),
+                       learner.encoder.meta())
     try:
-        for seqs, is_train, X, Y in encoded_chunks(
-                bind.url.render_as_string(hide_password=False), model_id, after, upto,
-                chunk_records, learner.spec, learner.encoder.arrays(),
-                learner.encoder.meta()):
+        inline = iter_chunks(reads, model_id, upto, chunk_records, split="train", after=after)
+        while not reader.ready():  # inline while the reader starts
+            part = next(inline, None)
+            if part is None:
+                return
+            stepper._apply(part)
+            after = int(part.seqs[-1])
+            yield part.seqs
+        for seqs, is_train, X, Y in reader.chunks(after):
             stepper._apply_encoded(seqs, is_train, X, Y)
             yield seqs
     except Unencodable as failed:  # step that chunk here: the worker's fault names it
@@ -207,6 +215,8 @@ def _step(reads: sessionmaker[Session], model_id: int, stepper: Stepper, after: 
             stepper._apply(read_after(session, model_id, failed.after, chunk_records,
                                       split="train"))
         raise
+    finally:
+        reader.close()
 
 
 def _warm_up(session: Session, model_id: int, stepper: Stepper, target: Step,

@@ -24,6 +24,7 @@ from service.usecases.settings import change_settings
 from service.web.app import create_app
 from service.web.extensions import get_database
 from service.worker import replay as replay_module
+from service.worker.replay_reader import ReadAhead
 from tests.worker.helpers import (
     caught_up,
     database,
@@ -117,12 +118,30 @@ def test_a_long_replay_reads_ahead_in_a_second_process_to_the_same_result(
         database_url: str, monkeypatch: pytest.MonkeyPatch) -> None:
     # Every replay long enough reads, decodes and encodes in a child process
     # (service/worker/replay_reader.py); here every replay is "long enough".
+    # The replay steps inline until the child is ready: here one chunk of
+    # 100 records, then it waits for the child and hands over.
     monkeypatch.setattr(replay_module, "PIPELINE_MIN_RECORDS", 1)
+    checks: list[bool] = []
+    ready = ReadAhead.ready
+
+    def after_one_chunk(reader: ReadAhead) -> bool:
+        checks.append(True)
+        if len(checks) == 1:
+            return False
+        reader._conn.poll(None)  # the child's "ready"
+        return ready(reader)
+
+    monkeypatch.setattr(ReadAhead, "ready", after_one_chunk)
     db, model_id = trained_online(database_url)
     for version in versions(db, model_id)[-2:]:
-        result = replay(database_url, "--version", str(version.number))
+        checks.clear()
+        result = CliRunner().invoke(
+            cli, ["replay", "pumps", "--quiet", "--version", str(version.number)],
+            env={"KEELSON_DATABASE_URL": database_url, "KEELSON_WORKER_CHUNK_RECORDS": "100"},
+            catch_exceptions=False)
         assert result.exit_code == 0, result.output
         assert f"version {version.number} (online): identical" in result.output
+        assert len(checks) == 2  # one chunk inline, then the child
     db.engine.dispose()
 
 
