@@ -151,3 +151,18 @@ def bench_delete(as_json: bool, records: int, seconds: float, postgres_url: str 
 
 
 bench.add_command(bench_track_record)
+
+
+@bench.command("replay")
+@click.option("--json", "as_json", is_flag=True, help="One JSON object.")
+@click.option("--records", type=click.IntRange(min=1000), default=100_000, show_default=True,
+              help="Records a worker learns, then replayed.")
+@click.option("--postgres-url", default=_bench_postgres_url,
+              help="Also measure on this PostgreSQL server (a scratch database is made) "
+                   "[env KEELSON_BENCH_POSTGRES_URL].")
+def bench_replay(as_json: bool, records: int, postgres_url: str | None) -> None:
+    """`keelson replay`'s rebuild against the engine's online rate on the same records."""
+    from service.tools.bench.replay import run_replay_bench
+
+    emit(run_replay_bench(records=records, postgres_url=postgres_url, progress=_progress),
+         as_json)
