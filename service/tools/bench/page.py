@@ -129,12 +129,12 @@ def _store(app: Any, records: int, versions: int, progress: Progress) -> None:
 
     spec = engine.apply_defaults(SPEC)
     rng = np.random.default_rng(5)
-    rows = [{"vibration_rms": float(v), "bearing_temp_c": float(t),
+    rows: list[dict[str, Any]] = [{"vibration_rms": float(v), "bearing_temp_c": float(t),
              "pump_family": "screw" if s else "centrifugal", "has_vfd": bool(f)}
             for v, t, s, f in zip(rng.uniform(0, 40, 500), rng.uniform(-10, 120, 500),
                                   rng.random(500) < 0.5, rng.random(500) < 0.5, strict=True)]
-    labels = ["failed" if r["vibration_rms"] / 20 + (0 if r["has_vfd"] else 0.5) > 1.2 else "ok"
-              for r in rows]
+    labels = ["failed" if float(r["vibration_rms"]) / 20 + (0 if r["has_vfd"] else 0.5) > 1.2
+              else "ok" for r in rows]
     learner = engine.Learner.create(spec, warmup=rows, warmup_labels=labels)
     learner.learn(learner.encode(rows), learner.encode_labels(labels))
     snapshot = learner.to_bytes()

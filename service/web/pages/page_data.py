@@ -144,8 +144,8 @@ def learning_curve(every: Any, live: dict[int, dict[str, Any]], metric: str,
         points.append({"version": number, "x": seen, "holdout": holdout,
                        "prequential": prequential, "live": on_live,
                        "active": number == active})
-    series = {key: [p[key] for p in points]
-              for key in ("version", "x", "holdout", "prequential", "live")}
+    series: dict[str, Any] = {key: [p[key] for p in points]
+                              for key in ("version", "x", "holdout", "prequential", "live")}
     series["active"] = next((i for i, p in enumerate(points) if p["active"]), None)
     return {"metric": metric, "points": points, "series": series,
             "rows": _curve_rows(points)}
