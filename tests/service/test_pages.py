@@ -242,3 +242,15 @@ def test_a_short_secret_key_is_refused_at_start() -> None:
     from service.config import ConfigError, load_config
     with pytest.raises(ConfigError):
         load_config({"KEELSON_SECRET_KEY": "short"})
+
+
+def test_signing_out_ends_every_copy_of_the_session(site: ApiClient) -> None:
+    pages = PageClient(site.app)
+    response = pages.sign_in(ADMIN_TOKEN)
+    cookie = [c for c in response.headers.getlist("Set-Cookie")
+              if c.startswith("keelson_session=")][0].split(";")[0].split("=", 1)[1]
+    copy = site.app.test_client()
+    copy.set_cookie("keelson_session", cookie)
+    assert copy.get("/").status_code == 200
+    pages.post_form("/", "/sign-out", {})
+    assert copy.get("/").status_code == 303  # the copy is refused too
