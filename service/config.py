@@ -163,6 +163,11 @@ SETTINGS: tuple[Setting, ...] = (
     Setting("KEELSON_ADMIN_TOKEN", API, None, text,
             "a bearer token with every scope (otherwise create tokens with "
             "`keelson token create`); blank counts as unset"),
+    Setting("KEELSON_SECRET_KEY", API, None, text,
+            "the key that signs page session cookies and CSRF tokens (at least 32 "
+            "characters); blank: one is generated once and kept in the database"),
+    Setting("KEELSON_SESSION_HOURS", API, 12.0, positive_number,
+            "how long a page session lasts after signing in"),
     Setting("KEELSON_MAX_BODY_BYTES", API, 16 * MIB, positive_whole_number,
             "largest request body in bytes (16 MiB; 413 beyond)"),
     Setting("KEELSON_MAX_RECORDS_PER_REQUEST", API, 10_000, positive_whole_number,

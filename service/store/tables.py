@@ -370,3 +370,18 @@ class DriftTallyRow(Base):
     predictions: Mapped[int] = mapped_column(BigInteger)
     counts: Mapped[bytes] = mapped_column(LargeBinary)
     updated_at: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True), default=utcnow)
+
+
+# ---------------------------------------------------------------------------
+# Secrets the service makes for itself, shared by every API process.
+
+
+class SiteSecretRow(Base):
+    """A secret generated once by the first process that needed it (the page
+    session key when KEELSON_SECRET_KEY is not set), read by every other."""
+
+    __tablename__ = "site_secrets"
+
+    name: Mapped[str] = mapped_column(String(64), primary_key=True)
+    value: Mapped[str] = mapped_column(String(128))
+    created_at: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True), default=utcnow)

@@ -1,0 +1,31 @@
+"""site secrets: a secret the service generates once and every API process
+shares (the page session key when KEELSON_SECRET_KEY is not set)
+
+Revision ID: 0012
+Revises: 0010
+Create Date: 2026-12-03 15:30:00
+"""
+
+from __future__ import annotations
+
+import sqlalchemy as sa
+from alembic import op
+
+revision = "0012"
+down_revision = "0010"
+branch_labels = None
+depends_on = None
+
+
+def upgrade() -> None:
+    op.create_table(
+        "site_secrets",
+        sa.Column("name", sa.String(length=64), nullable=False),
+        sa.Column("value", sa.String(length=128), nullable=False),
+        sa.Column("created_at", sa.DateTime(timezone=True), nullable=False),
+        sa.PrimaryKeyConstraint("name", name=op.f("pk_site_secrets")),
+    )
+
+
+def downgrade() -> None:
+    op.drop_table("site_secrets")
