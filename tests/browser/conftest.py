@@ -47,13 +47,18 @@ def browser_missing() -> str | None:
     return None
 
 
-@pytest.fixture(scope="session")
-def browser() -> Iterator[Any]:
+def require_browser() -> None:
+    """Skip saying what is missing, or fail under KEELSON_REQUIRE_BROWSER=1."""
     missing = browser_missing()
     if missing is not None:
         if os.environ.get("KEELSON_REQUIRE_BROWSER") == "1":
             pytest.fail(f"KEELSON_REQUIRE_BROWSER=1 but {missing}")
         pytest.skip(missing)
+
+
+@pytest.fixture(scope="session")
+def browser() -> Iterator[Any]:
+    require_browser()
     from playwright.sync_api import sync_playwright
 
     with sync_playwright() as playwright:
