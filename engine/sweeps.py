@@ -36,7 +36,8 @@ def sweep_grid(learner: Learner, field: str, points: int) -> NDArray[np.float64]
     return np.linspace(low, high, points)
 
 
-def sweep(learner: Learner, row: Mapping[str, Any], grids: Mapping[str, Sequence[float]]
+def sweep(learner: Learner, row: Mapping[str, Any],
+          grids: Mapping[str, Sequence[float] | NDArray[np.float64]]
           ) -> dict[str, NDArray[np.float64]]:
     """Per field, the learner's outputs (points, n_outputs), as ``predict``
     answers them, for ``row`` with that field set to each value of its grid."""

@@ -282,6 +282,13 @@ def _aim(case: Any, data: st.DataObject, model: ModelRequests, flow: ModelReques
         if extreme:
             case.body["records"] = [{**item, "features": _extreme(item["features"], seed // 12)}
                                     for item in case.body["records"]]
+    elif path.endswith("/sweeps"):
+        # A record of the model's own schema (which fields and classes a model
+        # has is no part of the generic document); the rest as drawn.
+        drawn = data.draw(model.predictions, label="sweep record").body
+        body = case.body if isinstance(case.body, dict) else {}
+        case.body = {key: value for key, value in body.items() if key in ("points", "version")}
+        case.body["features"] = drawn["records"][0]["features"]
     elif path.endswith("/records"):
         body = data.draw(model.records, label="records body").body
         case.body = model.as_csv(body["records"]) if case.media_type == "text/csv" else body

@@ -18,10 +18,12 @@ from tests.service.page_client import PageClient, csrf_of, served_model
 
 
 @pytest.fixture
-def site(api: ApiClient) -> ApiClient:
-    create_model(api)
-    served_model(api.app)
-    return api
+def site(any_api: ApiClient) -> ApiClient:
+    """A pump model with version 1 serving and a candidate version 2, on
+    SQLite and on PostgreSQL."""
+    create_model(any_api)
+    served_model(any_api.app)
+    return any_api
 
 
 def test_a_page_without_a_session_sends_to_sign_in(app: Flask) -> None:

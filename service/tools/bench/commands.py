@@ -173,4 +173,24 @@ def bench_page_load(as_json: bool, runs: int, records: int, screenshots: Path | 
                              chromium=chromium, progress=_progress), as_json)
 
 
+@bench.command("page")
+@click.option("--json", "as_json", is_flag=True, help="One JSON object.")
+@click.option("--records", type=click.IntRange(min=1000), default=1_000_000, show_default=True,
+              help="Records stored.")
+@click.option("--versions", type=click.IntRange(min=1), default=500, show_default=True,
+              help="Versions stored.")
+@click.option("--repeats", type=click.IntRange(min=5), default=50, show_default=True,
+              help="Requests per page.")
+@click.option("--postgres-url", default=_bench_postgres_url,
+              help="Also measure on this PostgreSQL server (a scratch database is made) "
+                   "[env KEELSON_BENCH_POSTGRES_URL].")
+def bench_page(as_json: bool, records: int, versions: int, repeats: int,
+               postgres_url: str | None) -> None:
+    """Server time per page (overview, model, what-if) with a long history stored."""
+    from service.tools.bench.page import run_page_bench
+
+    emit(run_page_bench(records=records, versions=versions, repeats=repeats,
+                        postgres_url=postgres_url, progress=_progress), as_json)
+
+
 bench.add_command(bench_track_record)

@@ -12,13 +12,13 @@ from __future__ import annotations
 
 from flask import Flask
 
-from service.web.pages.views import blueprint
+from service.web.pages.guard import blueprint
 
 __all__ = ["blueprint", "init_app"]
 
 
 def init_app(app: Flask) -> None:
     # Imported for its routes: the what-if page and the assets.
-    from service.web.pages import assets, what_if  # noqa: F401
+    from service.web.pages import assets, views, what_if  # noqa: F401
 
     app.register_blueprint(blueprint)

@@ -13,6 +13,7 @@ import datetime as dt
 from collections.abc import Collection
 from typing import Any
 
+from markupsafe import Markup
 from sqlalchemy import select
 
 from engine.drift import STATUSES
@@ -28,6 +29,8 @@ from service.usecases.predictions import find_model as cached_model
 from service.versions.cache import VersionCache
 
 MAX_MODELS = 1000
+# Rows of the versions table unless all are asked for (the curve has every one).
+VERSIONS_SHOWN = 30
 RECENT_JOBS = 10
 # Every version a model has, for the curve and the table: bounded by what a
 # model keeps; past it the oldest are left out of the page (the API pages them).
@@ -88,13 +91,22 @@ def drift(db: Database, cache: VersionCache, references: ReferenceCache, name: s
 
 
 def model_page(db: Database, cache: VersionCache, references: ReferenceCache,
-               name: str) -> dict[str, Any]:
+               name: str, *, all_versions: bool = False) -> dict[str, Any]:
+    """The model page's data. The curve has every version; the table the
+    latest VERSIONS_SHOWN unless ``all_versions``."""
     model = models.get_model(db, name)
-    listed, _ = versions.list_versions(db, name, limit=MAX_VERSIONS)
     with db.read() as session:
         model_id = find_model(session, name).id
         made_active = _promotions(session, model_id)
         jobs = _jobs(session, model_id)
+        every = session.execute(
+            select(VersionRow.number, VersionRow.records_seen, VersionRow.metrics)
+            .where(VersionRow.model_id == model_id)
+            .order_by(VersionRow.number.desc()).limit(MAX_VERSIONS)).all()
+    shown = max(1, len(every) if all_versions else VERSIONS_SHOWN)
+    first = every[shown - 1].number if every and shown <= len(every) else None
+    listed, _ = versions.list_versions(db, name, limit=shown,
+                                       after=None if first is None else first - 1)
     today = dt.datetime.now(dt.UTC).date()
     since, until = track_record_summary.resolve_window(None, None, today)
     record = track_record_summary.track_record(db, name, since, until)
@@ -104,11 +116,11 @@ def model_page(db: Database, cache: VersionCache, references: ReferenceCache,
         version["made_active"] = made_active.get(version["number"])
         entry = live.get(version["number"])
         version["live"] = None if entry is None else entry["metrics"].get(metric)
-        version["live_n"] = 0 if entry is None else entry["metrics"].get("n", 0)
     active = live.get(record["active_version"]) if record["active_version"] else None
     return {
         "model": model, "versions": listed, "metric": metric, "jobs": jobs,
-        "curve": learning_curve(listed, metric, model["active_version"]),
+        "version_count": len(every),
+        "curve": learning_curve(every, live, metric, model["active_version"]),
         "calibration": None if active is None else active["calibration"],
         "calibration_n": 0 if active is None else active["metrics"].get("n", 0),
         "alarm": record["alarm"], "window": {"since": since, "until": until},
@@ -116,21 +128,40 @@ def model_page(db: Database, cache: VersionCache, references: ReferenceCache,
     }
 
 
-def learning_curve(listed: list[dict[str, Any]], metric: str, active: int | None
-                   ) -> dict[str, Any]:
-    """One point per version with a holdout figure: x records seen, the
-    holdout, prequential and live figures (None where there is none)."""
+def learning_curve(every: Any, live: dict[int, dict[str, Any]], metric: str,
+                   active: int | None) -> dict[str, Any]:
+    """One point per version with a figure: x records seen, the holdout,
+    prequential and live figures (None where there is none)."""
     points = []
-    for version in sorted(listed, key=lambda v: (v["records_seen"], v["number"])):
-        figures = version["metrics"] or {}
+    for number, seen, figures in sorted(every, key=lambda v: (v.records_seen, v.number)):
+        figures = figures or {}
         holdout = (figures.get("holdout") or {}).get(metric)
         prequential = (figures.get("prequential") or {}).get(metric)
-        if holdout is None and prequential is None:
+        entry = live.get(number)
+        on_live = None if entry is None else entry["metrics"].get(metric)
+        if holdout is None and prequential is None and on_live is None:
             continue
-        points.append({"version": version["number"], "x": version["records_seen"],
-                       "holdout": holdout, "prequential": prequential,
-                       "live": version["live"], "active": version["number"] == active})
-    return {"metric": metric, "points": points}
+        points.append({"version": number, "x": seen, "holdout": holdout,
+                       "prequential": prequential, "live": on_live,
+                       "active": number == active})
+    series: dict[str, Any] = {key: [p[key] for p in points]
+                              for key in ("version", "x", "holdout", "prequential", "live")}
+    series["active"] = next((i for i, p in enumerate(points) if p["active"]), None)
+    return {"metric": metric, "points": points, "series": series,
+            "rows": _curve_rows(points)}
+
+
+def _curve_rows(points: list[dict[str, Any]]) -> Markup:
+    """The curve's table body, made here: hundreds of rows of numbers only,
+    where the template's filters cost more than the page's queries."""
+    def cell(value: float | None) -> str:
+        return "–" if value is None else f"{value:.4f}"
+    return Markup("".join(
+        f'<tr data-curve-version="{p["version"]}"><th scope="row">{p["version"]}'
+        f'{" (serving)" if p["active"] else ""}</th><td class="num">{p["x"]:,}</td>'
+        f'<td class="num">{cell(p["holdout"])}</td><td class="num">'
+        f'{cell(p["prequential"])}</td><td class="num">{cell(p["live"])}</td></tr>'
+        for p in points))
 
 
 def _promotions(session: Any, model_id: int) -> dict[int, dict[str, Any]]:

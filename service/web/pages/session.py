@@ -22,10 +22,11 @@ import secrets
 from typing import Any, NamedTuple
 from urllib.parse import urlsplit
 
-from flask import Flask, Response, current_app, g, request
+from flask import Flask, current_app, g, request
 from itsdangerous import BadSignature, URLSafeTimedSerializer
 from sqlalchemy import select
 from sqlalchemy.exc import IntegrityError
+from werkzeug.wrappers import Response
 
 from service.errors import ForbiddenError
 from service.store.database import transaction
@@ -86,8 +87,10 @@ def _stored_key(app: Flask) -> str:
     except IntegrityError:
         pass  # another process stored one first: use it
     with database.read() as session:
-        stored: str = session.scalar(
+        stored = session.scalar(
             select(SiteSecretRow.value).where(SiteSecretRow.name == KEY_NAME))
+    if stored is None:
+        raise RuntimeError("the page session key could not be stored")
     return stored
 
 

@@ -69,7 +69,7 @@ def overview() -> str:
 @looks
 def model_page(name: str) -> str:
     data = page_data.model_page(get_database(), get_version_cache(), get_drift_references(),
-                                name)
+                                name, all_versions=request.args.get("versions") == "all")
     drift = data["drift"]
     numeric = [] if drift is None else [f["name"] for f in drift["fields"]
                                         if f["type"] == "numeric"]

@@ -36,13 +36,11 @@
   }
 
   function learningCurve(el) {
-    var pts = json(el, "data-series") || [];
-    if (!pts.length) { return; }
+    var d = json(el, "data-series");
+    if (!d || !d.x.length) { return; }
     var metric = el.getAttribute("data-metric");
-    var pick = function (k) { return pts.map(function (p) { return p[k]; }); };
-    var active = pts.filter(function (p) { return p.active; })[0];
+    var at = d.active;
     draw(el, {
-      title: "",
       scales: { x: { time: false } },
       axes: axes("records seen", metric),
       series: [{ label: "records seen" },
@@ -50,9 +48,9 @@
         { label: "prequential", stroke: EARTH, width: 2, dash: [6, 4], points: { show: true, size: 5 } },
         { label: "live", stroke: PLUM, width: 2, dash: [2, 3], points: { show: true, size: 5 } }],
       hooks: { draw: [function (u) {
-        if (active) { ringAt(u, active.x, active.holdout != null ? active.holdout : active.prequential); }
+        if (at != null) { ringAt(u, d.x[at], d.holdout[at] != null ? d.holdout[at] : d.prequential[at]); }
       }] }
-    }, [pick("x"), pick("holdout"), pick("prequential"), pick("live")]);
+    }, [d.x, d.holdout, d.prequential, d.live]);
   }
 
   function calibration(el) {
