@@ -6,7 +6,7 @@ Inside the Black Box", JCGS 24(1)).
 Every point of every swept field is one row of a single batch: encoded by the
 learner's encoder and scored by one forward pass of the shared kernel, the
 same path a batch of predictions takes, so a sweep point and a prediction of
-the same record agree to the last bit.
+the same record agree up to the summation order of a batch's matrix product.
 """
 
 from __future__ import annotations

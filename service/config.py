@@ -32,6 +32,13 @@ def text(value: Any) -> str:
     return value
 
 
+def secret_key(value: Any) -> str:
+    """Text of at least 32 characters (a key that signs)."""
+    if not isinstance(value, str) or len(value) < 32:
+        raise ValueError("must be at least 32 characters")
+    return value
+
+
 def whole_number(value: Any) -> int:
     """An integer: ``8``, not ``8.0``."""
     if isinstance(value, int | str) and not isinstance(value, bool):
@@ -163,7 +170,7 @@ SETTINGS: tuple[Setting, ...] = (
     Setting("KEELSON_ADMIN_TOKEN", API, None, text,
             "a bearer token with every scope (otherwise create tokens with "
             "`keelson token create`); blank counts as unset"),
-    Setting("KEELSON_SECRET_KEY", API, None, text,
+    Setting("KEELSON_SECRET_KEY", API, None, secret_key,
             "the key that signs page session cookies and CSRF tokens (at least 32 "
             "characters); blank: one is generated once and kept in the database"),
     Setting("KEELSON_SESSION_HOURS", API, 12.0, positive_number,

@@ -1,5 +1,6 @@
 """site secrets: a secret the service generates once and every API process
-shares (the page session key when KEELSON_SECRET_KEY is not set)
+shares (the page session key when KEELSON_SECRET_KEY is not set), and the
+page sessions signed out before their cookies expired
 
 Revision ID: 0012
 Revises: 0010
@@ -25,7 +26,15 @@ def upgrade() -> None:
         sa.Column("created_at", sa.DateTime(timezone=True), nullable=False),
         sa.PrimaryKeyConstraint("name", name=op.f("pk_site_secrets")),
     )
+    # Page sessions signed out before their cookie expired.
+    op.create_table(
+        "ended_sessions",
+        sa.Column("nonce", sa.String(length=64), nullable=False),
+        sa.Column("ends_at", sa.DateTime(timezone=True), nullable=False),
+        sa.PrimaryKeyConstraint("nonce", name=op.f("pk_ended_sessions")),
+    )
 
 
 def downgrade() -> None:
+    op.drop_table("ended_sessions")
     op.drop_table("site_secrets")

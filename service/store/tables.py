@@ -385,3 +385,13 @@ class SiteSecretRow(Base):
     name: Mapped[str] = mapped_column(String(64), primary_key=True)
     value: Mapped[str] = mapped_column(String(128))
     created_at: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True), default=utcnow)
+
+
+class EndedSessionRow(Base):
+    """A page session signed out before its cookie expired: its nonce is
+    refused until ``ends_at`` (the cookie's own end), then the row may go."""
+
+    __tablename__ = "ended_sessions"
+
+    nonce: Mapped[str] = mapped_column(String(64), primary_key=True)
+    ends_at: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True))

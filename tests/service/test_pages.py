@@ -205,3 +205,52 @@ def test_pages_carry_a_strict_content_security_policy(site: ApiClient) -> None:
     assert not re.search(r"\son[a-z]+=", page)  # no inline event handler
     assert not re.search(r"\sstyle=", page)  # no inline style
     assert not re.search(r'(src|href)="(https?:)?//', page)  # no other origin
+
+
+def test_the_configured_key_signs_sessions_every_process_accepts(sqlite_url: str) -> None:
+    """Two apps (two API processes) with one KEELSON_SECRET_KEY: a session
+    made by one is a session for the other; with another key it is not."""
+    from tests.service.conftest import build_app
+    key = "k" * 40
+    first, second = (build_app(sqlite_url, KEELSON_SECRET_KEY=key) for _ in range(2))
+    other = build_app(sqlite_url, KEELSON_SECRET_KEY="x" * 40)
+    response = PageClient(first).sign_in(ADMIN_TOKEN)
+    cookie = [c for c in response.headers.getlist("Set-Cookie")
+              if c.startswith("keelson_session=")][0].split(";")[0].split("=", 1)[1]
+    for app, status in ((second, 200), (other, 303)):
+        client = app.test_client()
+        client.set_cookie("keelson_session", cookie)
+        assert client.get("/").status_code == status
+    for app in (first, second, other):
+        get_database(app).engine.dispose()
+
+
+def test_without_a_configured_key_one_is_kept_in_the_database(sqlite_url: str) -> None:
+    from tests.service.conftest import build_app
+    first, second = build_app(sqlite_url), build_app(sqlite_url)
+    response = PageClient(first).sign_in(ADMIN_TOKEN)
+    cookie = [c for c in response.headers.getlist("Set-Cookie")
+              if c.startswith("keelson_session=")][0].split(";")[0].split("=", 1)[1]
+    client = second.test_client()
+    client.set_cookie("keelson_session", cookie)
+    assert client.get("/").status_code == 200
+    for app in (first, second):
+        get_database(app).engine.dispose()
+
+
+def test_a_short_secret_key_is_refused_at_start() -> None:
+    from service.config import ConfigError, load_config
+    with pytest.raises(ConfigError):
+        load_config({"KEELSON_SECRET_KEY": "short"})
+
+
+def test_signing_out_ends_every_copy_of_the_session(site: ApiClient) -> None:
+    pages = PageClient(site.app)
+    response = pages.sign_in(ADMIN_TOKEN)
+    cookie = [c for c in response.headers.getlist("Set-Cookie")
+              if c.startswith("keelson_session=")][0].split(";")[0].split("=", 1)[1]
+    copy = site.app.test_client()
+    copy.set_cookie("keelson_session", cookie)
+    assert copy.get("/").status_code == 200
+    pages.post_form("/", "/sign-out", {})
+    assert copy.get("/").status_code == 303  # the copy is refused too

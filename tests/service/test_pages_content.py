@@ -94,3 +94,28 @@ def test_a_bad_value_is_shown_beside_its_field(pages: PageClient) -> None:
     page = pages.get("/models/pump-risk/what-if?vibration_rms=lots&pump_family=screw&show=1"
                      ).get_data(as_text=True)
     assert 'id="e-vibration_rms"' in page and "data-output" not in page
+
+
+def test_a_regression_what_if_shows_the_value_and_its_sweeps(any_api: ApiClient) -> None:
+    from tests.service.predictions_factory import (
+        add_version,
+        numeric_rows,
+        stored_spec,
+        train_learner,
+    )
+    any_api.request("POST", "/v1/models", 201, json_body={
+        "name": "flow-rate", "task": "regression", "target": "flow_m3h", "classes": None,
+        "features": [{"name": "a", "type": "numeric", "min": 0, "max": 10},
+                     {"name": "b", "type": "numeric", "min": -5, "max": 5}]})
+    learner = train_learner(stored_spec(any_api.app, "flow-rate"), numeric_rows(200),
+                            lambda row: 2 * row["a"] - row["b"])
+    add_version(any_api.app, "flow-rate", learner.to_bytes())
+    pages = PageClient(any_api.app)
+    pages.sign_in(ADMIN_TOKEN)
+    page = pages.get("/models/flow-rate/what-if?a=3&b=1&show=1").get_data(as_text=True)
+    answer = any_api.request("GET", "/v1/models/flow-rate/predictions?a=3&b=1", 200)
+    assert float(attribute(page, 'data-output="value"', "data-value")) == \
+        answer["result"]["value"]
+    assert 'data-sweep-field="a"' in page and 'data-sweep-field="b"' in page
+    assert "data-sweep-class" not in page
+    pages.get("/models/flow-rate")  # no calibration for regression, and no error

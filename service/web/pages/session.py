@@ -6,7 +6,9 @@ token itself. It is signed with the site key (itsdangerous, HMAC-SHA1 over a
 derived key, the scheme Flask's own sessions use) and read back only within
 ``KEELSON_SESSION_HOURS``. On every request the digest is looked up as a
 bearer token is (service.web.auth.grant_for_digest, through the token cache),
-so revoking the token ends its sessions within ``KEELSON_TOKEN_CACHE_SECONDS``.
+so revoking the token ends its sessions within ``KEELSON_TOKEN_CACHE_SECONDS``;
+signing out records the session's nonce as ended (table ``ended_sessions``),
+so a copy of the cookie is refused too.
 
 CSRF: every form that changes something carries an HMAC of the session's nonce
 (the sign-in form: of a nonce in a cookie of its own, set with the form). A
@@ -16,6 +18,7 @@ says another site sent it, is refused with 403 before anything is read.
 
 from __future__ import annotations
 
+import datetime as dt
 import hashlib
 import hmac
 import secrets
@@ -24,13 +27,13 @@ from urllib.parse import urlsplit
 
 from flask import Flask, current_app, g, request
 from itsdangerous import BadSignature, URLSafeTimedSerializer
-from sqlalchemy import select
+from sqlalchemy import delete, select
 from sqlalchemy.exc import IntegrityError
 from werkzeug.wrappers import Response
 
 from service.errors import ForbiddenError
 from service.store.database import transaction
-from service.store.tables import SiteSecretRow
+from service.store.tables import EndedSessionRow, SiteSecretRow
 from service.web.auth import Grant, grant_for_digest
 from service.web.extensions import get_database
 
@@ -40,7 +43,6 @@ CSRF_FIELD = "csrf_token"
 KEY_NAME = "page_session_key"
 _KEY = "keelson.page_key"
 _SALT = "keelson.page-session"
-MIN_KEY_LENGTH = 32
 
 
 class PageSession(NamedTuple):
@@ -64,13 +66,8 @@ def site_key(app: Flask) -> bytes:
     key: bytes | None = app.extensions.get(_KEY)
     if key is not None:
         return key
-    configured = app.config.get("KEELSON_SECRET_KEY")
-    if configured:
-        if len(configured) < MIN_KEY_LENGTH:
-            raise ValueError(f"KEELSON_SECRET_KEY must be at least {MIN_KEY_LENGTH} characters")
-        key = configured.encode()
-    else:
-        key = _stored_key(app).encode()
+    configured = app.config.get("KEELSON_SECRET_KEY")  # 32 characters or more (config)
+    key = configured.encode() if configured else _stored_key(app).encode()
     app.extensions[_KEY] = key
     return key
 
@@ -123,6 +120,9 @@ def _read(cookie: str | None) -> PageSession | None:
         digest, nonce = str(data["d"]), str(data["n"])
     except (BadSignature, KeyError, TypeError):
         return None
+    with get_database().read() as session:
+        if session.get(EndedSessionRow, nonce) is not None:
+            return None  # signed out
     grant = grant_for_digest(digest)
     if grant is None or not ({"predict", "admin"} & grant.scopes):
         return None
@@ -144,7 +144,15 @@ def start(response: Response, token: str) -> bool:
     return True
 
 
-def end(response: Response) -> None:
+def end(response: Response, nonce: str) -> None:
+    """Sign out: the session's nonce is refused from now on, by every process
+    (a copy of the cookie included), and the cookie is deleted."""
+    now = dt.datetime.now(dt.UTC)
+    with transaction(get_database().write) as session:
+        session.execute(delete(EndedSessionRow).where(EndedSessionRow.ends_at < now))
+        if session.get(EndedSessionRow, nonce) is None:
+            session.add(EndedSessionRow(nonce=nonce,
+                                        ends_at=now + dt.timedelta(seconds=_lifetime())))
     response.delete_cookie(COOKIE, path="/", httponly=True, samesite="Strict", secure=_secure())
 
 

@@ -53,7 +53,7 @@ def sign_in() -> Response:
 @looks
 def sign_out() -> Response:
     response = redirect("/sign-in", 303)
-    session.end(response)
+    session.end(response, g.page_user.nonce)
     return response  # type: ignore[return-value]
 
 
