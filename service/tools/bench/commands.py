@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from pathlib import Path
+
 import click
 
 from service.tools.bench.track_record import bench_track_record
@@ -148,6 +150,27 @@ def bench_delete(as_json: bool, records: int, seconds: float, postgres_url: str 
 
     emit(run_delete_bench(records=records, seconds=seconds, postgres_url=postgres_url,
                           progress=_progress), as_json)
+
+
+@bench.command("page-load")
+@click.option("--json", "as_json", is_flag=True, help="One JSON object.")
+@click.option("--runs", type=click.IntRange(1, 100), default=5, show_default=True,
+              help="Cold loads of the model page, each in a fresh browser context.")
+@click.option("--records", type=click.IntRange(min=1000), default=5000, show_default=True,
+              help="Demo records loaded before the page is measured.")
+@click.option("--screenshots", type=click.Path(file_okay=False, path_type=Path), default=None,
+              help="Also save the overview, model and what-if pages as PNGs in this folder "
+                   "(the README's: docs/screenshots).")
+@click.option("--chromium", default="/usr/bin/chromium", show_default=True,
+              help="The Chromium to drive (Debian's package).")
+def bench_page_load(as_json: bool, runs: int, records: int, screenshots: Path | None,
+                    chromium: str) -> None:
+    """The model page in headless Chromium: load event time, JS and CSS bytes (needs
+    the test extra's Playwright and Debian's chromium)."""
+    from service.tools.bench.page_load import run_page_load_bench
+
+    emit(run_page_load_bench(runs=runs, records=records, screenshots=screenshots,
+                             chromium=chromium, progress=_progress), as_json)
 
 
 @bench.command("page")

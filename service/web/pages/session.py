@@ -176,7 +176,10 @@ def check_post(nonce: str | None) -> None:
     """403 for a POST another site sent, or one without this session's token."""
     origin = request.headers.get("Origin")
     # The host alone: behind a proxy that ends TLS the scheme seen here differs.
-    if origin is not None and urlsplit(origin).netloc != request.host:
+    # "null" is what a browser sends for its own pages under Referrer-Policy:
+    # no-referrer (every answer's, service/web/headers.py); Sec-Fetch-Site and
+    # the token below still tell this site's forms from another's.
+    if origin is not None and origin != "null" and urlsplit(origin).netloc != request.host:
         raise ForbiddenError("This form was sent from another site.")
     if request.headers.get("Sec-Fetch-Site", "same-origin") not in ("same-origin", "none"):
         raise ForbiddenError("This form was sent from another site.")
