@@ -3,7 +3,7 @@ shares (the page session key when KEELSON_SECRET_KEY is not set), and the
 page sessions signed out before their cookies expired
 
 Revision ID: 0012
-Revises: 0010
+Revises: 0011
 Create Date: 2026-12-03 15:30:00
 """
 
