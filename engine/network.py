@@ -179,6 +179,10 @@ class Network:
         if len(kept) < POOL_DEPTH and work.params is self.params:
             kept.append(work)
 
+    def pooled_bytes(self) -> int:
+        """Bytes the workspace pool holds now (bounded: see POOL_BYTES)."""
+        return sum(work.nbytes for kept in list(self._pool.values()) for work in list(kept))
+
     def logits(self, X: Array) -> Array:
         """Output pre-activations (n, n_outputs)."""
         X = self.check_inputs(X)
