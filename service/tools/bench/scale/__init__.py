@@ -70,7 +70,12 @@ def _fleet(base: str, fleet: Fleet, workers: tuple[int, ...], progress: Progress
     runs = []
     for count in workers:
         progress(f"[fleet] {len(fleet.ids)} models, {count} worker(s)")
-        runs.append(measure(base, fleet, count, progress, keep=kept))
+        run = measure(base, fleet, count, progress, keep=kept)
+        progress(f"[fleet] {count} worker(s): {run['train_records_per_s']} train records/s, "
+                 f"longest wait {run['longest_wait_s']} s, trickle "
+                 f"{run['trickle']['longest_wait_s']} s, peak RSS "
+                 f"{[w['peak_rss_mib'] for w in run['per_worker']]} MiB")
+        runs.append(run)
     progress(f"[fleet] one model holding the same {fleet.total} records, 1 worker")
     with _one_model_template(base, fleet.total) as (one_url, one):
         baseline = measure(one_url, one, 1, progress)
