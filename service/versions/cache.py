@@ -37,6 +37,8 @@ log = logging.getLogger(__name__)
 
 # Unknown names remembered, and (model, number) -> version id pairs kept.
 MISSING_NAMES, NUMBERS = 4096, 4096
+# Most models whose active pointers one query re-reads.
+POINTER_BATCH = 1000
 K = TypeVar("K", bound=Hashable)
 V = TypeVar("V")
 
@@ -198,7 +200,46 @@ class VersionCache:
             missed_at = self._missing.get(name)
             if missed_at is not None and self._clock() - missed_at <= self.max_age:
                 raise ModelNotFound(name)
-        return self._refresh(name, entry)
+            return self._refresh(name, entry)
+        refreshed = self._refresh_pointers(name)
+        return refreshed if refreshed is not None else self._refresh(name, entry)
+
+    def _refresh_pointers(self, name: str) -> ModelEntry | None:
+        """Re-read, in one query, the active pointers of ``name`` and of every
+        other known model whose copy is past half the bound: with many models
+        served round-robin, a query per request (each model's copy found stale
+        at its next request) becomes one per half bound. The spec and derived
+        objects are kept (a model's spec changes only through this process's
+        own PATCH, which forgets it, or is re-read when its id changes). None
+        when ``name`` must be read whole (gone, or another model by that name)."""
+        now = self._clock()
+        stale = [known for known, entry in list(self._models.items())
+                 if now - entry.checked_at > self.max_age / 2][:POINTER_BATCH]
+        if name not in stale:
+            stale.append(name)
+        active = aliased(VersionRow)
+        with self._sessions() as session:
+            rows = session.execute(
+                select(ModelRow.name, ModelRow.id, ModelRow.active_version_id, active.number)
+                .outerjoin(active, active.id == ModelRow.active_version_id)
+                .where(ModelRow.name.in_(stale))
+            ).all()
+        found = {row[0]: row[1:] for row in rows}
+        for known in stale:
+            previous = self._models.get(known)
+            current = found.get(known)
+            if previous is None:
+                continue
+            if current is None or current[0] != previous.id:
+                self._models.pop(known, None)  # read whole at its next use
+                continue
+            model_id, version_id, number = current
+            self._models[known] = ModelEntry(
+                id=model_id, name=known, spec=previous.spec, active_version_id=version_id,
+                active_version_number=number, checked_at=now, derived=previous.derived)
+            if version_id is not None and number is not None:
+                self._numbers.put((model_id, number), version_id)
+        return self._models.get(name)
 
     def _refresh(self, name: str, previous: ModelEntry | None) -> ModelEntry:
         now = self._clock()

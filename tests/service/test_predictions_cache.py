@@ -315,3 +315,17 @@ def test_a_cold_load_holds_up_neither_other_versions_nor_loads_it_twice(
     second.join(60)
     assert got["first"] is got["second"]
     assert loads.count(b"slow") == 1
+
+
+def test_stale_pointers_of_many_models_are_read_again_in_one_query(engine: Engine) -> None:
+    clock = Clock()
+    ids = [add_model(engine, f"station-{k}", [b"one", b"two"], active=1) for k in range(20)]
+    cache = make_cache(engine, clock, max_age=1.0)
+    for k in range(20):
+        cache.version(cache.model(f"station-{k}"))
+    promote(engine, ids[7], 2)
+    clock.now += 1.001
+    counter = QueryCounter(engine)
+    served = [cache.model(f"station-{k}").active_version_number for k in range(20)]
+    assert counter.count == 1  # one query for the twenty, not one each
+    assert served == [2 if k == 7 else 1 for k in range(20)]
