@@ -197,8 +197,9 @@ SETTINGS: tuple[Setting, ...] = (
             "stating the smallest allowed)"),
     Setting("KEELSON_ACTIVE_STALENESS_SECONDS", API, 1.0, positive_number,
             "how long an API process may serve a replaced active version (at most 1)"),
-    Setting("KEELSON_VERSION_CACHE_SIZE", API, 32, positive_whole_number,
-            "loaded versions kept per API process"),
+    Setting("KEELSON_VERSION_CACHE_MIB", API, 128.0, positive_number,
+            "memory for loaded versions per API process, in MiB (each version's cost is "
+            "measured when it loads; the least recently used go first)"),
     Setting("KEELSON_TOKEN_CACHE_SECONDS", API, 1.0, positive_number,
             "how long an API process trusts a token it looked up (a revocation takes "
             "effect within this)"),
@@ -265,6 +266,10 @@ SETTINGS: tuple[Setting, ...] = (
             "latest holdout records a version is evaluated (and promoted) on"),
     Setting("KEELSON_WORKER_MAX_MODELS", WORKER, None, whole_number,
             "models one worker leases at most (unset: as many as are free)"),
+    Setting("KEELSON_WORKER_RELEASE_SECONDS", WORKER, 60.0, number,
+            "how long a caught-up model (every record applied and stored) stays leased "
+            "and loaded; then its lease is released and its memory freed, and the first "
+            "worker with room claims it again when records come"),
     Setting("KEELSON_WORKER_PROGRESS_SECONDS", WORKER, 1.0, number,
             "seconds between progress writes of a running retrain job"),
     Setting("KEELSON_WORKER_RETRY_SECONDS", WORKER, 1.0, positive_number,

@@ -75,6 +75,9 @@ class OnlineLineage(Stepper):
             self.window = HoldoutWindow(settings.holdout_window)
             self.last_arrival = time.monotonic()
             self._warmup_seen = -1
+            # Since when every record is applied and stored (monotonic; None while
+            # there is work): the worker lets the lineage go after a while.
+            self.settled_since: float | None = None
             # The active version id read with the current chunk (UNREAD outside one).
             self._active_id: Any = UNREAD
             trainer = session.get(TrainerRow, model_id)
@@ -117,8 +120,11 @@ class OnlineLineage(Stepper):
                 self.flush()
             if not self.pending_train and self.cursor == self.stored_cursor:
                 self._clear_fault()  # all applied and stored: nothing left to fail
+                if self.settled_since is None:
+                    self.settled_since = time.monotonic()
             return False
         self.last_arrival = time.monotonic()
+        self.settled_since = None
         try:
             self._apply(chunk)
         finally:
