@@ -170,7 +170,10 @@ class RecordRow(Base):
 
 
 class VersionRow(Base):
-    """An immutable trained state. Only ``status`` and ``promoted_at`` ever change."""
+    """An immutable trained state. Only ``status`` and ``promoted_at`` ever
+    change, and ``snapshot`` once: snapshot retention (service/worker/
+    snapshot_retention.py) may empty it (``pruned_at`` says when) for an old
+    version that was never active; the row, its metrics and lineage stay."""
 
     __tablename__ = "versions"
     __table_args__ = (UniqueConstraint("model_id", "number"),)
@@ -180,7 +183,7 @@ class VersionRow(Base):
     number: Mapped[int] = mapped_column(Integer)
     origin: Mapped[str] = mapped_column(String(16))  # "online" or "retrain"
     status: Mapped[str] = mapped_column(String(16))  # "active", "candidate", "retired"
-    snapshot: Mapped[bytes] = mapped_column(LargeBinary)
+    snapshot: Mapped[bytes | None] = mapped_column(LargeBinary)
     cursor: Mapped[int] = mapped_column(BigInteger)
     records_seen: Mapped[int] = mapped_column(BigInteger)
     metrics: Mapped[dict[str, Any]]
@@ -192,6 +195,7 @@ class VersionRow(Base):
     settings_from_seq: Mapped[int | None] = mapped_column(BigInteger)
     created_at: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True), default=utcnow)
     promoted_at: Mapped[dt.datetime | None] = mapped_column(DateTime(timezone=True))
+    pruned_at: Mapped[dt.datetime | None] = mapped_column(DateTime(timezone=True))
 
 
 class ModelEventRow(Base):
@@ -360,7 +364,11 @@ class DriftTallyRow(Base):
     one NumPy call; as JSON, parsing them took most of its 50 ms)."""
 
     __tablename__ = "drift_tallies"
-    __table_args__ = (UniqueConstraint("model_id", "version_id", "bucket_start", "writer"),)
+    __table_args__ = (
+        UniqueConstraint("model_id", "version_id", "bucket_start", "writer"),
+        # Retention deletes the hours older than KEELSON_DRIFT_TALLY_RETENTION_DAYS.
+        Index("ix_drift_tallies_bucket_start", "bucket_start"),
+    )
 
     id: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=True)
     model_id: Mapped[int] = mapped_column(ForeignKey("models.id", ondelete="CASCADE"))

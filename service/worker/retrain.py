@@ -81,6 +81,8 @@ def run_retrain(
         if n_train == 0:
             raise ModelFault("the model has no train records to retrain on")
         if active is not None:
+            if active.snapshot is None:  # retention never prunes an active version
+                raise ModelFault(f"the active version {active.number} has no snapshot (pruned)")
             learner = Learner.from_bytes(active.snapshot)
             learner.retune(spec["training"])  # a retrain fits with today's settings
             encoder, parent_id = encoder_of(learner), active.id

@@ -102,6 +102,11 @@ class VersionSchema(Schema):
         "description": "The record position of the settings change it was trained under "
                        "(its `at_seq` in the model's history; 0: the settings it was created "
                        "with; null: made before settings could change)."})
+    pruned_at = fields.DateTime(allow_none=True, required=True, metadata={
+        "description": "When snapshot retention pruned its snapshot (null: kept). A pruned "
+                       "version keeps its metrics and lineage but cannot predict, be exported "
+                       "or be promoted (409, `urn:keelson:problem:snapshot-pruned`) until "
+                       "`keelson replay` rebuilds it."})
 
 
 class VersionListSchema(Schema):
