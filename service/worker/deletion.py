@@ -108,6 +108,7 @@ def run_delete(settings: WorkerSettings, reads: sessionmaker[Session],
     # MIN_REST) leaves the lock free at least half the time, long enough for
     # a waiter's next try, so other models' writes get in.
     rest = writes.kw["bind"].dialect.name == "sqlite"
+    after = 0  # records: the seq the next batch starts after
     for name, key, owner, big in STEPS:
         limit = min(settings.delete_batch, VERSION_BATCH) if big else settings.delete_batch
         size = limit
@@ -118,7 +119,7 @@ def run_delete(settings: WorkerSettings, reads: sessionmaker[Session],
                 raise TrainingCancelled(f"delete job {job_id} was stopped")
             began = time.monotonic()
             if key is RecordRow.seq:
-                count = _delete_records(reads, writes, model_id, size)
+                count, after = _delete_records(reads, writes, model_id, size, after)
             else:
                 count = _delete_batch(writes, key, owner, model_id, size)
             took = time.monotonic() - began
@@ -164,22 +165,28 @@ def _wait_until(moment: dt.datetime, cancel: Callable[[], bool]) -> None:
 
 
 def _delete_records(reads: sessionmaker[Session], writes: sessionmaker[Session],
-                    model_id: int, size: int) -> int:
-    """The model's ``size`` oldest records, as one range of its (model_id,
-    seq) index. The range's end is found before the write transaction (no
-    record of a deleted model is added any more), so the write holds its lock
-    for one DELETE with two bound values: against a list of ``size`` ids, the
-    batch held SQLite's write lock 3 to 5 times as long (binding and matching
-    the list cost more than removing the rows)."""
+                    model_id: int, size: int, after: int) -> tuple[int, int]:
+    """The model's ``size`` oldest records after seq ``after`` (those up to it
+    are gone already), as one range of its (model_id, seq) index; how many
+    went, and the seq to continue after.
+
+    The range's end is found before the write transaction (no record of a
+    deleted model is added any more), so the write holds its lock for one
+    DELETE with bounds: against a list of ``size`` ids, the batch held
+    SQLite's write lock 3 to 5 times as long. Both bounds are given: the index
+    scan starts past what earlier batches deleted (on PostgreSQL their dead
+    entries stay until vacuum), and the planner, whose statistics still see
+    the deleted rows, estimates one batch, not the whole table."""
     with reads() as session:
-        last = session.scalar(select(RecordRow.seq).where(RecordRow.model_id == model_id)
-                              .order_by(RecordRow.seq).offset(size - 1).limit(1))
+        last = session.scalar(select(RecordRow.seq).where(
+            RecordRow.model_id == model_id, RecordRow.seq > after)
+            .order_by(RecordRow.seq).offset(size - 1).limit(1))
     with transaction(writes) as session:
-        query = delete(RecordRow).where(RecordRow.model_id == model_id)
+        query = delete(RecordRow).where(RecordRow.model_id == model_id, RecordRow.seq > after)
         if last is not None:  # else fewer than ``size`` are left: all of them
             query = query.where(RecordRow.seq <= last)
         result = session.execute(query.execution_options(synchronize_session=False))
-        return int(result.rowcount)  # type: ignore[attr-defined]
+        return int(result.rowcount), after if last is None else int(last)  # type: ignore[attr-defined]
 
 
 def _delete_batch(writes: sessionmaker[Session], key: InstrumentedAttribute[Any],

@@ -33,12 +33,20 @@ def test_records_go_oldest_first_a_batch_at_a_time(database_url: str) -> None:
                 return [f["x"] for f in session.scalars(select(RecordRow.features).where(
                     RecordRow.model_id == model).order_by(RecordRow.seq))]
 
-        assert deletion._delete_records(db.read, db.write, doomed, 3) == 3
+        with db.read() as session:
+            seqs = list(session.scalars(select(RecordRow.seq).where(
+                RecordRow.model_id == doomed).order_by(RecordRow.seq)))
+        count, after = deletion._delete_records(db.read, db.write, doomed, 3, 0)
+        assert (count, after) == (3, seqs[2])
         assert left(doomed) == [3.0, 4.0, 5.0, 6.0]
-        assert deletion._delete_records(db.read, db.write, doomed, 3) == 3
-        assert deletion._delete_records(db.read, db.write, doomed, 3) == 1  # the rest
-        assert deletion._delete_records(db.read, db.write, doomed, 3) == 0
+        count, after = deletion._delete_records(db.read, db.write, doomed, 3, after)
+        assert (count, after) == (3, seqs[5])
+        count, after = deletion._delete_records(db.read, db.write, doomed, 3, after)
+        assert (count, after) == (1, seqs[5])  # the rest: fewer than a batch
+        assert deletion._delete_records(db.read, db.write, doomed, 3, after) == (0, seqs[5])
         assert left(doomed) == []
+        # A job started again (another worker) begins after 0: nothing is left.
+        assert deletion._delete_records(db.read, db.write, doomed, 3, 0) == (0, 0)
         assert left(other) == [float(i) for i in range(7)]
         with db.read() as session:
             assert session.scalar(select(ModelRow.name).where(ModelRow.id == other)) == "pump-new"
