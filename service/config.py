@@ -282,6 +282,18 @@ SETTINGS: tuple[Setting, ...] = (
             "deleted by the worker, in batches"),
     Setting("KEELSON_WORKER_DELETE_BATCH", WORKER, 2000, positive_whole_number,
             "rows a model's delete job removes per transaction"),
+    Setting("KEELSON_SNAPSHOT_RETENTION_DAYS", WORKER, 30.0, positive_number,
+            "days after which the snapshot of an online version that was never active is "
+            "pruned by the worker (the version's row, metrics and lineage stay; `keelson "
+            "replay` can rebuild it)"),
+    Setting("KEELSON_SNAPSHOT_KEEP_LAST", WORKER, 20, whole_number,
+            "newest versions of each model whose snapshots are never pruned, whatever their age"),
+    Setting("KEELSON_DRIFT_TALLY_RETENTION_DAYS", WORKER, 400.0, positive_number,
+            "days after which the worker deletes drift tallies (hourly prediction counts); keep "
+            "it above 366, the longest drift window, to answer every window whole"),
+    Setting("KEELSON_TOMBSTONE_RETENTION_DAYS", WORKER, 30.0, positive_number,
+            "days a deleted model's row and its finished delete job stay readable (GET "
+            "/v1/jobs/{id}) before the worker removes them"),
     Setting("KEELSON_BENCH_POSTGRES_URL", TOOLS, None, text,
             "PostgreSQL server `keelson bench http`, `keelson bench worker` and `keelson "
             "bench cases` also measure on (in a scratch database; same as `--postgres-url`)"),

@@ -20,11 +20,13 @@ from service.errors import ConflictError, InvalidInputError, KeelsonError, NotFo
 from service.usecases.common import is_model_name, no_such_model
 from service.usecases.drift_tally import DriftTally
 from service.usecases.prediction_limits import PredictionLimits
+from service.usecases.pruned import snapshot_pruned
 from service.versions.cache import (
     LoadedVersion,
     ModelEntry,
     ModelNotFound,
     NoActiveVersion,
+    SnapshotPruned,
     SnapshotUnreadable,
     VersionCache,
     VersionNotFound,
@@ -254,6 +256,8 @@ def load_version(cache: VersionCache, entry: ModelEntry, number: int | None) -> 
     except VersionNotFound as exc:
         raise NotFoundError(f"Model {entry.name!r} has no version {exc.number}.",
                             errors={"version": [f"No version {exc.number}."]}) from None
+    except SnapshotPruned as exc:
+        raise snapshot_pruned(entry.name, exc.number, exc.pruned_at) from None
     except SnapshotUnreadable as exc:
         raise VersionUnavailableError(
             f"Version {exc.number} of model {entry.name!r} cannot be loaded (its stored "

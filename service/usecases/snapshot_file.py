@@ -25,7 +25,8 @@ from engine.learner import Learner
 from service.errors import InvalidInputError, NotFoundError
 from service.store.database import Database, transaction
 from service.store.tables import ModelRow, VersionRow
-from service.usecases.common import find_model
+from service.usecases.common import as_utc, find_model
+from service.usecases.pruned import snapshot_pruned
 
 SNAPSHOT_MEDIA_TYPE = "application/octet-stream"
 EXPORT_KEY = "export"
@@ -42,6 +43,8 @@ def snapshot_file(sessions: sessionmaker[Session], name: str, number: int) -> by
         if version is None:
             raise NotFoundError(f"Model {name!r} has no version {number}.",
                                 errors={"version": [f"No version {number}."]})
+        if version.snapshot is None:
+            raise snapshot_pruned(model.name, number, as_utc(version.pruned_at))
         arrays, meta = snapshot.load(version.snapshot)
         meta[EXPORT_KEY] = {
             "model": model.name, "version": version.number, "origin": version.origin,

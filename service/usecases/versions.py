@@ -16,6 +16,7 @@ from service.store.database import Database, transaction
 from service.store.model_events import PROMOTED, add_event
 from service.store.tables import VersionRow
 from service.usecases.common import as_utc, find_model
+from service.usecases.pruned import snapshot_pruned
 from service.versions.promote import promote
 
 _Parent = aliased(VersionRow)
@@ -23,7 +24,7 @@ _COLUMNS = (
     VersionRow.id, VersionRow.number, VersionRow.origin, VersionRow.status,
     VersionRow.records_seen, VersionRow.cursor, VersionRow.metrics,
     VersionRow.created_at, VersionRow.promoted_at, _Parent.number.label("parent"),
-    VersionRow.settings_from_seq, VersionRow.forgotten_records,
+    VersionRow.settings_from_seq, VersionRow.forgotten_records, VersionRow.pruned_at,
 )
 
 
@@ -40,6 +41,7 @@ def version_view(row: Row[Any]) -> dict[str, Any]:
         "parent": row.parent,
         "settings_from_seq": row.settings_from_seq,
         "forgotten_records": row.forgotten_records,
+        "pruned_at": as_utc(row.pruned_at),
     }
 
 
@@ -82,9 +84,14 @@ def promote_version(db: Database, name: str, number: int, *, token: str | None =
             select(VersionRow)
             .options(defer(VersionRow.snapshot))  # never load weights to move a pointer
             .where(VersionRow.model_id == model.id, VersionRow.number == number)
+            # Locked: snapshot retention re-checks the version is not active
+            # under this lock, so a version is never both promoted and pruned.
+            .with_for_update()
         ).first()
         if version is None:
             raise NotFoundError(f"Model {name!r} has no version {number}.")
+        if version.pruned_at is not None:
+            raise snapshot_pruned(name, number, as_utc(version.pruned_at))
         if model.active_version_id != version.id:
             replaced = None if model.active_version_id is None else session.scalar(
                 select(VersionRow.number).where(VersionRow.id == model.active_version_id))

@@ -19,6 +19,7 @@ only (single flight); requests for other versions go on.
 
 from __future__ import annotations
 
+import datetime as dt
 import logging
 import threading
 import time
@@ -69,6 +70,17 @@ class SnapshotUnreadable(RuntimeError):
         super().__init__(name, number)
         self.name = name
         self.number = number
+
+
+class SnapshotPruned(LookupError):
+    """The version's snapshot was pruned by retention: it cannot serve until
+    a replay rebuilds it (not cached, so a rebuilt one serves at once)."""
+
+    def __init__(self, name: str, number: int, pruned_at: dt.datetime | None) -> None:
+        super().__init__(name, number)
+        self.name = name
+        self.number = number
+        self.pruned_at = pruned_at
 
 
 class LRU(Generic[K, V]):
@@ -329,7 +341,8 @@ class VersionCache:
 
     def _fetch(self, entry: ModelEntry, version_id: int | None, number: int | None
                ) -> LoadedVersion:
-        query = select(VersionRow.id, VersionRow.number, VersionRow.snapshot)
+        query = select(VersionRow.id, VersionRow.number, VersionRow.snapshot,
+                       VersionRow.pruned_at)
         if version_id is not None:
             query = query.where(VersionRow.id == version_id)
         else:
@@ -341,8 +354,10 @@ class VersionCache:
                 self._models.pop(entry.name, None)
                 raise NoActiveVersion(entry.name)
             raise VersionNotFound(entry.name, number)
-        found_id, found_number, snapshot = row
+        found_id, found_number, snapshot, pruned_at = row
         self._numbers.put((entry.id, found_number), found_id)
+        if snapshot is None:
+            raise SnapshotPruned(entry.name, found_number, pruned_at)
         try:
             learner = self._loader(bytes(snapshot))
         except self._load_errors:

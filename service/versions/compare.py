@@ -102,6 +102,8 @@ def _score_from_scratch(session: Session, active: ActiveScore, active_id: int, m
         select(VersionRow.number, VersionRow.snapshot).where(VersionRow.id == active_id)
     ).one()
     try:
+        if snapshot is None:  # retention never prunes an active version; treated as unreadable
+            raise EngineError("its snapshot was pruned")
         learner = Learner.from_bytes(snapshot)
     except EngineError as exc:
         # It cannot serve either (the API answers 503 for it): nothing to

@@ -56,6 +56,13 @@ SERVING_STALE_SECONDS = 1.0
 # snapshots (up to megabytes each), so at most this many of them.
 VERSION_BATCH = 50
 
+# A batch's transaction is kept under about this long (see _next_size), down
+# to MIN_BATCH rows; on SQLite the job rests at least MIN_REST_SECONDS after
+# each batch.
+HOLD_TARGET_SECONDS = 0.01
+MIN_BATCH = 50
+MIN_REST_SECONDS = 0.005
+
 # What is removed, in order (dependents before the versions they point at):
 # (progress name, primary key column, model id column, whether rows are big).
 STEPS: tuple[tuple[str, InstrumentedAttribute[Any], InstrumentedAttribute[Any], bool], ...] = (
@@ -96,25 +103,36 @@ def run_delete(settings: WorkerSettings, reads: sessionmaker[Session],
                                 "records_deleted": total - left, "deleted": {}}
     reported = time.monotonic()
     # SQLite has one write lock: a writer that found it taken sleeps in its
-    # busy handler (up to tens of milliseconds a time) and would find the next
-    # batch holding it again. Resting as long as each batch took leaves the
-    # lock free half the time, so other models' writes get in.
+    # busy handler (1, 2, 5, 10 ms... between tries) and would find the next
+    # batch holding it again. Resting as long as each batch took (at least
+    # MIN_REST) leaves the lock free at least half the time, long enough for
+    # a waiter's next try, so other models' writes get in.
     rest = writes.kw["bind"].dialect.name == "sqlite"
+    after = 0  # records: the seq the next batch starts after
     for name, key, owner, big in STEPS:
-        size = min(settings.delete_batch, VERSION_BATCH) if big else settings.delete_batch
+        limit = min(settings.delete_batch, VERSION_BATCH) if big else settings.delete_batch
+        size = limit
         progress["step"] = name
         removed = 0
         while True:
             if cancel():
                 raise TrainingCancelled(f"delete job {job_id} was stopped")
             began = time.monotonic()
-            count = _delete_batch(writes, key, owner, model_id, size)
+            if key is RecordRow.seq:
+                count, after = _delete_records(reads, writes, model_id, size, after)
+            else:
+                count = _delete_batch(writes, key, owner, model_id, size)
+            took = time.monotonic() - began
             if rest:
-                time.sleep(time.monotonic() - began)
+                time.sleep(max(took, MIN_REST_SECONDS))
             removed += count
+            if count < size:
+                size = 0  # the last batch: nothing left of this kind
+            elif rest:  # PostgreSQL locks rows, not the database: its batches stay whole
+                size = _next_size(size, limit, took)
             if name == "records":
                 progress["records_deleted"] += count
-            if count < size:
+            if size == 0:
                 break
             if time.monotonic() - reported >= settings.progress_seconds:
                 progress["deleted"][name] = removed
@@ -128,11 +146,47 @@ def run_delete(settings: WorkerSettings, reads: sessionmaker[Session],
     return progress
 
 
+def _next_size(size: int, limit: int, took: float) -> int:
+    """Time-boxed batches: halve a batch that held its transaction longer
+    than HOLD_TARGET_SECONDS (a slow disk, big rows, a busy machine), grow it
+    back towards ``limit`` while batches take under half of that."""
+    if took > HOLD_TARGET_SECONDS:
+        return max(MIN_BATCH, size // 2)
+    if took < HOLD_TARGET_SECONDS / 2:
+        return min(limit, size * 2)
+    return size
+
+
 def _wait_until(moment: dt.datetime, cancel: Callable[[], bool]) -> None:
     while (left := (moment - utcnow()).total_seconds()) > 0:
         if cancel():
             raise TrainingCancelled("the delete job was stopped")
         time.sleep(min(0.1, left))
+
+
+def _delete_records(reads: sessionmaker[Session], writes: sessionmaker[Session],
+                    model_id: int, size: int, after: int) -> tuple[int, int]:
+    """The model's ``size`` oldest records after seq ``after`` (those up to it
+    are gone already), as one range of its (model_id, seq) index; how many
+    went, and the seq to continue after.
+
+    The range's end is found before the write transaction (no record of a
+    deleted model is added any more), so the write holds its lock for one
+    DELETE with bounds: against a list of ``size`` ids, the batch held
+    SQLite's write lock 3 to 5 times as long. Both bounds are given: the index
+    scan starts past what earlier batches deleted (on PostgreSQL their dead
+    entries stay until vacuum), and the planner, whose statistics still see
+    the deleted rows, estimates one batch, not the whole table."""
+    with reads() as session:
+        last = session.scalar(select(RecordRow.seq).where(
+            RecordRow.model_id == model_id, RecordRow.seq > after)
+            .order_by(RecordRow.seq).offset(size - 1).limit(1))
+    with transaction(writes) as session:
+        query = delete(RecordRow).where(RecordRow.model_id == model_id, RecordRow.seq > after)
+        if last is not None:  # else fewer than ``size`` are left: all of them
+            query = query.where(RecordRow.seq <= last)
+        result = session.execute(query.execution_options(synchronize_session=False))
+        return int(result.rowcount), after if last is None else int(last)  # type: ignore[attr-defined]
 
 
 def _delete_batch(writes: sessionmaker[Session], key: InstrumentedAttribute[Any],

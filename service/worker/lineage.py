@@ -88,6 +88,9 @@ class OnlineLineage(Stepper):
             if self.head_id is not None:
                 head = session.get(VersionRow, self.head_id)
                 assert head is not None
+                if head.snapshot is None:  # retention never prunes a head: a fault if it was
+                    raise ModelFault(f"the head version {head.number} has no snapshot (pruned)",
+                                     head_id=head.id)
                 try:
                     self.learner = Learner.from_bytes(head.snapshot)
                 except EngineError as exc:

@@ -38,8 +38,9 @@ from service.worker.leasing import (
     renew_trainers,
 )
 from service.worker.lineage import LineageStopped, OnlineLineage
-from service.worker.retention import INTERVAL_SECONDS, purge_expired_cases
+from service.worker.retention import INTERVAL_SECONDS
 from service.worker.settings import WorkerSettings
+from service.worker.upkeep import retention_pass
 
 log = logging.getLogger("keelson.worker")
 CLAIM_BATCH = 4
@@ -186,13 +187,19 @@ class Worker:
         log.info("worker %s: released %s caught-up model(s)", self.worker_id, len(settled))
 
     def _retention(self, now: float) -> None:
-        """Delete a few batches of expired scored cases; soon again while more remain."""
-        deleted, more = purge_expired_cases(self.writes, self.reads,
-                                            self.settings.case_retention_days)
-        if deleted:
-            log.info("deleted %s scored cases without an outcome after %g days", deleted,
+        """A few batches of each kind of retention (upkeep.py); soon again while more remain."""
+        done = retention_pass(self.settings, self.writes, self.reads)
+        if done.cases:
+            log.info("deleted %s scored cases without an outcome after %g days", done.cases,
                      self.settings.case_retention_days)
-        self._next_retention = now + (self.settings.poll_seconds if more else INTERVAL_SECONDS)
+        if done.snapshots:
+            log.info("pruned the snapshots of %s versions never active, older than %g days",
+                     done.snapshots, self.settings.snapshot_retention_days)
+        if done.tallies or done.tombstones:
+            log.info("deleted %s drift tallies and %s deleted models' rows", done.tallies,
+                     done.tombstones)
+        self._next_retention = now + (self.settings.poll_seconds if done.more
+                                      else INTERVAL_SECONDS)
 
     def _fault(self, model_id: int, exc: Exception, head_id: Any = ANY_HEAD) -> None:
         """This model failed to load or step from ``head_id``: back it off

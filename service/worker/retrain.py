@@ -82,6 +82,8 @@ def run_retrain(
         if n_train == 0:
             raise ModelFault("the model has no train records to retrain on")
         if active is not None:
+            if active.snapshot is None:  # retention never prunes an active version
+                raise ModelFault(f"the active version {active.number} has no snapshot (pruned)")
             learner = Learner.from_bytes(active.snapshot)
             start = warm_retrain(job_id, model_id, spec, cursor, n_train, learner, active.id)
         else:

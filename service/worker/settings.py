@@ -29,6 +29,10 @@ _KEYS = {
     "retry_max_seconds": "KEELSON_WORKER_RETRY_MAX_SECONDS",
     "case_retention_days": "KEELSON_CASE_RETENTION_DAYS",
     "delete_batch": "KEELSON_WORKER_DELETE_BATCH",
+    "snapshot_retention_days": "KEELSON_SNAPSHOT_RETENTION_DAYS",
+    "snapshot_keep_last": "KEELSON_SNAPSHOT_KEEP_LAST",
+    "drift_tally_retention_days": "KEELSON_DRIFT_TALLY_RETENTION_DAYS",
+    "tombstone_retention_days": "KEELSON_TOMBSTONE_RETENTION_DAYS",
 }
 
 
@@ -67,6 +71,14 @@ class WorkerSettings:
     # A delete job's transactions stay short: this many rows each (versions,
     # which hold snapshots, fewer: see service/worker/deletion.py).
     delete_batch: int = _default("delete_batch")
+    # Snapshot retention (service/worker/snapshot_retention.py): the snapshot
+    # of an online version never active goes after this many days, except the
+    # newest ``snapshot_keep_last`` of each model.
+    snapshot_retention_days: float = _default("snapshot_retention_days")
+    snapshot_keep_last: int = _default("snapshot_keep_last")
+    # Drift tallies and finished deletes' tombstones go after these many days.
+    drift_tally_retention_days: float = _default("drift_tally_retention_days")
+    tombstone_retention_days: float = _default("tombstone_retention_days")
 
     def __post_init__(self) -> None:
         if not 0 < self.retry_seconds <= self.retry_max_seconds:

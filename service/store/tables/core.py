@@ -114,7 +114,9 @@ class RecordRow(Base):
 
 class VersionRow(Base):
     """An immutable trained state. Only ``status``, ``promoted_at`` and
-    ``forgotten_records`` ever change."""
+    ``forgotten_records`` ever change, and ``snapshot`` once: snapshot retention
+    (service/worker/snapshot_retention.py) may empty it (``pruned_at`` says when)
+    for an old version that was never active; the row, its metrics and lineage stay."""
 
     __tablename__ = "versions"
     __table_args__ = (UniqueConstraint("model_id", "number"),)
@@ -124,7 +126,7 @@ class VersionRow(Base):
     number: Mapped[int] = mapped_column(Integer)
     origin: Mapped[str] = mapped_column(String(16))  # "online" or "retrain"
     status: Mapped[str] = mapped_column(String(16))  # "active", "candidate", "retired"
-    snapshot: Mapped[bytes] = mapped_column(LargeBinary)
+    snapshot: Mapped[bytes | None] = mapped_column(LargeBinary)
     cursor: Mapped[int] = mapped_column(BigInteger)
     records_seen: Mapped[int] = mapped_column(BigInteger)
     metrics: Mapped[dict[str, Any]]
@@ -142,6 +144,7 @@ class VersionRow(Base):
     forgotten_records: Mapped[int] = mapped_column(BigInteger, default=0, server_default="0")
     created_at: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True), default=utcnow)
     promoted_at: Mapped[dt.datetime | None] = mapped_column(DateTime(timezone=True))
+    pruned_at: Mapped[dt.datetime | None] = mapped_column(DateTime(timezone=True))
 
 
 class ModelEventRow(Base):

@@ -128,7 +128,11 @@ class DriftTallyRow(Base):
     one NumPy call; as JSON, parsing them took most of its 50 ms)."""
 
     __tablename__ = "drift_tallies"
-    __table_args__ = (UniqueConstraint("model_id", "version_id", "bucket_start", "writer"),)
+    __table_args__ = (
+        UniqueConstraint("model_id", "version_id", "bucket_start", "writer"),
+        # Retention deletes the hours older than KEELSON_DRIFT_TALLY_RETENTION_DAYS.
+        Index("ix_drift_tallies_bucket_start", "bucket_start"),
+    )
 
     id: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=True)
     model_id: Mapped[int] = mapped_column(ForeignKey("models.id", ondelete="CASCADE"))

@@ -193,6 +193,21 @@ def bench_page(as_json: bool, records: int, versions: int, repeats: int,
                         postgres_url=postgres_url, progress=_progress), as_json)
 
 
+@bench.command("storage")
+@click.option("--json", "as_json", is_flag=True, help="One JSON object.")
+@click.option("--records", type=click.IntRange(min=1000), default=50_000, show_default=True,
+              help="Records measured (figures are scaled to 1,000,000 where that is linear).")
+@click.option("--postgres-url", default=_bench_postgres_url,
+              help="Also measure on this PostgreSQL server (a scratch database is made) "
+                   "[env KEELSON_BENCH_POSTGRES_URL].")
+def bench_storage(as_json: bool, records: int, postgres_url: str | None) -> None:
+    """Bytes per 1,000,000 records: records, versions, snapshots before and after retention."""
+    from service.tools.bench.storage import run_storage_bench
+
+    emit(run_storage_bench(records=records, postgres_url=postgres_url, progress=_progress),
+         as_json)
+
+
 bench.add_command(bench_track_record)
 
 

@@ -106,6 +106,11 @@ class VersionSchema(Schema):
         "description": "How many records this version was trained on (itself or through "
                        "the versions it grew from) that have since been forgotten "
                        "(POST .../records/forget): its weights still carry them. 0: none."})
+    pruned_at = fields.DateTime(allow_none=True, required=True, metadata={
+        "description": "When snapshot retention pruned its snapshot (null: kept). A pruned "
+                       "version keeps its metrics and lineage but cannot predict, be exported "
+                       "or be promoted (409, `urn:keelson:problem:snapshot-pruned`) until "
+                       "`keelson replay` rebuilds it."})
 
 
 class VersionListSchema(Schema):
