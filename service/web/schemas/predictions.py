@@ -146,28 +146,16 @@ class PredictionReaders:
         return loaded, PredictionOptions(**chosen), case_key
 
     def _query_features(self, given: dict[str, str]) -> dict[str, Any] | None:
-        """The features through the feature schema's own fields, one by one, in
-        declared order (``query_loaders``); None at the first parameter any of
-        them refuses, or when one is missing or unknown (the caller then runs
-        the whole schema for its messages).
-
-        What ``Schema.load`` returns for a valid row, at a fraction of its
-        cost: a whole-schema pass (hooks, per-field getters and bookkeeping,
-        the unknown-field scan) took more CPU per request than explaining the
-        prediction with integrated gradients (docs/performance.md).
-        """
+        """What ``query_features.load`` returns for a valid row, through its own
+        fields one by one (``query_loaders``), at a fraction of its cost
+        (docs/performance.md); None when any is refused, missing or unknown."""
         loaders = self.query_loaders
-        if len(given) != len(loaders):
+        if len(given) != len(loaders) or not all(name in given for name, _ in loaders):
             return None
-        loaded: dict[str, Any] = {}
         try:
-            for name, load in loaders:
-                if name not in given:
-                    return None
-                loaded[name] = load(given[name])
+            return {name: load(given[name]) for name, load in loaders}
         except ValidationError:
             return None
-        return loaded
 
     @staticmethod
     def _key(value: Any, path: str, errors: dict[str, list[str]]) -> str | None:
@@ -305,18 +293,12 @@ _KEY = key_field(required=True)
 
 
 def field_loader(field: fields.Field[Any]) -> Callable[[Any], Any]:
-    """How ``field`` loads a value that is there (never missing, never None):
-    its own ``_deserialize`` when it has no validators and no load hooks, as
-    the rules' fields (service/web/schemas/fields.py) check everything there;
-    marshmallow's ``deserialize`` otherwise. marshmallow 4 builds a validator
-    chain on every ``deserialize`` call, even an empty one."""
+    """How ``field`` loads a value that is there: its own ``_deserialize`` when
+    it has no validators or hooks (the rules' fields check everything there;
+    marshmallow 4 builds a validator chain per ``deserialize``, even empty)."""
     if field.validators or getattr(field, "pre_load", None) or getattr(field, "post_load", None):
         return field.deserialize
-
-    def load(value: Any) -> Any:
-        return field._deserialize(value, None, None)
-
-    return load
+    return lambda value: field._deserialize(value, None, None)
 
 
 def build_readers(rules: RecordRules) -> PredictionReaders:
