@@ -125,11 +125,16 @@ def predict(
     if options.explain == "shapley":
         _check_shapley(len(learner.encoder.fields), options.samples, exact_fields)
     if limits is not None:
-        network = learner.network
+        explained, errors = options.explain != "none", options.explain == "shapley"
+        sizes = loaded.derived.get(("answer_sizes", explained, errors))
+        if sizes is None:  # the same for every request to this version
+            network = learner.network
+            sizes = loaded.derived[("answer_sizes", explained, errors)] = (
+                network.params.size, sum(network.sizes[1:]),
+                answer_sizes(learner, explained, errors))
+        parameters, units, (once, per_record) = sizes
         limits.check_cost(len(rows), options.explain, options.steps, options.samples,
-                          network.params.size, sum(network.sizes[1:]),
-                          answer_bytes(learner, len(rows), options.explain != "none",
-                                       options.explain == "shapley"),
+                          parameters, units, once + len(rows) * per_record,
                           len(learner.encoder.fields))
     encoded = learner.encode(rows)
     scores = learner.predict(encoded)
@@ -157,7 +162,7 @@ def predict(
                     seed=options.seed, exact_fields=exact_fields)
                 explanation = _explanation(explained)
                 if baseline is None:
-                    baseline = {name: _baseline(v) for name, v in explained.baseline.items()}
+                    baseline = _answered_baseline(loaded, explained.baseline)
             except NonFiniteOutputError:
                 raise _overflow(learner, rows[index], encoded[index], index, batch,
                                 "explanation") from None
@@ -195,12 +200,19 @@ RECORD_BYTES = 160
 
 def answer_bytes(learner: Any, records: int, explained: bool,
                  standard_errors: bool = False) -> int:
-    """At most how many bytes the answer of ``records`` rows takes: per record
-    a probability per class (each named) or a value, and when ``explained``
-    an attribution per field (and with ``standard_errors``, Shapley values',
-    a standard error per field too); once, the baseline. Priced into the
-    request's budget (prediction_limits.py); it costs less than one record's
-    answer."""
+    """At most how many bytes the answer of ``records`` rows takes (``answer_sizes``)."""
+    once, per_record = answer_sizes(learner, explained, standard_errors)
+    return once + records * per_record
+
+
+def answer_sizes(learner: Any, explained: bool, standard_errors: bool = False
+                 ) -> tuple[int, int]:
+    """At most how many bytes an answer takes, as (bytes once, bytes per
+    record): per record a probability per class (each named) or a value, and
+    when ``explained`` an attribution per field (and with ``standard_errors``,
+    Shapley values', a standard error per field too); once, the baseline.
+    Priced into the request's budget (prediction_limits.py); the figures are
+    the version's own, kept with it in the cache (``predict``)."""
     per_record = RECORD_BYTES + NUMBER_BYTES
     if learner.task != "regression":
         keys = [class_key(c) for c in learner.classes]
@@ -218,7 +230,7 @@ def answer_bytes(learner: Any, records: int, explained: bool,
         levels = [str(level) for name in encoder.fields for level in encoder.levels.get(name, ())]
         once += len(fields) + len(orjson.dumps(levels)) + NUMBER_BYTES * (
             len(encoder.fields) + len(levels))
-    return once + records * per_record
+    return once, per_record
 
 
 def _overflow(learner: Any, row: Mapping[str, Any], encoded: Any, index: int, batch: bool,
@@ -309,6 +321,16 @@ def _finite(value: Any) -> float:
     if not math.isfinite(number):
         raise NonFiniteOutputError("The model answered a number that is not finite.")
     return number
+
+
+def _answered_baseline(loaded: LoadedVersion, raw: Mapping[str, Any]) -> dict[str, Any]:
+    """The explanations' baseline as answered: the version's own (the mean of
+    what it learned from, ``raw``), made once per cached version and shared by
+    every answer (dumped, never changed)."""
+    baseline: dict[str, Any] | None = loaded.derived.get("baseline")
+    if baseline is None:
+        baseline = loaded.derived["baseline"] = {name: _baseline(v) for name, v in raw.items()}
+    return baseline
 
 
 def _baseline(value: Any) -> Any:

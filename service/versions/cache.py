@@ -142,6 +142,10 @@ class LoadedVersion:
     # Shared by every thread of the process without a lock: engine inference
     # allocates its work arrays per call and never writes to the network.
     learner: Any
+    # What requests derive from the learner alone (the size an answer may
+    # take, the explanations' baseline as answered), built on first use and
+    # kept while the version is cached: a version never changes.
+    derived: dict[Hashable, Any] = field(default_factory=dict, compare=False)
 
 
 class _Flight:

@@ -256,3 +256,36 @@ def test_rules_are_compiled_once_per_spec_and_each_schema_built_once() -> None:
     assert rules.record_schema(text=True) is not rules.record_schema()
     assert rules.fast_check is rules.fast_check
     assert rules_for({**spec, "task": "binary", "classes": [0, 1]}) is not rules
+
+
+# Query values as clients spell them, biased towards the edges of the text rules.
+TEXT_EDGES = ["0", "1", "-1", "1.5", "1.5000000000000002", " 2 ", "2.0", "1e3", "1E400", "-0",
+              "0012", "1_000", "+1", "nan", "inf", "-Infinity", "true", "TRUE", " false", "yes",
+              "", " ", "screw", "Screw", " screw", "x" * 201, "\x00", "\u0661", "1.8e308",
+              "1.7976931348623157e308", "3", "2.5"]
+
+
+@pytest.mark.parametrize("spec", EDGE_SPECS, ids=[s["task"] for s in EDGE_SPECS])
+def test_a_query_reads_exactly_what_the_text_schema_loads(spec: dict[str, Any]) -> None:
+    """GET predictions read the features through the text schema's own fields,
+    one by one (``PredictionReaders.read_query``): the same values as the whole
+    schema, refused exactly when it refuses, and a valid row never needs it."""
+    rules = rules_for(spec)
+    readers, schema = build_readers(rules), rules.feature_schema(text=True)
+    valid = {f["name"]: {"numeric": "0.5", "boolean": "true"}.get(
+        f["type"], (f.get("levels") or [""])[0]) for f in spec["features"]}
+    rows = [valid, {**valid, "zz": "1"}, *({k: v for k, v in valid.items() if k != name}
+                                          for name in valid)]
+    rows += [{**valid, name: edge} for name in valid for edge in TEXT_EDGES]
+    for row in rows:
+        try:
+            expected = schema.load(row)
+        except ValidationError:
+            expected = None
+        try:
+            got = readers.read_query(MultiDict(row))[0]
+        except InvalidInputError:
+            got = None
+        assert typed(got) == typed(expected), row
+        assert got is None or list(got) == list(expected or {}), row  # declared order
+        assert (readers._query_features(row) is None) == (expected is None), row

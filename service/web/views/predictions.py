@@ -11,7 +11,7 @@ import time
 from typing import Any
 
 import orjson
-from flask import Response, current_app, request
+from flask import Flask, Response, current_app, request
 
 from service.usecases.cases import ScoredCase, keep_cases
 from service.usecases.prediction_limits import PredictionLimits
@@ -59,13 +59,13 @@ def _json(body: dict[str, Any]) -> Response:
     return Response(orjson.dumps(body), mimetype="application/json")
 
 
-def _limits(started: float) -> PredictionLimits:
+def _limits(started: float, app: Flask, environ: dict[str, Any]) -> PredictionLimits:
     """This request's budget, deadline (from ``started``) and client probe."""
-    config = current_app.config
+    config = app.config
     return PredictionLimits(budget=config["KEELSON_PREDICTION_BUDGET"],
                             deadline_seconds=config["KEELSON_PREDICTION_DEADLINE_SECONDS"],
                             exact_fields=config["KEELSON_SHAPLEY_EXACT_FIELDS"],
-                            started=started, client_gone=client_gone_probe(request.environ))
+                            started=started, client_gone=client_gone_probe(environ))
 
 
 @blueprint.route("/<model:name>/predictions", methods=["GET"])
@@ -80,11 +80,15 @@ def get_prediction(name: str) -> Response:
     the answer's bytes) is over the budget per request, and with 422
     (`urn:keelson:problem:output-overflow`) when the output overflows."""
     started = time.monotonic()
-    cache = get_version_cache()
+    # The app and the request once each: every look through Flask's proxies
+    # costs a context lookup, on the hottest route.
+    app, current = current_app._get_current_object(), request._get_current_object()  # type: ignore[attr-defined]
+    cache = get_version_cache(app)
     entry = find_model(cache, name)
-    features, options, key = prediction_readers(entry).read_query(request.args)
+    features, options, key = prediction_readers(entry).read_query(current.args)
     number, baseline, (answer,) = predict(cache, entry, (features,), options,
-                                          _limits(started), tally=get_drift_tally())
+                                          _limits(started, app, current.environ),
+                                          tally=get_drift_tally(app))
     if key is not None:
         _keep(entry.id, number, [key], [features], [answer], ["key"])
     count_served(entry.name, number, options.explain, 1)
@@ -106,13 +110,15 @@ def post_predictions(name: str) -> Response:
     (`urn:keelson:problem:over-budget`) before any work. Past its deadline it
     ends with 503 (`urn:keelson:problem:deadline-exceeded`, `Retry-After`)."""
     started = time.monotonic()
-    cache = get_version_cache()
+    app, current = current_app._get_current_object(), request._get_current_object()  # type: ignore[attr-defined]
+    cache = get_version_cache(app)
     entry = find_model(cache, name)
-    body = read_json_body(request)
-    limit = int(current_app.config["KEELSON_MAX_PREDICTION_BATCH"])
-    rows, options, keys = prediction_readers(entry).read_body(body, request.args, limit)
-    number, baseline, answers = predict(cache, entry, rows, options, _limits(started),
-                                        batch=True, tally=get_drift_tally())
+    body = read_json_body(current)
+    limit = int(app.config["KEELSON_MAX_PREDICTION_BATCH"])
+    rows, options, keys = prediction_readers(entry).read_body(body, current.args, limit)
+    number, baseline, answers = predict(cache, entry, rows, options,
+                                        _limits(started, app, current.environ),
+                                        batch=True, tally=get_drift_tally(app))
     if keys is not None:
         keyed = [i for i, key in enumerate(keys) if key is not None]
         _keep(entry.id, number, [keys[i] for i in keyed], [rows[i] for i in keyed],
