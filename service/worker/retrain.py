@@ -2,8 +2,12 @@
 
 A job is claimed with a lease and run on its own thread (job_runner.py). The
 train records at or before the job's cursor (the last record stored when it
-started) are streamed from the database a chunk per query into one
-preallocated matrix: the rows never exist as Python objects all at once.
+started) are streamed from the database a chunk per query, encoded, and
+appended to a temporary file of encoded rows (encoded_file.py); the engine's
+batch trainer then reads its epochs from that file a block at a time
+(engine/rows.py), so the worker's memory does not grow with the record count
+(docs/architecture.md, "Retraining over millions of records"). The holdout
+window it is scored on is read a chunk at a time too.
 
 From scratch, the encoder's statistics come from an evenly spread sample of
 the train records (at most ``STATS_SAMPLE`` rows: enough for a mean and a
@@ -31,7 +35,7 @@ from service.store.record_log import (
     fetch_chunk,
     iter_chunks,
     last_seq,
-    read_latest_holdout,
+    latest_chunks,
     record_columns,
 )
 from service.store.tables import JobRow, RecordRow, VersionRow
@@ -44,8 +48,15 @@ from service.versions.compare import (
     read_active_id,
 )
 from service.versions.decide import PromotionContext, decide
-from service.versions.holdout import HoldoutWindow, evaluate, json_metrics
+from service.versions.holdout import (
+    HOLDOUT_CHUNK,
+    HoldoutWindow,
+    evaluate,
+    fill_window,
+    json_metrics,
+)
 from service.versions.writes import NewVersion, write_retrain_version
+from service.worker.encoded_file import EncodedRowsFile
 from service.worker.faults import ModelFault, load_spec
 from service.worker.jobs import report_progress
 from service.worker.settings import WorkerSettings
@@ -90,22 +101,21 @@ def run_retrain(
             encoder, parent_id = f"retrain:{job_id}", None
 
     started = time.perf_counter()
-    X, Y = _load_train(reads, learner, model_id, cursor, n_train, settings.chunk_records,
-                       cancel)
-    loaded = time.perf_counter()
-    reporter = _ProgressReporter(writes, job_id, worker_id, settings.progress_seconds,
-                                 int(spec.get("training", {}).get("max_epochs", 0)))
-    report = learner.fit(X, Y, progress=reporter, cancel=cancel, warm_start=warm_start)
-    del X, Y
+    with _load_train(reads, learner, model_id, cursor, n_train, settings.chunk_records,
+                     cancel) as rows:
+        loaded = time.perf_counter()
+        reporter = _ProgressReporter(writes, job_id, worker_id, settings.progress_seconds,
+                                     int(spec.get("training", {}).get("max_epochs", 0)))
+        report = learner.fit_rows(rows, progress=reporter, cancel=cancel,
+                                  warm_start=warm_start)
     reporter.flush()
     log.info("job %s: %s train records loaded in %.2f s, fitted in %.2f s (%s epochs)",
              job_id, n_train, loaded - started, time.perf_counter() - loaded, report.epochs)
 
     window = HoldoutWindow(settings.holdout_window)
     with reads() as session:
-        rows = read_latest_holdout(session, model_id, cursor, settings.holdout_window)
-    if len(rows):
-        window.extend(learner.encode(rows.features), learner.encode_labels(rows.labels))
+        fill_window(window, learner, latest_chunks(session, model_id, cursor,
+                                                   settings.holdout_window, HOLDOUT_CHUNK))
     metrics = {
         "prequential": json_metrics(learner.prequential_metrics()),
         "holdout": evaluate(learner, window),
@@ -114,7 +124,7 @@ def run_retrain(
     }
     active_id, active_metrics = measure_active(
         writes, model_id, spec, window, encoder, cursor, settings.holdout_window,
-        new_active_score(spec), holdout_rows=rows)
+        new_active_score(spec))
     promotion = decide(PromotionContext(spec, metrics, active_id, active_metrics))
     # The version has learned from every train record up to its cursor.
     records_before = n_train - learner.records_seen
@@ -132,28 +142,30 @@ def run_retrain(
 
 
 def _load_train(reads: sessionmaker[Session], learner: Learner, model_id: int, cursor: int,
-                n_train: int, chunk_records: int, cancel: Any) -> tuple[np.ndarray, np.ndarray]:
-    """Every train record up to the cursor, encoded into preallocated arrays."""
-    X: np.ndarray | None = None
-    Y: np.ndarray | None = None
-    filled = 0
-    for chunk in iter_chunks(reads, model_id, cursor, chunk_records, split="train"):
-        if cancel():
-            raise TrainingCancelled("stopped while loading records")
-        X_part = learner.encode(chunk.features)
-        Y_part = learner.encode_labels(chunk.labels)
-        if X is None or Y is None:
-            X = np.empty((n_train, X_part.shape[1]), dtype=X_part.dtype)
-            Y = np.empty((n_train, *Y_part.shape[1:]), dtype=Y_part.dtype)
-        X[filled : filled + len(chunk)] = X_part
-        Y[filled : filled + len(chunk)] = Y_part
-        filled += len(chunk)
-    if X is None or Y is None or filled != n_train:
-        # Records at or before the cursor are all committed and never deleted
-        # while a job runs (docs/architecture.md, invariant 1), so this means
-        # the model was removed.
-        raise RuntimeError(f"expected {n_train} train records, read {filled}")
-    return X, Y
+                n_train: int, chunk_records: int, cancel: Any) -> EncodedRowsFile:
+    """Every train record up to the cursor, encoded a chunk at a time into a
+    temporary file of rows (the caller closes it)."""
+    rows: EncodedRowsFile | None = None
+    try:
+        for chunk in iter_chunks(reads, model_id, cursor, chunk_records, split="train"):
+            if cancel():
+                raise TrainingCancelled("stopped while loading records")
+            X_part = learner.encode(chunk.features)
+            Y_part = learner.encode_labels(chunk.labels)
+            if rows is None:
+                rows = EncodedRowsFile(n_train, X_part.shape[1], Y_part.dtype)
+            rows.append(X_part, Y_part)
+        if rows is None or len(rows) != n_train:
+            # Records at or before the cursor are all committed and never deleted
+            # while a job runs (docs/architecture.md, invariant 1), so this means
+            # the model was removed.
+            raise RuntimeError(f"expected {n_train} train records, read "
+                               f"{0 if rows is None else len(rows)}")
+    except BaseException:
+        if rows is not None:
+            rows.close()
+        raise
+    return rows
 
 
 def _stats_sample(session: Session, model_id: int, cursor: int, n_train: int) -> RecordChunk:
