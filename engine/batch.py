@@ -131,9 +131,11 @@ def fit(network: Network, optimizer: Optimizer, loss: str, rows: Rows,
                 y_epoch = np.empty(m, dtype=y_buf.dtype)
                 if carry is not None:
                     inputs[:-1, :kept], y_epoch[:kept] = carry
-                inputs[:-1, kept:] = X_buf[shuffle].T
-                y_epoch[kept:] = y_buf[shuffle]
-                del X_buf, y_buf
+                # Gathered straight into the transposed inputs (mode="clip": the
+                # indices are valid, and it spares np.take a buffered copy).
+                np.take(X_buf, shuffle, axis=0, out=inputs[:-1, kept:].T, mode="clip")
+                np.take(y_buf, shuffle, out=y_epoch[kept:], mode="clip")
+                del X_buf, y_buf, shuffle
                 usable = m if index == len(buffers) - 1 else m - m % batch_size
                 for start in range(0, usable, batch_size):
                     stop = min(start + batch_size, usable)
@@ -146,6 +148,7 @@ def fit(network: Network, optimizer: Optimizer, loss: str, rows: Rows,
                     total += batch_loss * (stop - start)
                 carry = (inputs[:-1, usable:].copy(), y_epoch[usable:].copy()) \
                     if usable < m else None
+                del inputs, y_epoch  # before the next buffer is read
         train_loss = total / n
         val_loss = _summed_loss(network, loss, X_val, y_val, block_rows) if val.size else None
         monitored = train_loss if val_loss is None else val_loss

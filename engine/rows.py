@@ -109,10 +109,21 @@ class EpochOrder:
         return self.train[block * self.block_rows : (block + 1) * self.block_rows]
 
     def read(self, rows: Rows, blocks: list[int]) -> tuple[Array, NDArray[Any]]:
-        """The rows of ``blocks``, block after block in the order given."""
+        """The rows of ``blocks``, block after block in the order given, in one
+        array (filled a read at a time: no second copy of the buffer)."""
+        sizes = [self.positions(b).size for b in blocks]
+        X: Array | None = None
+        y: NDArray[Any] | None = None
+        at = 0
         # A block's positions span about block_rows / (1 - validation fraction):
-        # read them as one piece when they fit twice that, else in pieces.
-        parts = [take_all(rows, self.positions(b), 2 * self.block_rows) for b in blocks]
-        if len(parts) == 1:
-            return parts[0]
-        return (np.concatenate([p[0] for p in parts]), np.concatenate([p[1] for p in parts]))
+        # read as one piece when they fit twice that, else in pieces.
+        for block in blocks:
+            for piece in spans(self.positions(block), 2 * self.block_rows):
+                X_part, y_part = rows.take(piece)
+                if X is None or y is None:
+                    X = np.empty((sum(sizes), X_part.shape[1]), dtype=X_part.dtype)
+                    y = np.empty(sum(sizes), dtype=y_part.dtype)
+                X[at : at + piece.size], y[at : at + piece.size] = X_part, y_part
+                at += piece.size
+        assert X is not None and y is not None
+        return X, y
