@@ -20,11 +20,11 @@ import numpy as np
 from numpy.typing import NDArray
 
 from engine import heads
+from engine import rows as epoch_rows
 from engine.errors import NonFiniteError, TrainingCancelled
 from engine.kernel import Workspace
 from engine.network import Network, mean_loss_gradient
 from engine.optimizers import Optimizer
-from engine import rows as epoch_rows
 from engine.rows import EpochOrder, Rows, take_all
 
 Array = NDArray[np.float64]
@@ -74,7 +74,7 @@ def _summed_loss(network: Network, loss: str, X: Array, y: NDArray[Any],
         stop = start + slice_rows
         total += float(heads.losses(network.output, loss, network.logits(X[start:stop]),
                                     y[start:stop]).sum())
-    return total / X.shape[0]
+    return total / int(X.shape[0])
 
 
 def fit(network: Network, optimizer: Optimizer, loss: str, rows: Rows,

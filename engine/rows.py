@@ -76,14 +76,26 @@ def spans(positions: Positions, width: int) -> Iterator[Positions]:
 
 
 def take_all(rows: Rows, positions: Positions, width: int) -> tuple[Array, NDArray[Any]]:
-    """The rows at sorted ``positions``, read ``width`` positions at a time."""
-    parts = [rows.take(piece) for piece in spans(positions, width)]
-    if not parts:
-        X, y = rows.take(positions[:0])
-        return X, y
-    if len(parts) == 1:
-        return parts[0]
-    return (np.concatenate([p[0] for p in parts]), np.concatenate([p[1] for p in parts]))
+    """The rows at sorted ``positions``, read ``width`` positions at a time
+    into one array (filled a read at a time: no second copy of them all)."""
+    return _gather(rows, list(spans(positions, width)), positions.size)
+
+
+def _gather(rows: Rows, pieces: list[Positions], total: int) -> tuple[Array, NDArray[Any]]:
+    if not pieces:
+        return rows.take(np.empty(0, dtype=np.intp))
+    X: Array | None = None
+    y: NDArray[Any] | None = None
+    at = 0
+    for piece in pieces:
+        X_part, y_part = rows.take(piece)
+        if X is None or y is None:
+            X = np.empty((total, X_part.shape[1]), dtype=X_part.dtype)
+            y = np.empty(total, dtype=y_part.dtype)
+        X[at : at + piece.size], y[at : at + piece.size] = X_part, y_part
+        at += piece.size
+    assert X is not None and y is not None
+    return X, y
 
 
 class EpochOrder:
@@ -109,21 +121,9 @@ class EpochOrder:
         return self.train[block * self.block_rows : (block + 1) * self.block_rows]
 
     def read(self, rows: Rows, blocks: list[int]) -> tuple[Array, NDArray[Any]]:
-        """The rows of ``blocks``, block after block in the order given, in one
-        array (filled a read at a time: no second copy of the buffer)."""
-        sizes = [self.positions(b).size for b in blocks]
-        X: Array | None = None
-        y: NDArray[Any] | None = None
-        at = 0
+        """The rows of ``blocks``, block after block in the order given, in one array."""
         # A block's positions span about block_rows / (1 - validation fraction):
         # read as one piece when they fit twice that, else in pieces.
-        for block in blocks:
-            for piece in spans(self.positions(block), 2 * self.block_rows):
-                X_part, y_part = rows.take(piece)
-                if X is None or y is None:
-                    X = np.empty((sum(sizes), X_part.shape[1]), dtype=X_part.dtype)
-                    y = np.empty(sum(sizes), dtype=y_part.dtype)
-                X[at : at + piece.size], y[at : at + piece.size] = X_part, y_part
-                at += piece.size
-        assert X is not None and y is not None
-        return X, y
+        pieces = [piece for block in blocks
+                  for piece in spans(self.positions(block), 2 * self.block_rows)]
+        return _gather(rows, pieces, sum(piece.size for piece in pieces))

@@ -38,7 +38,9 @@ class EncodedRowsFile:
         self.n, self.width = n, width
         self.target_dtype = np.dtype(target_dtype)
         self.filled = 0
-        self._file = tempfile.TemporaryFile(prefix="keelson-retrain-", dir=directory)
+        # Open for the object's life, closed by close() (or the with block).
+        self._file = tempfile.TemporaryFile(  # noqa: SIM115
+            prefix="keelson-retrain-", dir=directory)
         self._fd = self._file.fileno()
         self._row_bytes = width * ROW_DTYPE.itemsize
         self._targets_at = n * self._row_bytes
@@ -91,14 +93,14 @@ class EncodedRowsFile:
 
 
 def _write(fd: int, array: NDArray[Any], offset: int) -> None:
-    view = memoryview(array).cast("B")
+    view = array.data.cast("B")
     while view:
         written = os.pwrite(fd, view, offset)
         view, offset = view[written:], offset + written
 
 
 def _read(fd: int, array: NDArray[Any], offset: int) -> None:
-    view = memoryview(array).cast("B")
+    view = array.data.cast("B")
     while view:
         got = os.preadv(fd, [view], offset)
         if got == 0:

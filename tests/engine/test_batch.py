@@ -8,8 +8,8 @@ import pytest
 from engine import TrainingCancelled
 from engine.batch import fit, mean_loss, split_validation
 from engine.network import Network
-from engine.rows import ArrayRows
 from engine.optimizers import make_optimizer
+from engine.rows import ArrayRows
 from engine.spec import TRAINING_DEFAULTS
 
 
