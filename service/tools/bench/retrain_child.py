@@ -4,7 +4,7 @@ worker`` runs it, in a process of its own so its peak memory is the job's.
 
 Configured from the environment like a worker (``KEELSON_DATABASE_URL`` and the
 ``KEELSON_WORKER_*`` settings). Prints one JSON object: the job's load and fit
-seconds (from the job's own log line) and this process's peak RSS.
+seconds (from the job's own log line) and this process's peak RSS (VmHWM).
 """
 
 from __future__ import annotations
@@ -61,8 +61,24 @@ def main() -> None:
     if lines.loaded is not None:
         load_s, fit_s = float(lines.loaded[2]), float(lines.loaded[3])
     json.dump({"job_seconds": seconds, "load_seconds": load_s, "fit_seconds": fit_s,
+               "vm_hwm_mib": _vm_hwm_mib(),
                "ru_maxrss_mib": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024},
               sys.stdout)
+
+
+def _vm_hwm_mib() -> float | None:
+    """This process's own peak resident set (Linux /proc VmHWM, in MiB). Not
+    ru_maxrss: Linux carries the spawning process's resident set over exec into
+    it (the bench's parent holds the records in memory), so ru_maxrss can only
+    be an upper bound here."""
+    try:
+        with open("/proc/self/status") as status:
+            for line in status:
+                if line.startswith("VmHWM:"):
+                    return round(int(line.split()[1]) / 1024, 1)
+    except OSError:
+        return None
+    return None
 
 
 if __name__ == "__main__":
