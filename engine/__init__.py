@@ -10,6 +10,7 @@ Reading order: `activations` (the one table of element-wise functions) and
 `online` (one record per step), `batch` (mini-batch epochs), `input_gradients`
 and `attribution` (explanations); `optimizers` (SGD, Adam) step the gradient
 the kernel writes. `learner` ties them to `encoding`, `metrics` and `snapshot`.
+`sweeps` score a record as one field moves.
 `track_record` keeps live metrics of served scores and the Page-Hinkley alarm.
 """
 
@@ -43,6 +44,7 @@ from engine.spec import (
     spec_hash,
     upgrade_legacy_spec,
 )
+from engine.sweeps import sweep, sweep_grid
 
 __all__ = [
     "ACTIVATIONS",
@@ -73,5 +75,7 @@ __all__ = [
     "batch_metrics",
     "explain",
     "spec_hash",
+    "sweep",
+    "sweep_grid",
     "upgrade_legacy_spec",
 ]

@@ -337,6 +337,21 @@ class Encoder:
         """(..., n_inputs) -> (..., n_fields): each field's columns summed."""
         return np.add.reduceat(columns, self._starts, axis=-1)
 
+    def numeric_span(self, name: str, spread: float) -> tuple[float, float]:
+        """A numeric field's declared range; a bound not declared is the learned
+        mean -/+ ``spread`` SDs (or spans 2 ``spread`` SDs from the declared one)."""
+        index = self._field_index[name]
+        if self.kinds[index] != "numeric":
+            raise InvalidInputError("not a numeric field", field=name)
+        low, high = self._bounds[index]
+        column = int(self._starts[index])
+        center, scale = float(self.center[column]), spread * float(self.scale[column])
+        lower, upper = (center - scale if low is None else float(low),
+                        center + scale if high is None else float(high))
+        if upper <= lower:
+            return (lower, lower + 2 * scale) if low is not None else (upper - 2 * scale, upper)
+        return lower, upper
+
     def raw_baseline(self, encoded_row: NDArray[np.float64]) -> dict[str, Any]:
         """An encoded row in raw terms: numeric in raw units, a boolean as the
         share of true, a categorical field as {level: share}."""

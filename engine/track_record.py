@@ -137,6 +137,31 @@ class Tally:
                        auc_histogram=histogram, abs_sum=self.abs_sum + other.abs_sum,
                        sq_sum=self.sq_sum + other.sq_sum, y_mean=mean, y_m2=m2)
 
+    def without(self, part: Tally) -> Tally:
+        """The sums of this stretch with ``part`` (a stretch inside it) taken
+        out: the inverse of `merged`, so ``a.merged(b).without(b)`` is ``a``
+        to rounding (counts exactly). Used when outcomes are forgotten."""
+        if part.task != self.task:
+            raise InvalidInputError("tallies of different tasks do not merge", field="task")
+        n = self.n - part.n
+        if n < 0:
+            raise InvalidInputError("cannot take out more outcomes than a tally holds")
+        if n == 0:
+            return Tally(self.task)
+        # Chan, Golub & LeVeque's pairwise update solved for the other half.
+        mean = (self.n * self.y_mean - part.n * part.y_mean) / n
+        delta = part.y_mean - mean
+        m2 = max(0.0, self.y_m2 - part.y_m2 - delta * delta * n * part.n / self.n)
+        histogram = self.auc_histogram
+        if histogram is not None and part.auc_histogram is not None:
+            histogram = histogram - part.auc_histogram
+        return replace(self, n=n, correct=self.correct - part.correct,
+                       log_loss_sum=self.log_loss_sum - part.log_loss_sum,
+                       brier_sum=self.brier_sum - part.brier_sum,
+                       calibration=self.calibration - part.calibration,
+                       auc_histogram=histogram, abs_sum=self.abs_sum - part.abs_sum,
+                       sq_sum=self.sq_sum - part.sq_sum, y_mean=mean, y_m2=m2)
+
     def metrics(self) -> dict[str, float]:
         """n and the task's metrics; a metric undefined on these outcomes is left out."""
         n = self.n

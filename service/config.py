@@ -32,6 +32,13 @@ def text(value: Any) -> str:
     return value
 
 
+def secret_key(value: Any) -> str:
+    """Text of at least 32 characters (a key that signs)."""
+    if not isinstance(value, str) or len(value) < 32:
+        raise ValueError("must be at least 32 characters")
+    return value
+
+
 def whole_number(value: Any) -> int:
     """An integer: ``8``, not ``8.0``."""
     if isinstance(value, int | str) and not isinstance(value, bool):
@@ -163,6 +170,11 @@ SETTINGS: tuple[Setting, ...] = (
     Setting("KEELSON_ADMIN_TOKEN", API, None, text,
             "a bearer token with every scope (otherwise create tokens with "
             "`keelson token create`); blank counts as unset"),
+    Setting("KEELSON_SECRET_KEY", API, None, secret_key,
+            "the key that signs page session cookies and CSRF tokens (at least 32 "
+            "characters); blank: one is generated once and kept in the database"),
+    Setting("KEELSON_SESSION_HOURS", API, 12.0, positive_number,
+            "how long a page session lasts after signing in"),
     Setting("KEELSON_MAX_BODY_BYTES", API, 16 * MIB, positive_whole_number,
             "largest request body in bytes (16 MiB; 413 beyond)"),
     Setting("KEELSON_MAX_RECORDS_PER_REQUEST", API, 10_000, positive_whole_number,
@@ -185,8 +197,9 @@ SETTINGS: tuple[Setting, ...] = (
             "stating the smallest allowed)"),
     Setting("KEELSON_ACTIVE_STALENESS_SECONDS", API, 1.0, positive_number,
             "how long an API process may serve a replaced active version (at most 1)"),
-    Setting("KEELSON_VERSION_CACHE_SIZE", API, 32, positive_whole_number,
-            "loaded versions kept per API process"),
+    Setting("KEELSON_VERSION_CACHE_MIB", API, 128.0, positive_number,
+            "memory for loaded versions per API process, in MiB (each version's cost is "
+            "measured when it loads; the least recently used go first)"),
     Setting("KEELSON_TOKEN_CACHE_SECONDS", API, 1.0, positive_number,
             "how long an API process trusts a token it looked up (a revocation takes "
             "effect within this)"),
@@ -253,6 +266,10 @@ SETTINGS: tuple[Setting, ...] = (
             "latest holdout records a version is evaluated (and promoted) on"),
     Setting("KEELSON_WORKER_MAX_MODELS", WORKER, None, whole_number,
             "models one worker leases at most (unset: as many as are free)"),
+    Setting("KEELSON_WORKER_RELEASE_SECONDS", WORKER, 60.0, number,
+            "how long a caught-up model (every record applied and stored) stays leased "
+            "and loaded; then its lease is released and its memory freed, and the first "
+            "worker with room claims it again when records come"),
     Setting("KEELSON_WORKER_PROGRESS_SECONDS", WORKER, 1.0, number,
             "seconds between progress writes of a running retrain job"),
     Setting("KEELSON_WORKER_RETRY_SECONDS", WORKER, 1.0, positive_number,

@@ -9,6 +9,13 @@ from pathlib import Path
 ROOT = Path(__file__).resolve().parents[1]
 HTTP_API = ROOT / "docs" / "http-api.md"
 NO_TOKEN = "none"  # the table's word for a route that needs no token
+# The pages (HTML, a session cookie instead of a bearer token): what the
+# session's token needs, or nothing (the sign-in form, its assets).
+PAGE_SCOPES = ("page: none", "page: predict", "page: admin")
+
+
+def is_page(scope: str) -> bool:
+    return scope in PAGE_SCOPES
 
 
 def route_key(method: str, template: str) -> tuple[str, str]:

@@ -35,10 +35,19 @@ def test_every_repository_path_a_document_names_exists() -> None:
     assert missing == {}
 
 
+# A page's need (service/web/pages/guard.py) as the scope table words it.
+PAGE_WORDS = {"open": "page: none", "look": "page: predict", "act": "page: admin"}
+
+
 def _declared_scopes(app: Flask) -> dict[tuple[str, str], str]:
+    from service.web.pages.guard import NEEDS
+
     declared: dict[tuple[str, str], str] = {}
     for rule in app.url_map.iter_rules():
-        scope = auth.declared_scope(app.view_functions.get(rule.endpoint))
+        view = app.view_functions.get(rule.endpoint)
+        scope = auth.declared_scope(view)
+        if scope == auth.PAGE:
+            scope = PAGE_WORDS[getattr(view, NEEDS)]
         for method in sorted((rule.methods or set()) - {"HEAD", "OPTIONS"}):
             declared[route_key(method, rule.rule)] = (
                 NO_TOKEN if scope == auth.PUBLIC else str(scope))

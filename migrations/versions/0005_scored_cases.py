@@ -17,7 +17,7 @@ depends_on = None
 
 BigId = sa.BigInteger().with_variant(sa.Integer(), "sqlite")
 # Labels and outputs as the records table keeps them: TEXT on SQLite (exact numbers,
-# see service/store/tables.py TextJSON), JSON elsewhere.
+# see service/store/tables/base.py TextJSON), JSON elsewhere.
 LabelJSON = sa.JSON().with_variant(sa.Text(), "sqlite")
 
 

@@ -23,7 +23,9 @@ PROMOTED = "promoted"
 RETRAIN_REQUESTED = "retrain_requested"
 PAUSED = "paused"
 RESUMED = "resumed"
-KINDS = (CREATED, SETTINGS_CHANGED, PROMOTED, RETRAIN_REQUESTED, PAUSED, RESUMED)
+RECORDS_FORGOTTEN = "records_forgotten"
+KINDS = (CREATED, SETTINGS_CHANGED, PROMOTED, RETRAIN_REQUESTED, PAUSED, RESUMED,
+         RECORDS_FORGOTTEN)
 
 
 # The settings a change may touch; an event records them whole, as they are
@@ -72,8 +74,18 @@ def created_settings(session: Session, model_id: int) -> dict[str, Any] | None:
 
 
 def last_seq(session: Session, model_id: int) -> int:
-    """The model's last record sequence (0 before any record)."""
-    found = session.scalar(select(func.max(RecordRow.seq)).where(RecordRow.model_id == model_id))
+    """The model's last record sequence (0 before any record), counting
+    forgotten ones: a forget's ``at_seq`` is the last sequence before it
+    removed anything, so a position handed out here never falls behind one
+    the trainer or a version has already passed."""
+    stored = session.scalar(select(func.max(RecordRow.seq)).where(RecordRow.model_id == model_id))
+    return max(int(stored or 0), forgotten_upto(session, model_id))
+
+
+def forgotten_upto(session: Session, model_id: int) -> int:
+    """The highest sequence the model ever had before a forget (0: never forgot)."""
+    found = session.scalar(select(func.max(ModelEventRow.at_seq)).where(
+        ModelEventRow.model_id == model_id, ModelEventRow.kind == RECORDS_FORGOTTEN))
     return int(found or 0)
 
 

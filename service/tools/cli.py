@@ -16,7 +16,10 @@ from typing import Any
 import click
 
 from service.tools.bench.commands import bench
+from service.tools.forget_command import forget
+from service.tools.model_commands import model
 from service.tools.outcome_import import outcomes
+from service.tools.replay import replay
 
 SCOPES = ("ingest", "predict", "admin")
 
@@ -371,6 +374,9 @@ def restore(snapshot: Path, name: str) -> None:
 
 
 cli.add_command(outcomes)  # keelson outcomes import (service/tools/outcome_import.py)
+cli.add_command(model)  # keelson model history|pause|resume|set|delete (model_commands.py)
+cli.add_command(forget)  # keelson forget (service/tools/forget_command.py)
+cli.add_command(replay)  # keelson replay MODEL (service/tools/replay.py)
 
 
 # ------------------------------------------------------------- benchmarks

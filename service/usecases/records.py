@@ -24,7 +24,8 @@ from sqlalchemy.dialects.postgresql import ARRAY
 from sqlalchemy.orm import Session, sessionmaker
 
 from service.errors import ConflictError
-from service.store.tables import ModelRow, RecordRow, utcnow
+from service.store.model_events import RECORDS_FORGOTTEN
+from service.store.tables import ModelEventRow, ModelRow, RecordRow, utcnow
 from service.usecases.common import find_model
 
 KEY_CHUNK = 500  # keys per IN (...) on SQLite: under its parameter limit
@@ -121,7 +122,7 @@ def store_records(session: Session, model: ModelRow, valid: list[Mapping[str, An
     fresh = _drop_duplicates(session, model.id, valid, postgres=postgres)
     if not fresh:
         return IngestResult(accepted=0, duplicates=len(valid))
-    seqs = _allocate_seqs(session, len(fresh), postgres=postgres)
+    seqs = _allocate_seqs(session, model.id, len(fresh), postgres=postgres)
     fraction = float(model.spec["training"]["holdout_fraction"])
     dumps, model_id = json.dumps, model.id
     rows = [
@@ -211,7 +212,8 @@ def _bulk_insert(
     )
 
 
-def _allocate_seqs(session: Session, count: int, *, postgres: bool) -> list[int]:
+def _allocate_seqs(session: Session, model_id: int, count: int, *, postgres: bool
+                   ) -> list[int]:
     """``count`` increasing sequence numbers, taken while the model lock is held."""
     if postgres:
         seqs = session.scalars(
@@ -220,6 +222,13 @@ def _allocate_seqs(session: Session, count: int, *, postgres: bool) -> list[int]
             {"n": count},
         ).all()
         return sorted(seqs)
-    # SQLite: the write transaction holds the database lock, so max + 1 is ours.
-    top = session.scalar(select(func.max(RecordRow.seq))) or 0
+    # SQLite: the write transaction holds the database lock, so max + 1 is ours;
+    # never at or below a sequence this model had before a forget removed it
+    # (its trainer and versions may have passed it: a number handed out again
+    # would sit behind their cursors, never learned). One statement.
+    top = session.scalar(select(func.max(
+        func.coalesce(select(func.max(RecordRow.seq)).scalar_subquery(), 0),
+        func.coalesce(select(func.max(ModelEventRow.at_seq)).where(
+            ModelEventRow.model_id == model_id,
+            ModelEventRow.kind == RECORDS_FORGOTTEN).scalar_subquery(), 0)))) or 0
     return list(range(top + 1, top + 1 + count))

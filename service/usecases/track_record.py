@@ -125,7 +125,7 @@ def tally_of_row(task: str, row: TrackRecordDayRow) -> Tally:
                  y_mean=row.y_mean, y_m2=row.y_m2)
 
 
-def _write(row: TrackRecordDayRow, tally: Tally) -> None:
+def write_tally(row: TrackRecordDayRow, tally: Tally) -> None:
     row.n, row.correct = tally.n, tally.correct
     row.log_loss_sum, row.brier_sum = tally.log_loss_sum, tally.brier_sum
     row.abs_sum, row.sq_sum, row.y_mean, row.y_m2 = (
@@ -155,7 +155,7 @@ def _add_to_days(session: Session, model_id: int, task: str, y: NDArray[Any],
             session.add(row)
         else:
             tally = tally_of_row(task, row).merged(tally)
-        _write(row, tally)
+        write_tally(row, tally)
 
 
 # -------------------------------------------------------------------- alarms

@@ -23,7 +23,7 @@ _COLUMNS = (
     VersionRow.id, VersionRow.number, VersionRow.origin, VersionRow.status,
     VersionRow.records_seen, VersionRow.cursor, VersionRow.metrics,
     VersionRow.created_at, VersionRow.promoted_at, _Parent.number.label("parent"),
-    VersionRow.settings_from_seq,
+    VersionRow.settings_from_seq, VersionRow.forgotten_records,
 )
 
 
@@ -39,6 +39,7 @@ def version_view(row: Row[Any]) -> dict[str, Any]:
         "promoted_at": as_utc(row.promoted_at),
         "parent": row.parent,
         "settings_from_seq": row.settings_from_seq,
+        "forgotten_records": row.forgotten_records,
     }
 
 

@@ -74,6 +74,11 @@ def insert_version(session: Session, model_id: int, new: NewVersion) -> VersionR
             VersionRow.model_id == model_id
         )
     ).scalar_one()
+    # Its parent's weights (an online step, or a warm start) carry every
+    # forgotten record the parent was trained on; a retrain from scratch has
+    # no parent and none. Read under the trainer lock the forget also takes.
+    inherited = 0 if new.parent_id is None else session.scalar(
+        select(VersionRow.forgotten_records).where(VersionRow.id == new.parent_id)) or 0
     version = VersionRow(
         model_id=model_id,
         number=int(number) + 1,
@@ -86,6 +91,7 @@ def insert_version(session: Session, model_id: int, new: NewVersion) -> VersionR
         parent_id=new.parent_id,
         job_id=new.job_id,
         settings_from_seq=new.settings_from_seq,
+        forgotten_records=int(inherited),
     )
     session.add(version)
     session.flush()

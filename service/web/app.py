@@ -11,7 +11,7 @@ from flask_smorest.spec.plugins import integerconverter2paramschema
 from werkzeug.routing import IntegerConverter
 
 from service.config import load_config
-from service.web import auth, observability, paths, problems, request_target
+from service.web import auth, observability, pages, paths, problems, request_target
 from service.web.body_limit import BoundedRequest
 from service.web.domain_metrics import ModelStateCollector
 from service.web.drift_metrics import DriftCollector
@@ -22,6 +22,7 @@ from service.web.schemas.views import ProblemSchema
 from service.web.track_record_metrics import TrackRecordCollector
 from service.web.views import (
     drift,
+    forget,
     history,
     jobs,
     models,
@@ -29,6 +30,7 @@ from service.web.views import (
     outcomes,
     predictions,
     records,
+    sweeps,
     track_record,
     versions,
 )
@@ -41,10 +43,12 @@ BLUEPRINTS = [
     outcomes.blueprint,
     versions.blueprint,
     predictions.blueprint,
+    sweeps.blueprint,
     drift.blueprint,
     jobs.blueprint,
     track_record.blueprint,
     history.blueprint,
+    forget.blueprint,
 ]
 
 # The largest id or number a path can name: job ids and version numbers are
@@ -110,6 +114,7 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     for blueprint in BLUEPRINTS:
         api.register_blueprint(blueprint)
     problems.init_app(app)
+    pages.init_app(app)
     observability.add_scrape_collector(app, DriftCollector(app))
     app.extensions["keelson.openapi"] = openapi_document(app, api.spec)
     app.wsgi_app = SecurityHeaders(app.wsgi_app)  # type: ignore[method-assign]

@@ -33,6 +33,9 @@ from service.usecases.tokens import SCOPES, hash_token
 from service.web.extensions import get_database
 
 PUBLIC = "public"
+# Pages (service/web/pages) are reached with a signed session cookie, not a
+# bearer token: their blueprint checks the session and its scope itself.
+PAGE = "page"
 SCOPE_ATTRIBUTE = "keelson_scope"
 FILTERS_ATTRIBUTE = "keelson_filters_by_model"
 CACHE_KEY = "keelson.tokens"
@@ -57,6 +60,12 @@ def requires(scope: str) -> Callable[[F], F]:
 def public(view: F) -> F:
     """Declare that a view needs no token (health, readiness, the API document)."""
     setattr(view, SCOPE_ATTRIBUTE, PUBLIC)
+    return view
+
+
+def page(view: F) -> F:
+    """Declare that a view is a page: its blueprint checks the session."""
+    setattr(view, SCOPE_ATTRIBUTE, PAGE)
     return view
 
 
@@ -135,7 +144,13 @@ def _bearer_token() -> str | None:
 
 def grant_for_token(token: str) -> Grant | None:
     """What a presented token may do, or None when it is unknown or revoked."""
-    digest = hash_token(token)
+    return grant_for_digest(hash_token(token))
+
+
+def grant_for_digest(digest: str) -> Grant | None:
+    """What the token with this SHA-256 digest may do (the cache's answer when
+    fresh), or None when it is unknown or revoked. A page session keeps the
+    digest, never the token, and is checked here on every request."""
     extensions = current_app.extensions
     admin_digest = extensions[ADMIN_DIGEST_KEY]  # hashed once, at init_app
     if admin_digest and hmac.compare_digest(digest, admin_digest):
@@ -180,7 +195,7 @@ def authenticate() -> None:
     needed = declared_scope(view)
     if needed is None:
         raise InternalServerError(f"route {request.endpoint!r} declares no scope")
-    if needed == PUBLIC:
+    if needed in (PUBLIC, PAGE):
         return
     token = _bearer_token()
     granted = grant_for_token(token) if token else None

@@ -38,7 +38,7 @@ def init_version_cache(app: Flask) -> VersionCache:
     cache = VersionCache(
         get_database(app).read,
         max_age=float(app.config["KEELSON_ACTIVE_STALENESS_SECONDS"]),
-        capacity=int(app.config["KEELSON_VERSION_CACHE_SIZE"]),
+        budget_mib=float(app.config["KEELSON_VERSION_CACHE_MIB"]),
     )
     app.extensions[CACHE_KEY] = cache
     return cache

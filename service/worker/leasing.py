@@ -20,11 +20,11 @@ from __future__ import annotations
 import datetime as dt
 from collections.abc import Iterable
 
-from sqlalchemy import BigInteger, DateTime, literal, or_, select, update
+from sqlalchemy import BigInteger, DateTime, exists, literal, or_, select, update
 from sqlalchemy.dialects import postgresql, sqlite
 from sqlalchemy.orm import Session
 
-from service.store.tables import JobRow, ModelRow, TrainerRow, utcnow
+from service.store.tables import JobRow, ModelRow, RecordRow, TrainerRow, utcnow
 
 # A job whose worker vanished this many times is failed instead of retried:
 # it is likely what brings its workers down.
@@ -57,13 +57,21 @@ def claim_trainers(
     limit: int,
     exclude: Iterable[int] = (),
 ) -> list[int]:
-    """Lease up to ``limit`` free, unstopped trainers to ``worker_id`` (its own
-    leases count as free, except the models in ``exclude``), leaving out the
-    models backed off until later (faults.py) and the paused ones; returns
-    their model ids. Call inside a write transaction."""
+    """Lease up to ``limit`` free, unstopped trainers with records after their
+    cursor to ``worker_id`` (its own leases count as free, except the models
+    in ``exclude``), leaving out the models backed off until later (faults.py)
+    and the paused ones; returns their model ids. Call inside a write
+    transaction.
+
+    A model with nothing to learn is not leased: workers let caught-up models
+    go (``KEELSON_WORKER_RELEASE_SECONDS``), and taking one back before it has
+    records would load it for nothing. The test is one probe of the
+    (model_id, seq) index per free trainer."""
     if limit <= 0:
         return []
     now = utcnow()
+    lagging = exists().where(RecordRow.model_id == TrainerRow.model_id,
+                             RecordRow.seq > TrainerRow.cursor)
     free = (
         select(TrainerRow.model_id)
         .where(
@@ -76,6 +84,7 @@ def claim_trainers(
                 TrainerRow.leased_by == worker_id,
                 TrainerRow.lease_expires_at < now,
             ),
+            lagging,
         )
         .order_by(TrainerRow.model_id)
         .limit(limit)

@@ -25,12 +25,10 @@ from typing import Any
 import numpy as np
 from sqlalchemy.orm import Session, sessionmaker
 
-from engine import EngineError, Learner, NonFiniteError
-from service.store.model_events import created_settings, settings_changes
+from engine import EngineError, Learner
 from service.store.record_log import RecordChunk, read_after, read_latest_holdout
 from service.store.tables import TrainerRow, VersionRow
 from service.versions.compare import (
-    ENCODER_KEY,
     RECORDS_BEFORE_KEY,
     UNREAD,
     encoder_of,
@@ -43,16 +41,16 @@ from service.versions.holdout import HoldoutWindow, evaluate, json_metrics
 from service.versions.writes import NewVersion, advance_cursor, stop_lineage, write_online_version
 from service.worker.faults import ModelFault, clear_fault, load_spec
 from service.worker.settings import WorkerSettings
+from service.worker.stepping import LineageStopped, Stepper, online_snapshot, warmed_up
+
+__all__ = ["LineageStopped", "OnlineLineage"]
 
 log = logging.getLogger("keelson.worker")
 
 
-class LineageStopped(Exception):
-    """The lineage hit a non-finite step and was stopped (``trainers.error``)."""
-
-
-class OnlineLineage:
-    """One model's online trainer inside this worker (mutable state)."""
+class OnlineLineage(Stepper):
+    """One model's online trainer inside this worker (mutable state); the
+    stepping itself is :class:`Stepper`'s, which ``keelson replay`` shares."""
 
     def __init__(
         self,
@@ -62,33 +60,26 @@ class OnlineLineage:
         reads: sessionmaker[Session],
         writes: sessionmaker[Session],
     ) -> None:
-        self.model_id = model_id
-        self.worker_id = worker_id
-        self.settings = settings
-        self.reads, self.writes = reads, writes
-        self.learner: Learner | None = None
-        self.head_id: int | None = None
-        self.cursor = 0  # last record applied or scored, in memory
-        self.stored_cursor = 0  # trainers.cursor as last written
-        self.pending_train = 0  # train records applied since the head version
-        self.encoder: str | None = None
-        # Train records a lineage's root learned in batch (a retrain) before
-        # the learner's own online count began: a version's records_seen is
-        # this plus learner.records_seen.
-        self.records_before = 0
-        self.window = HoldoutWindow(settings.holdout_window)
-        self.last_arrival = time.monotonic()
-        self._warmup_seen = -1
-        # The active version id read with the current chunk (UNREAD outside one).
-        self._active_id: Any = UNREAD
-        # Settings changes not yet reached: (event id, at_seq, settings), each
-        # applied just before the first record after its at_seq.
-        self._pending: list[tuple[int, int, dict[str, Any]]] = []
-        self._last_change_id = 0
-        # The position of the settings in use (None: a model without a history).
-        self.settings_from_seq: int | None = None
-        with reads() as session:
-            self.spec: dict[str, Any] = load_spec(session, model_id)
+        with reads() as session:  # one read transaction for the whole start
+            super().__init__(model_id, load_spec(session, model_id))
+            self.worker_id = worker_id
+            self.settings = settings
+            self.reads, self.writes = reads, writes
+            self.head_id: int | None = None
+            self.stored_cursor = 0  # trainers.cursor as last written
+            self.encoder: str | None = None
+            # Train records a lineage's root learned in batch (a retrain) before
+            # the learner's own online count began: a version's records_seen is
+            # this plus learner.records_seen.
+            self.records_before = 0
+            self.window = HoldoutWindow(settings.holdout_window)
+            self.last_arrival = time.monotonic()
+            self._warmup_seen = -1
+            # Since when every record is applied and stored (monotonic; None while
+            # there is work): the worker lets the lineage go after a while.
+            self.settled_since: float | None = None
+            # The active version id read with the current chunk (UNREAD outside one).
+            self._active_id: Any = UNREAD
             trainer = session.get(TrainerRow, model_id)
             assert trainer is not None
             # A fault left by an earlier try, cleared once this one gets through.
@@ -129,8 +120,11 @@ class OnlineLineage:
                 self.flush()
             if not self.pending_train and self.cursor == self.stored_cursor:
                 self._clear_fault()  # all applied and stored: nothing left to fail
+                if self.settled_since is None:
+                    self.settled_since = time.monotonic()
             return False
         self.last_arrival = time.monotonic()
+        self.settled_since = None
         try:
             self._apply(chunk)
         finally:
@@ -163,116 +157,23 @@ class OnlineLineage:
             clear_fault(self.writes, self.model_id, self.worker_id)
             self.faulted = False
 
-    def _apply(self, chunk: RecordChunk) -> None:
-        learner = self.learner
-        assert learner is not None
-        try:
-            X = learner.encode(chunk.features)
-            Y = learner.encode_labels(chunk.labels)
-        except EngineError:
-            raise self._unencodable(chunk) from None
-        start = 0
-        while start < len(chunk):
-            self._settle(int(chunk.seqs[start]))
-            stop = self._segment_end(chunk.is_train, start)
-            if self._pending:  # the next change cuts the segment after its at_seq
-                stop = min(stop, start + int(np.searchsorted(
-                    chunk.seqs[start:], self._pending[0][1], side="right")))
-            train = chunk.is_train[start:stop]
-            X_part, Y_part = X[start:stop], Y[start:stop]
-            if train.all():
-                self._learn(X_part, Y_part, chunk.seqs[start:stop])
-            else:
-                self._learn(X_part[train], Y_part[train], chunk.seqs[start:stop][train])
-                X_in, Y_in = X_part[~train], Y_part[~train]
-                self.active.update(X_in, Y_in, *self.window.extend(X_in, Y_in))
-            self.cursor = int(chunk.seqs[stop - 1])
-            start = stop
-            if self.pending_train and learner.records_seen % self.checkpoint_every == 0:
-                self._write_version()
+    def _holdout(self, X: np.ndarray, Y: np.ndarray) -> None:
+        self.active.update(X, Y, *self.window.extend(X, Y))
 
-    def _unencodable(self, chunk: RecordChunk) -> ModelFault:
-        """The fault naming the first record of ``chunk`` that does not encode
-        (found record by record: only a failure pays for it)."""
-        assert self.learner is not None
-        for seq, features, label in zip(chunk.seqs, chunk.features, chunk.labels,
-                                        strict=True):
-            try:
-                self.learner.encode([features])
-                self.learner.encode_labels([label])
-            except EngineError as exc:
-                reason = str(exc).removeprefix("row 0: ")
-                return ModelFault(f"record {seq} cannot be encoded: {reason}")
-        return ModelFault(f"records {chunk.seqs[0]}..{chunk.seqs[-1]} cannot be encoded")
-
-    def _segment_end(self, is_train: np.ndarray, start: int) -> int:
-        """End of the run of records that takes ``records_seen`` at most to
-        the next multiple of ``checkpoint_every`` (cut just after it)."""
-        assert self.learner is not None
-        to_boundary = self.checkpoint_every - self.learner.records_seen % self.checkpoint_every
-        train_at = np.flatnonzero(is_train[start:])
-        if len(train_at) < to_boundary:
-            return len(is_train)
-        return start + int(train_at[to_boundary - 1]) + 1
-
-    def _learn(self, X: np.ndarray, Y: np.ndarray, seqs: np.ndarray) -> None:
-        if not len(X):
-            return
-        assert self.learner is not None
-        try:
-            self.learner.learn(X, Y)
-        except NonFiniteError as exc:
-            self._stop(f"NonFiniteError at record {int(seqs[exc.applied])}: {exc}")
-        self.pending_train += len(X)
+    def _checkpoint(self) -> None:
+        self._write_version()
 
     def _stop(self, error: str) -> None:
         log.error("model %s: lineage stopped: %s", self.model_id, error)
         stop_lineage(self.writes, self.model_id, self.worker_id, self.head_id, error)
         raise LineageStopped(error)
 
-    # ------------------------------------------------------------------ settings
-    def _start_settings(self, session: Session) -> None:
-        """Take the settings in effect after the cursor: those of the last
-        change at or before it (or the creation's); later changes wait."""
-        changes = settings_changes(session, self.model_id)
-        if changes:
-            self._last_change_id = changes[-1][0]
-        in_effect = [change for change in changes if change[1] <= self.cursor]
-        settings = in_effect[-1][2] if in_effect else created_settings(session, self.model_id)
-        if settings is not None:  # None: a model from before its history, as stored
-            self._use_settings(settings, in_effect[-1][1] if in_effect else 0)
-        self._pending = [change for change in changes if change[1] > self.cursor]
-
-    def _read_changes(self, session: Session) -> None:
-        for change in settings_changes(session, self.model_id, self._last_change_id):
-            self._pending.append(change)
-            self._last_change_id = change[0]
-
-    def _settle(self, seq: int) -> None:
-        """Apply every change that takes effect before record ``seq``."""
-        while self._pending and self._pending[0][1] < seq:
-            _, at_seq, settings = self._pending.pop(0)
-            self._use_settings(settings, at_seq)
-            log.info("model %s: settings of record %s on applied", self.model_id, at_seq)
-
-    def _use_settings(self, settings: dict[str, Any], at_seq: int) -> None:
-        self.spec = {**self.spec, **settings}
-        self.checkpoint_every = int(self.spec["training"]["checkpoint_every"])
-        self.settings_from_seq = at_seq
-        if self.learner is not None:
-            try:  # the same options again change nothing (a head that has them)
-                self.learner.retune(self.spec["training"])
-            except EngineError as exc:
-                raise ModelFault(f"the settings of record {at_seq} on cannot be "
-                                 f"applied: {exc}") from None
-
     # ------------------------------------------------------------------ versions
     def _write_version(self) -> None:
         learner = self.learner
         assert learner is not None
-        snapshot = learner.to_bytes(extra={"cursor": self.cursor, ENCODER_KEY: self.encoder,
-                                           RECORDS_BEFORE_KEY: self.records_before,
-                                           "model_id": self.model_id})
+        snapshot = online_snapshot(learner, cursor=self.cursor, encoder=self.encoder,
+                                   records_before=self.records_before, model_id=self.model_id)
         metrics: dict[str, Any] = {
             "prequential": json_metrics(learner.prequential_metrics()),
             "holdout": evaluate(learner, self.window),
@@ -320,16 +221,10 @@ class OnlineLineage:
         if not len(rows) or (len(rows) < self.warmup_records and not idle):
             self._clear_fault()  # waiting for records: nothing failed
             return False
-        used = rows.features[:self.warmup_records], rows.labels[:self.warmup_records]
-        try:
-            self.learner = Learner.create(self.spec, warmup=used[0], warmup_labels=used[1])
-        except EngineError as exc:
-            raise ModelFault("the network cannot be created from the spec and warm-up "
-                             f"records: {exc}") from None
-        last = int(rows.seqs[len(used[0]) - 1]) if used[0] else 0
-        self.encoder = f"warmup:{self.model_id}:{last}"
+        self.learner, self.encoder = warmed_up(self.spec, self.model_id, rows,
+                                               self.warmup_records)
         log.info("model %s: network created, encoding from %s warm-up records",
-                 self.model_id, len(used[0]))
+                 self.model_id, min(len(rows), self.warmup_records))
         self.cursor = self.stored_cursor = 0
         self.last_arrival = time.monotonic()
         return True

@@ -43,6 +43,11 @@ from service.worker.settings import WorkerSettings
 
 log = logging.getLogger("keelson.worker")
 CLAIM_BATCH = 4
+# While more models wait to be leased, claim again at once as long as fewer
+# than this many lineages had work on the last pass: a backlog of many models
+# is taken up in a few passes, not at CLAIM_BATCH per KEELSON_WORKER_CLAIM_SECONDS,
+# and a worker takes no more than it can step promptly.
+CLAIM_AHEAD = 8
 FAULT_LOG = "cannot train"  # how each failed try of one model starts its log line
 # Failures that mean the database is away for now (restarting, unreachable).
 DATABASE_AWAY = (sa_exc.OperationalError, sa_exc.InterfaceError)
@@ -95,6 +100,8 @@ class Worker:
         self._next_claim = 0.0
         self._next_retention = 0.0
         self._database_away = False
+        self._more_waiting = False  # the last claim filled its batch
+        self._working = 0  # lineages that had work on the last pass
 
     def run(self) -> None:
         log.info("worker %s started", self.worker_id)
@@ -115,7 +122,7 @@ class Worker:
                 self._heartbeat()
                 self._next_heartbeat = now + self.settings.heartbeat_seconds
                 answered = True
-            if now >= self._next_claim:
+            if now >= self._next_claim or (self._more_waiting and self._working < CLAIM_AHEAD):
                 self._claim()
                 self._next_claim = now + self.settings.claim_seconds
                 answered = True
@@ -138,11 +145,14 @@ class Worker:
             log.info("worker %s: database reachable again", self.worker_id)
             self._database_away = False
         busy = False
+        working = 0
         for model_id, lineage in list(self.lineages.items()):
             if self.stop.is_set():
                 break
             try:
-                busy = lineage.step() or busy
+                stepped = lineage.step()
+                working += stepped
+                busy = stepped or busy
             except (Fenced, LineageStopped) as exc:
                 log.warning("model %s: dropped by %s: %s", model_id, self.worker_id, exc)
                 self.lineages.pop(model_id, None)
@@ -151,7 +161,29 @@ class Worker:
                 # in memory is needed that the database does not hold.
                 self.lineages.pop(model_id, None)
                 self._fault(model_id, exc, lineage.head_id)
+        self._working = working
+        self._release_settled()
         return busy
+
+    def _release_settled(self) -> None:
+        """Let go of the lineages caught up for ``release_seconds``: their
+        versions are written, so nothing in memory is lost, and a worker's
+        memory stays that of the models with recent records. Records that
+        arrive meanwhile are after the stored cursor: the next claim finds them."""
+        now = time.monotonic()
+        settled = [model_id for model_id, lineage in self.lineages.items()
+                   if lineage.settled_since is not None
+                   and now - lineage.settled_since >= self.settings.release_seconds]
+        if not settled:
+            return
+        try:
+            with transaction(self.writes) as session:
+                release_trainers(session, self.worker_id, settled)
+        except DATABASE_AWAY:
+            return  # kept; tried again on the next pass
+        for model_id in settled:
+            self.lineages.pop(model_id, None)
+        log.info("worker %s: released %s caught-up model(s)", self.worker_id, len(settled))
 
     def _retention(self, now: float) -> None:
         """Delete a few batches of expired scored cases; soon again while more remain."""
@@ -220,6 +252,7 @@ class Worker:
             ensure_trainer_rows(session)
             claimed = claim_trainers(session, self.worker_id, self.settings.lease_seconds,
                                      room, exclude=self.lineages)
+        self._more_waiting = room > 0 and len(claimed) == room
         for model_id in claimed:
             log.info("model %s: leased by %s", model_id, self.worker_id)
             try:

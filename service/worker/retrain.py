@@ -21,6 +21,7 @@ import dataclasses
 import logging
 import math
 import time
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
@@ -93,24 +94,15 @@ def run_retrain(
             raise ModelFault("the model has no train records to retrain on")
         if active is not None:
             learner = Learner.from_bytes(active.snapshot)
-            learner.retune(spec["training"])  # a retrain fits with today's settings
-            encoder, parent_id = encoder_of(learner), active.id
+            start = warm_retrain(job_id, model_id, spec, cursor, n_train, learner, active.id)
         else:
-            sample = _stats_sample(session, model_id, cursor, n_train)
-            learner = Learner.create(spec, warmup=sample.features, warmup_labels=sample.labels)
-            encoder, parent_id = f"retrain:{job_id}", None
+            start = fresh_retrain(session, job_id, model_id, spec, cursor, n_train, warm_start)
 
-    started = time.perf_counter()
-    with _load_train(reads, learner, model_id, cursor, n_train, settings.chunk_records,
-                     cancel) as rows:
-        loaded = time.perf_counter()
-        reporter = _ProgressReporter(writes, job_id, worker_id, settings.progress_seconds,
-                                     int(spec.get("training", {}).get("max_epochs", 0)))
-        report = learner.fit_rows(rows, progress=reporter, cancel=cancel,
-                                  warm_start=warm_start)
+    reporter = _ProgressReporter(writes, job_id, worker_id, settings.progress_seconds,
+                                 int(spec.get("training", {}).get("max_epochs", 0)))
+    report = fit_retrain(reads, start, settings.chunk_records, reporter, cancel)
     reporter.flush()
-    log.info("job %s: %s train records loaded in %.2f s, fitted in %.2f s (%s epochs)",
-             job_id, n_train, loaded - started, time.perf_counter() - loaded, report.epochs)
+    learner, encoder, parent_id = start.learner, start.encoder, start.parent_id
 
     window = HoldoutWindow(settings.holdout_window)
     with reads() as session:
@@ -126,11 +118,7 @@ def run_retrain(
         writes, model_id, spec, window, encoder, cursor, settings.holdout_window,
         new_active_score(spec))
     promotion = decide(PromotionContext(spec, metrics, active_id, active_metrics))
-    # The version has learned from every train record up to its cursor.
-    records_before = n_train - learner.records_seen
-    snapshot = learner.to_bytes(extra={"cursor": cursor, ENCODER_KEY: encoder,
-                                       RECORDS_BEFORE_KEY: records_before,
-                                       "model_id": model_id, "job_id": job_id})
+    snapshot = retrain_snapshot(start)
     new = NewVersion(snapshot=snapshot, origin="retrain", cursor=cursor,
                      records_seen=n_train, metrics=metrics,
                      parent_id=parent_id, job_id=job_id,
@@ -139,6 +127,69 @@ def run_retrain(
     log.info("job %s: version %s of model %s (%s)", job_id, version.number, model_id,
              version.status)
     return version
+
+
+@dataclass
+class RetrainStart:
+    """What a retrain fits from: the job, the spec as it was, the records up
+    to ``cursor`` (``n_train`` of them train), and the learner it starts
+    with (a fresh network, or the active version's for a warm start)."""
+
+    job_id: int
+    model_id: int
+    spec: dict[str, Any]
+    cursor: int
+    n_train: int
+    learner: Learner
+    encoder: str | None
+    parent_id: int | None
+    warm_start: bool
+
+
+def warm_retrain(job_id: int, model_id: int, spec: dict[str, Any], cursor: int,
+                 n_train: int, active: Learner, active_id: int) -> RetrainStart:
+    """A warm start from the active version's learner (a retrain fits with
+    the settings of the moment)."""
+    active.retune(spec["training"])
+    return RetrainStart(job_id, model_id, spec, cursor, n_train, active, encoder_of(active),
+                        active_id, warm_start=True)
+
+
+def fresh_retrain(session: Session, job_id: int, model_id: int, spec: dict[str, Any],
+                  cursor: int, n_train: int, warm_start: bool = False) -> RetrainStart:
+    """From scratch: the encoder's statistics from a sample of the train records
+    (``warm_start``: the job asked for one, but no version was active; the fit
+    then starts from this fresh network, the same weights as from scratch)."""
+    sample = _stats_sample(session, model_id, cursor, n_train)
+    learner = Learner.create(spec, warmup=sample.features, warmup_labels=sample.labels)
+    return RetrainStart(job_id, model_id, spec, cursor, n_train, learner,
+                        f"retrain:{job_id}", None, warm_start=warm_start)
+
+
+def fit_retrain(reads: sessionmaker[Session], start: RetrainStart, chunk_records: int,
+                progress: Any = None, cancel: Any = lambda: False) -> Any:
+    """The batch fit of a retrain over every train record up to its cursor
+    (the worker's job and ``keelson replay`` both run this); the fit report."""
+    started = time.perf_counter()
+    with _load_train(reads, start.learner, start.model_id, start.cursor, start.n_train,
+                     chunk_records, cancel) as rows:
+        loaded = time.perf_counter()
+        report = start.learner.fit_rows(rows, progress=progress, cancel=cancel,
+                                        warm_start=start.warm_start)
+    log.info("job %s: %s train records loaded in %.2f s, fitted in %.2f s (%s epochs)",
+             start.job_id, start.n_train, loaded - started, time.perf_counter() - loaded,
+             report.epochs)
+    return report
+
+
+def retrain_snapshot(start: RetrainStart) -> bytes:
+    """The snapshot bytes of a retrain's version, once fitted."""
+    learner = start.learner
+    # The version has learned from every train record up to its cursor.
+    records_before = start.n_train - learner.records_seen
+    return learner.to_bytes(extra={"cursor": start.cursor, ENCODER_KEY: start.encoder,
+                                   RECORDS_BEFORE_KEY: records_before,
+                                   "model_id": start.model_id, "job_id": start.job_id})
 
 
 def _load_train(reads: sessionmaker[Session], learner: Learner, model_id: int, cursor: int,
@@ -156,9 +207,9 @@ def _load_train(reads: sessionmaker[Session], learner: Learner, model_id: int, c
                 rows = EncodedRowsFile(n_train, X_part.shape[1], Y_part.dtype)
             rows.append(X_part, Y_part)
         if rows is None or len(rows) != n_train:
-            # Records at or before the cursor are all committed and never deleted
-            # while a job runs (docs/architecture.md, invariant 1), so this means
-            # the model was removed.
+            # Records at or before the cursor are all committed (docs/architecture.md,
+            # invariant 1); they go only with the model, or by a forget, which
+            # queues this job again (this attempt's writes are fenced).
             raise RuntimeError(f"expected {n_train} train records, read "
                                f"{0 if rows is None else len(rows)}")
     except BaseException:

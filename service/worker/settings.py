@@ -23,6 +23,7 @@ _KEYS = {
     "chunk_records": "KEELSON_WORKER_CHUNK_RECORDS",
     "holdout_window": "KEELSON_WORKER_HOLDOUT_WINDOW",
     "max_models": "KEELSON_WORKER_MAX_MODELS",
+    "release_seconds": "KEELSON_WORKER_RELEASE_SECONDS",
     "progress_seconds": "KEELSON_WORKER_PROGRESS_SECONDS",
     "retry_seconds": "KEELSON_WORKER_RETRY_SECONDS",
     "retry_max_seconds": "KEELSON_WORKER_RETRY_MAX_SECONDS",
@@ -53,6 +54,9 @@ class WorkerSettings:
     # records at or before the version's cursor (a bounded window).
     holdout_window: int = _default("holdout_window")
     max_models: int | None = _default("max_models")
+    # A caught-up lineage is let go after this long: a worker's memory holds
+    # the models with recent records, not every model it ever trained.
+    release_seconds: float = _default("release_seconds")
     progress_seconds: float = _default("progress_seconds")
     # A model the worker cannot load or train is tried again after this many
     # seconds, doubled with each try that fails in a row, up to the maximum.

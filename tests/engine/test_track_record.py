@@ -44,6 +44,36 @@ def test_tallies_merged_day_by_day_equal_the_tally_of_all_cases(task: str) -> No
     assert merged.main_metric() == pytest.approx(whole.main_metric(), rel=1e-12)
 
 
+@pytest.mark.parametrize("task", ["binary", "multiclass", "regression"])
+def test_taking_cases_out_equals_the_tally_of_the_cases_left(task: str) -> None:
+    """``without`` inverts ``merged`` (Chan, Golub & LeVeque's update solved
+    for the other half): the rest equals the tally of the cases never added,
+    counts exactly; taking everything out leaves an empty tally."""
+    rng = np.random.default_rng(5)
+    n = 600
+    if task == "binary":
+        y, scores = binary_cases(5, n)
+    elif task == "multiclass":
+        scores = rng.dirichlet(np.ones(3), n)
+        y = rng.integers(0, 3, n)
+    else:
+        y = rng.normal(50.0, 4.0, n)
+        scores = (y + rng.normal(0.0, 1.0, n))[:, None]
+    gone = rng.uniform(size=n) < 0.3
+    whole = Tally.of(task, y, scores)
+    rest = whole.without(Tally.of(task, y[gone], scores[gone]))
+    kept = Tally.of(task, y[~gone], scores[~gone])
+    assert (rest.n, rest.correct) == (kept.n, kept.correct)
+    for name, value in kept.metrics().items():
+        assert rest.metrics()[name] == pytest.approx(value, rel=1e-9), name
+    assert np.allclose(rest.calibration, kept.calibration, rtol=1e-12, atol=1e-9)
+    if task == "binary":
+        assert np.array_equal(rest.auc_histogram, kept.auc_histogram)
+    assert whole.without(whole).metrics() == {"n": 0}
+    with pytest.raises(InvalidInputError):
+        kept.without(whole)
+
+
 def test_an_empty_tally_reports_only_its_count_and_tasks_do_not_mix() -> None:
     assert Tally("binary").metrics() == {"n": 0}
     assert Tally("binary").main_metric() is None

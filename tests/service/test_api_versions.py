@@ -38,13 +38,13 @@ def test_versions_are_listed_oldest_first_with_every_field(
     assert [timeless(v) for v in body["versions"]] == [
         {"number": 1, "origin": "online", "status": "active", "records_seen": 30,
          "cursor": 30, "metrics": METRICS, "promoted_at": None, "parent": None,
-         "settings_from_seq": None},
+         "settings_from_seq": None, "forgotten_records": 0},
         {"number": 2, "origin": "online", "status": "candidate", "records_seen": 60,
          "cursor": 60, "metrics": {}, "promoted_at": None, "parent": 1,
-         "settings_from_seq": None},
+         "settings_from_seq": None, "forgotten_records": 0},
         {"number": 3, "origin": "retrain", "status": "candidate", "records_seen": 48,
          "cursor": 60, "metrics": {}, "promoted_at": None, "parent": None,
-         "settings_from_seq": None},
+         "settings_from_seq": None, "forgotten_records": 0},
     ]
     one = any_api.request("GET", f"{VERSIONS}/2", 200)
     assert timeless(one) == timeless(any_api.request("GET", VERSIONS, 200)["versions"][1])

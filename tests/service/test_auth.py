@@ -19,7 +19,7 @@ from service.store.tables import TokenRow
 from service.usecases.tokens import create_token, list_tokens, revoke_token
 from service.web.auth import SCOPES, declared_scope
 from service.web.extensions import get_database
-from tests.contract import NO_TOKEN, documented_scopes, route_key
+from tests.contract import NO_TOKEN, PAGE_SCOPES, documented_scopes, is_page, route_key
 from tests.service.conftest import build_app
 from tests.service.helpers import ApiClient, create_model
 
@@ -39,10 +39,14 @@ def app_routes(app: Flask) -> Iterator[tuple[str, str, str]]:
 
 
 def routes(app: Flask) -> Iterator[tuple[str, str, str]]:
-    """(method, concrete path, documented scope) for every route of the app."""
+    """(method, concrete path, documented scope) for every route of the API;
+    the pages take a session, not a bearer token (tests/service/test_pages*.py
+    and test_page_routes below)."""
     table = documented_scopes()
     for method, rule, path in app_routes(app):
-        yield method, path, table[route_key(method, rule)]
+        scope = table[route_key(method, rule)]
+        if not is_page(scope):
+            yield method, path, scope
 
 
 def test_every_route_is_in_the_scope_table_and_every_row_is_a_route(app: Flask) -> None:
@@ -51,7 +55,7 @@ def test_every_route_is_in_the_scope_table_and_every_row_is_a_route(app: Flask) 
     assert sorted(served - set(table)) == []  # served, but no documented scope
     assert sorted(set(table) - served) == []  # documented, but not served
     assert len(served) >= 16
-    assert set(table.values()) <= {NO_TOKEN, *SCOPES}
+    assert set(table.values()) <= {NO_TOKEN, *SCOPES, *PAGE_SCOPES}
 
 
 def test_the_openapi_document_states_the_documented_scopes(api: ApiClient) -> None:
@@ -67,8 +71,9 @@ def test_the_openapi_document_states_the_documented_scopes(api: ApiClient) -> No
             assert (needs == NO_TOKEN) == (operation["security"] == []), (method, template)
             stated[route_key(method.upper(), template)] = needs
     table = documented_scopes()
-    # /metrics is served beside the API, not described in its document.
-    assert stated == {key: scope for key, scope in table.items() if key[1] != "/metrics"}
+    # /metrics is served beside the API, the pages are HTML: neither is in it.
+    assert stated == {key: scope for key, scope in table.items()
+                      if key[1] != "/metrics" and not is_page(scope)}
 
 
 @pytest.fixture
@@ -193,3 +198,52 @@ def test_without_an_environment_token_an_empty_bearer_never_passes(sqlite_url: s
     api = ApiClient(app)
     api.request("GET", "/v1/models", 401, token="")
     api.request("GET", "/v1/models", 401, token="None")
+
+
+PAGE_NEEDS = {"page: none": "open", "page: predict": "look", "page: admin": "act"}
+
+
+def test_page_routes_declare_the_documented_need(app: Flask) -> None:
+    """Each page view declares the need (service/web/pages/guard.py) the
+    scope table gives its route, and a page route is nothing else."""
+    from service.web.pages.guard import NEEDS
+    table = documented_scopes()
+    pages = 0
+    for method, rule, _ in app_routes(app):
+        scope = table[route_key(method, rule)]
+        view = app.view_functions[next(r.endpoint for r in app.url_map.iter_rules()
+                                       if r.rule == rule and method in (r.methods or ()))]
+        if is_page(scope):
+            pages += 1
+            assert getattr(view, NEEDS, None) == PAGE_NEEDS[scope], (method, rule)
+        else:
+            assert getattr(view, NEEDS, None) is None, (method, rule)
+    assert pages >= 10
+
+
+def test_the_page_matrix(matrix_api: ApiClient, app: Flask) -> None:
+    """Without a session a page sends to the sign-in form (GET) or is refused
+    (POST, 403: no CSRF token can match); with a look-only session an acting
+    form is refused with 403 even with its CSRF token."""
+    from tests.service.page_client import PageClient, csrf_of
+    table = documented_scopes()
+    looker = PageClient(app)
+    looker.sign_in(matrix_api.token("predict", name="looker"))
+    token = csrf_of(looker.get("/"))
+    checked = 0
+    for method, rule, path in app_routes(app):
+        scope = table[route_key(method, rule)]
+        if not is_page(scope) or scope == "page: none":
+            continue
+        response = app.test_client().open(path, method=method)
+        if method == "GET":
+            assert response.status_code == 303, (method, path)
+            assert response.headers["Location"] == "/sign-in"
+        else:
+            assert response.status_code == 403, (method, path)
+        if scope == "page: admin":
+            response = looker.client.open(path, method=method, data={
+                "csrf_token": token, "reason": "r", "confirm": "yes"})
+            assert response.status_code == 403, (method, path)
+        checked += 1
+    assert checked >= 7

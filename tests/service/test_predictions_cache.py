@@ -3,6 +3,7 @@ re-read only when older than the staleness bound, counted in real queries."""
 
 from __future__ import annotations
 
+import sys
 import threading
 from collections.abc import Iterator
 
@@ -19,6 +20,7 @@ from service.versions.cache import (
     VersionCache,
     VersionNotFound,
 )
+from service.versions.footprint import MIB, BudgetLRU, resident_bytes
 
 
 class Clock:
@@ -181,7 +183,8 @@ def test_an_unreadable_snapshot_fails_the_same_way_without_rereading(engine: Eng
 def test_the_loaded_versions_are_bounded_least_recently_used_first(engine: Engine) -> None:
     clock = Clock()
     add_model(engine, "pumps", [b"1", b"2", b"3"], active=1)
-    cache = make_cache(engine, clock, capacity=2)
+    # Room for two loaded versions of this size, not three.
+    cache = make_cache(engine, clock, budget_mib=(2 * sys.getsizeof("1") + 8) / MIB)
     entry = cache.model("pumps")
     cache.version(entry, 1)
     cache.version(entry, 2)
@@ -214,3 +217,115 @@ def test_the_lru_stays_consistent_under_threads() -> None:
     for thread in threads:
         thread.join()
     assert len(lru) == 8
+
+
+def test_the_budget_is_bytes_measured_so_one_large_version_displaces_several_small_ones(
+    engine: Engine,
+) -> None:
+    clock = Clock()
+    small = [b"a", b"b", b"c"]
+    add_model(engine, "pumps", [*small, b"x" * 4000], active=1)
+    large = sys.getsizeof("x" * 4000)
+    # Room for the three small ones, or the large one: not the large one and a small one.
+    cache = make_cache(engine, clock, budget_mib=(large + sys.getsizeof("a") - 1) / MIB)
+    entry = cache.model("pumps")
+    for number in (1, 2, 3):
+        cache.version(entry, number)
+    assert cache.usage()["entries"] == 3
+    cache.version(entry, 4)
+    usage = cache.usage()
+    assert usage["entries"] == 1 and usage["bytes"] == large
+    assert usage["bytes"] <= usage["budget_bytes"]
+
+
+def test_the_newest_entry_is_kept_even_when_it_alone_is_over_the_budget() -> None:
+    lru: BudgetLRU[int, str] = BudgetLRU(10, sys.getsizeof)
+    lru.put(1, "a" * 100)
+    lru.put(2, "b" * 100)
+    assert 2 in lru and 1 not in lru and len(lru) == 1
+
+
+def test_an_object_graph_is_measured_once_per_object() -> None:
+    import numpy as np
+
+    weights = np.zeros(1000)  # 8,000 bytes of data
+    holder = {"weights": weights, "again": weights, "view": weights[:10]}
+    measured = resident_bytes(holder)
+    assert 8000 < measured < 2 * 8000
+
+
+def test_an_unknown_name_is_looked_up_once_within_the_bound_and_found_once_made(
+    engine: Engine,
+) -> None:
+    clock = Clock()
+    cache = make_cache(engine, clock, max_age=0.5)
+    counter = QueryCounter(engine)
+    for _ in range(50):
+        with pytest.raises(ModelNotFound):
+            cache.model("pumps")
+        clock.now += 0.001
+    assert counter.count == 1
+    add_model(engine, "pumps", [b"one"], active=1)  # made by another process
+    clock.now += 0.5
+    assert cache.version(cache.model("pumps")).learner == "one"
+
+
+def test_a_model_made_by_this_process_is_found_at_once_after_forget(engine: Engine) -> None:
+    clock = Clock()
+    cache = make_cache(engine, clock, max_age=1.0)
+    with pytest.raises(ModelNotFound):
+        cache.model("pumps")
+    add_model(engine, "pumps", [b"one"], active=1)
+    cache.forget("pumps")  # what the create view does
+    assert cache.model("pumps").name == "pumps"
+
+
+def test_a_cold_load_holds_up_neither_other_versions_nor_loads_it_twice(
+    engine: Engine,
+) -> None:
+    """One version's load is stopped inside the loader; another version loads
+    meanwhile, and a second request for the stopped one gets the same object
+    from the one load."""
+    clock = Clock()
+    add_model(engine, "pumps", [b"slow", b"fast"], active=1)
+    entered, release = threading.Event(), threading.Event()
+    loads: list[bytes] = []
+
+    def loader(snapshot: bytes) -> str:
+        loads.append(snapshot)
+        if snapshot == b"slow":
+            entered.set()
+            release.wait()
+        return snapshot.decode()
+
+    cache = VersionCache(make_sessionmaker(engine), clock=clock, loader=loader)
+    entry = cache.model("pumps")
+    got: dict[str, object] = {}
+    first = threading.Thread(target=lambda: got.setdefault("first", cache.version(entry, 1)))
+    first.start()
+    assert entered.wait(60)
+    other = threading.Thread(target=lambda: got.setdefault("other", cache.version(entry, 2)))
+    other.start()
+    other.join(60)
+    assert not other.is_alive() and got["other"].learner == "fast"  # type: ignore[attr-defined]
+    second = threading.Thread(target=lambda: got.setdefault("second", cache.version(entry, 1)))
+    second.start()
+    release.set()
+    first.join(60)
+    second.join(60)
+    assert got["first"] is got["second"]
+    assert loads.count(b"slow") == 1
+
+
+def test_stale_pointers_of_many_models_are_read_again_in_one_query(engine: Engine) -> None:
+    clock = Clock()
+    ids = [add_model(engine, f"station-{k}", [b"one", b"two"], active=1) for k in range(20)]
+    cache = make_cache(engine, clock, max_age=1.0)
+    for k in range(20):
+        cache.version(cache.model(f"station-{k}"))
+    promote(engine, ids[7], 2)
+    clock.now += 1.001
+    counter = QueryCounter(engine)
+    served = [cache.model(f"station-{k}").active_version_number for k in range(20)]
+    assert counter.count == 1  # one query for the twenty, not one each
+    assert served == [2 if k == 7 else 1 for k in range(20)]

@@ -261,6 +261,7 @@ def test_a_spec_that_is_not_json_at_all_backs_off_that_model_only(
     caplog.set_level(logging.INFO, logger="keelson.worker")
     db = database(sqlite_url)
     damaged, healthy = two_models(db)
+    send(db, "damaged", rows(100))  # records to learn: only such a model is leased
     send(db, "healthy", rows(300))
     with db.engine.begin() as connection:
         connection.execute(text(f"UPDATE models SET spec = {stored} WHERE id = :id"),

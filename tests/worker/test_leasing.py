@@ -13,7 +13,7 @@ import pytest
 from sqlalchemy import select, update
 
 from service.store.database import make_engine, make_sessionmaker
-from service.store.tables import JobRow, ModelRow, TrainerRow, utcnow
+from service.store.tables import JobRow, ModelRow, RecordRow, TrainerRow, utcnow
 from service.worker.leasing import (
     MAX_JOB_ATTEMPTS,
     claim_job,
@@ -33,9 +33,21 @@ def writes(database_url: str):  # type: ignore[no-untyped-def]
     engine.dispose()
 
 
-def models(writes, count: int) -> list[int]:  # type: ignore[no-untyped-def]
+def models(writes, count: int, records: int = 1) -> list[int]:  # type: ignore[no-untyped-def]
+    """``count`` models, each with ``records`` records after its cursor (only
+    a model with records to learn is leased)."""
     with writes() as session, session.begin():
-        return [create_model(session, f"m{i}").id for i in range(count)]
+        made = [create_model(session, f"m{i}").id for i in range(count)]
+        for model_id in made:
+            for _ in range(records):
+                add_record(session, model_id)
+        return made
+
+
+def add_record(session, model_id: int) -> None:  # type: ignore[no-untyped-def]
+    session.add(RecordRow(model_id=model_id, key=None, features={"x": 0.5}, label=True,
+                          split="train"))
+    session.flush()
 
 
 def claim(writes, worker: str, limit: int = 10, lease: float = 30.0) -> list[int]:  # type: ignore[no-untyped-def]
@@ -174,3 +186,22 @@ def test_the_back_off_doubles_from_the_first_wait_up_to_the_largest() -> None:
     assert [back_off_seconds(n, 1.0, 300.0) for n in range(1, 11)] == [
         1, 2, 4, 8, 16, 32, 64, 128, 256, 300]
     assert back_off_seconds(10_000, 1.0, 300.0) == 300.0  # no overflow however many
+
+
+def test_only_models_with_records_after_their_cursor_are_leased(writes) -> None:  # type: ignore[no-untyped-def]
+    """A caught-up model is let go by its worker (KEELSON_WORKER_RELEASE_SECONDS)
+    and must not be taken back, loaded, for nothing: it is leased again once a
+    record comes after its cursor."""
+    (empty,) = models(writes, 1, records=0)
+    assert claim(writes, "a") == []
+    with writes() as session, session.begin():
+        add_record(session, empty)
+    assert claim(writes, "a") == [empty]
+    with writes() as session, session.begin():
+        release_trainers(session, "a", [empty])
+        top = session.scalar(select(RecordRow.seq).where(RecordRow.model_id == empty))
+        session.execute(update(TrainerRow).values(cursor=top))  # every record applied
+    assert claim(writes, "a") == []
+    with writes() as session, session.begin():
+        add_record(session, empty)
+    assert claim(writes, "b") == [empty]

@@ -7,7 +7,7 @@ import pytest
 from sqlalchemy import select
 
 from service.store.database import make_engine, make_sessionmaker
-from service.store.tables import JobRow, ModelRow, TrainerRow, VersionRow
+from service.store.tables import JobRow, ModelRow, RecordRow, TrainerRow, VersionRow
 from service.versions.decide import Promotion
 from service.versions.writes import (
     Fenced,
@@ -31,6 +31,10 @@ def writes(database_url: str):  # type: ignore[no-untyped-def]
 def leased_model(writes, worker: str = "a") -> int:  # type: ignore[no-untyped-def]
     with writes() as session, session.begin():
         model_id = create_model(session).id
+        # A record to learn: only such a model is leased.
+        session.add(RecordRow(model_id=model_id, key=None, features={"x": 0.5}, label=True,
+                              split="train"))
+        session.flush()
         assert claim_trainers(session, worker, 30, 1) == [model_id]
     return model_id
 

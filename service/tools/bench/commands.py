@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from pathlib import Path
+
 import click
 
 from service.tools.bench.track_record import bench_track_record
@@ -174,4 +176,106 @@ def bench_retrain(as_json: bool, records: int, fields: int, epochs: int,
                            sqlite=not no_sqlite, progress=_progress), as_json)
 
 
+@bench.command("page-load")
+@click.option("--json", "as_json", is_flag=True, help="One JSON object.")
+@click.option("--runs", type=click.IntRange(1, 100), default=5, show_default=True,
+              help="Cold loads of the model page, each in a fresh browser context.")
+@click.option("--records", type=click.IntRange(min=1000), default=5000, show_default=True,
+              help="Demo records loaded before the page is measured.")
+@click.option("--screenshots", type=click.Path(file_okay=False, path_type=Path), default=None,
+              help="Also save the overview, model and what-if pages as PNGs in this folder "
+                   "(the README's: docs/screenshots).")
+@click.option("--chromium", default="/usr/bin/chromium", show_default=True,
+              help="The Chromium to drive (Debian's package).")
+def bench_page_load(as_json: bool, runs: int, records: int, screenshots: Path | None,
+                    chromium: str) -> None:
+    """The model page in headless Chromium: load event time, JS and CSS bytes (needs
+    the test extra's Playwright and Debian's chromium)."""
+    from service.tools.bench.page_load import run_page_load_bench
+
+    emit(run_page_load_bench(runs=runs, records=records, screenshots=screenshots,
+                             chromium=chromium, progress=_progress), as_json)
+
+
+@bench.command("page")
+@click.option("--json", "as_json", is_flag=True, help="One JSON object.")
+@click.option("--records", type=click.IntRange(min=1000), default=1_000_000, show_default=True,
+              help="Records stored.")
+@click.option("--versions", type=click.IntRange(min=1), default=500, show_default=True,
+              help="Versions stored.")
+@click.option("--repeats", type=click.IntRange(min=5), default=50, show_default=True,
+              help="Requests per page.")
+@click.option("--postgres-url", default=_bench_postgres_url,
+              help="Also measure on this PostgreSQL server (a scratch database is made) "
+                   "[env KEELSON_BENCH_POSTGRES_URL].")
+def bench_page(as_json: bool, records: int, versions: int, repeats: int,
+               postgres_url: str | None) -> None:
+    """Server time per page (overview, model, what-if) with a long history stored."""
+    from service.tools.bench.page import run_page_bench
+
+    emit(run_page_bench(records=records, versions=versions, repeats=repeats,
+                        postgres_url=postgres_url, progress=_progress), as_json)
+
+
 bench.add_command(bench_track_record)
+
+
+@bench.command("replay")
+@click.option("--json", "as_json", is_flag=True, help="One JSON object.")
+@click.option("--records", type=click.IntRange(min=1000), default=100_000, show_default=True,
+              help="Records a worker learns, then replayed.")
+@click.option("--postgres-url", default=_bench_postgres_url,
+              help="Also measure on this PostgreSQL server (a scratch database is made) "
+                   "[env KEELSON_BENCH_POSTGRES_URL].")
+def bench_replay(as_json: bool, records: int, postgres_url: str | None) -> None:
+    """`keelson replay`'s rebuild against the engine's online rate on the same records."""
+    from service.tools.bench.replay import run_replay_bench
+
+    emit(run_replay_bench(records=records, postgres_url=postgres_url, progress=_progress),
+         as_json)
+
+
+def _counts(text: str) -> tuple[int, ...]:
+    try:
+        counts = tuple(int(part) for part in text.split(",") if part.strip())
+    except ValueError:
+        raise click.BadParameter("give worker counts as whole numbers, e.g. 1,2,3") from None
+    if not counts or min(counts) < 1:
+        raise click.BadParameter("give at least one worker count, each at least 1")
+    return counts
+
+
+@bench.command("scale")
+@click.option("--json", "as_json", is_flag=True, help="One JSON object.")
+@click.option("--models", type=click.IntRange(min=1), default=500, show_default=True,
+              help="Models of the fleet.")
+@click.option("--min-records", type=click.IntRange(min=1), default=200, show_default=True,
+              help="Fewest records a model holds.")
+@click.option("--max-records", type=click.IntRange(min=1), default=2000, show_default=True,
+              help="Most records a model holds.")
+@click.option("--workers", default="1,2,3", show_default=True,
+              help="Worker process counts measured, comma-separated.")
+@click.option("--sections", default="fleet,predictions", show_default=True,
+              help="Sections measured, comma-separated (fleet, predictions).")
+@click.option("--duration", type=click.IntRange(1, 600), default=10, show_default=True,
+              help="Seconds per measured prediction run (after a warm-up as long).")
+@click.option("--connections", type=click.IntRange(1, 1024), default=16, show_default=True)
+@click.option("--postgres-url", default=_bench_postgres_url,
+              help="Measure on this PostgreSQL server (a scratch database is made); "
+                   "SQLite when none [env KEELSON_BENCH_POSTGRES_URL].")
+def bench_scale(as_json: bool, models: int, min_records: int, max_records: int, workers: str,
+                sections: str, duration: int, connections: int, postgres_url: str | None
+                ) -> None:
+    """Many models: online training by 1..n workers, and predictions across them."""
+    from service.tools.bench.scale import SECTIONS, run_scale_bench
+
+    if min_records > max_records:
+        raise click.BadParameter("--min-records is above --max-records")
+    chosen = tuple(part.strip() for part in sections.split(",") if part.strip())
+    unknown = sorted(set(chosen) - set(SECTIONS))
+    if unknown or not chosen:
+        raise click.BadParameter(f"sections are {', '.join(SECTIONS)}; not {unknown}")
+    emit(run_scale_bench(models=models, min_records=min_records, max_records=max_records,
+                         workers=_counts(workers), postgres_url=postgres_url, sections=chosen,
+                         duration=duration, connections=connections, progress=_progress),
+         as_json)

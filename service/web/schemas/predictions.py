@@ -133,7 +133,7 @@ class PredictionReaders:
         try:
             loaded = self.query_features.load(features)
         except ValidationError as exc:
-            _merge(errors, exc.messages, "")
+            merge_messages(errors, exc.messages, "")
             loaded = {}
         chosen = self._options(options, text=True, errors=errors)
         if errors:
@@ -146,7 +146,7 @@ class PredictionReaders:
             loaded: str = _KEY.deserialize(value)
             return loaded
         except ValidationError as exc:
-            _merge(errors, exc.messages, path)
+            merge_messages(errors, exc.messages, path)
             return None
 
     def read_body(
@@ -217,7 +217,7 @@ class PredictionReaders:
             try:
                 rows.append(self.body_features.load(item["features"]))
             except ValidationError as exc:
-                _merge(errors, exc.messages, f"{path}.features")
+                merge_messages(errors, exc.messages, f"{path}.features")
         return rows
 
     def _options(self, given: dict[str, Any], *, text: bool,
@@ -244,7 +244,7 @@ class PredictionReaders:
             try:
                 loaded[key] = field.deserialize(value)
             except ValidationError as exc:
-                _merge(errors, exc.messages, key)
+                merge_messages(errors, exc.messages, key)
         return loaded
 
     def _output(self, value: Any, text: bool, errors: dict[str, list[str]]) -> Any:
@@ -260,12 +260,12 @@ class PredictionReaders:
             return None
 
 
-def _merge(errors: dict[str, list[str]], messages: Any, prefix: str) -> None:
+def merge_messages(errors: dict[str, list[str]], messages: Any, prefix: str) -> None:
     """marshmallow's (possibly nested) messages as flat field paths under ``prefix``."""
     if isinstance(messages, Mapping):
         for key, value in messages.items():
             path = prefix if key == "_schema" else (f"{prefix}.{key}" if prefix else str(key))
-            _merge(errors, value, path)
+            merge_messages(errors, value, path)
     elif isinstance(messages, list) and all(isinstance(m, str) for m in messages):
         errors.setdefault(prefix or "body", []).extend(messages)
     else:

@@ -102,6 +102,10 @@ class VersionSchema(Schema):
         "description": "The record position of the settings change it was trained under "
                        "(its `at_seq` in the model's history; 0: the settings it was created "
                        "with; null: made before settings could change)."})
+    forgotten_records = fields.Integer(required=True, metadata={
+        "description": "How many records this version was trained on (itself or through "
+                       "the versions it grew from) that have since been forgotten "
+                       "(POST .../records/forget): its weights still carry them. 0: none."})
 
 
 class VersionListSchema(Schema):

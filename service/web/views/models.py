@@ -56,8 +56,10 @@ def _spec_bytes_bounded(view: Callable[..., Any]) -> Callable[..., Any]:
 @blueprint.response(201, ModelSchema)
 def create_model(spec: dict[str, Any]) -> dict[str, Any]:
     """Create a model from its spec (size limits: docs/http-api.md, "Models")."""
-    return models.create_model(get_database(), spec,
-                               ModelLimits.from_config(current_app.config), token=token_name())
+    created = models.create_model(get_database(), spec,
+                                  ModelLimits.from_config(current_app.config), token=token_name())
+    get_version_cache().forget(spec["name"])  # this process serves it at once, not after max_age
+    return created
 
 
 @blueprint.route("", methods=["GET"])

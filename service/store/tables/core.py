@@ -1,82 +1,25 @@
-"""The store: typed SQLAlchemy 2 mapping of what Keelson keeps.
-
-Rows are named for what they are (``ModelRow``, ``RecordRow`` ...): the word
-*model* belongs to the domain, so the declarative base is ``Base``.
-Alembic (migrations/) is the only way this schema reaches a database; change a
-class here, then add a numbered revision.
-"""
+"""The core tables: models, their trainers, records, versions, history, jobs and tokens."""
 
 from __future__ import annotations
 
 import datetime as dt
-import json
 from typing import Any
 
 from sqlalchemy import (
     JSON,
     BigInteger,
-    Date,
     DateTime,
-    Double,
     ForeignKey,
     Index,
     Integer,
     LargeBinary,
-    MetaData,
     String,
     Text,
-    TypeDecorator,
     UniqueConstraint,
 )
-from sqlalchemy.engine import Dialect
-from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column
+from sqlalchemy.orm import Mapped, mapped_column
 
-# Alembic docs/build/naming.rst: every constraint gets a deterministic name, so
-# migrations can drop or alter it by name on every backend.
-NAMING_CONVENTION = {
-    "ix": "ix_%(column_0_label)s",
-    "uq": "uq_%(table_name)s_%(column_0_N_name)s",
-    "ck": "ck_%(table_name)s_%(constraint_name)s",
-    "fk": "fk_%(table_name)s_%(column_0_name)s_%(referred_table_name)s",
-    "pk": "pk_%(table_name)s",
-}
-
-# SQLite only autoincrements an INTEGER PRIMARY KEY; BIGINT elsewhere.
-BigId = BigInteger().with_variant(Integer(), "sqlite")
-
-
-class TextJSON(TypeDecorator[Any]):
-    """A JSON value kept as TEXT (used on SQLite for record labels).
-
-    SQLite gives a column declared ``JSON`` NUMERIC affinity (SQLite
-    documentation, "Datatypes In SQLite", 3.1): a bare number, as a regression
-    label is, is converted to a REAL on the way in by SQLite's own
-    text-to-double conversion, which is not always correctly rounded
-    (``4.041736865667259e-301`` came back as ``4.0417368656672585e-301``). TEXT
-    affinity keeps the text the service wrote, so the label read is the label
-    sent, bit for bit."""
-
-    impl = Text
-    cache_ok = True
-
-    def process_bind_param(self, value: Any, dialect: Dialect) -> str | None:
-        return None if value is None else json.dumps(value, allow_nan=False)
-
-    def process_result_value(self, value: Any, dialect: Dialect) -> Any:
-        return None if value is None else json.loads(value)
-
-
-# JSON on PostgreSQL (which keeps numbers exactly), TEXT on SQLite (see TextJSON).
-LabelJSON = JSON().with_variant(TextJSON(), "sqlite")
-
-
-def utcnow() -> dt.datetime:
-    return dt.datetime.now(dt.UTC)
-
-
-class Base(DeclarativeBase):
-    metadata = MetaData(naming_convention=NAMING_CONVENTION)
-    type_annotation_map = {dict[str, Any]: JSON, list[Any]: JSON}
+from service.store.tables.base import Base, BigId, LabelJSON, utcnow
 
 
 class ModelRow(Base):
@@ -170,7 +113,8 @@ class RecordRow(Base):
 
 
 class VersionRow(Base):
-    """An immutable trained state. Only ``status`` and ``promoted_at`` ever change."""
+    """An immutable trained state. Only ``status``, ``promoted_at`` and
+    ``forgotten_records`` ever change."""
 
     __tablename__ = "versions"
     __table_args__ = (UniqueConstraint("model_id", "number"),)
@@ -190,6 +134,12 @@ class VersionRow(Base):
     # under (0: the settings it was created with; None: made before settings
     # could change). The change itself is in the model's history.
     settings_from_seq: Mapped[int | None] = mapped_column(BigInteger)
+    # How many records this version was trained on, itself or through the
+    # versions it descends from, that have since been forgotten: set by the
+    # forget (service/usecases/forgetting.py), inherited from the parent when
+    # a version is written (service/versions/writes.py). Its weights still
+    # carry them; only a retrain from scratch without them is free of them.
+    forgotten_records: Mapped[int] = mapped_column(BigInteger, default=0, server_default="0")
     created_at: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True), default=utcnow)
     promoted_at: Mapped[dt.datetime | None] = mapped_column(DateTime(timezone=True))
 
@@ -253,120 +203,3 @@ class TokenRow(Base):
     revoked_at: Mapped[dt.datetime | None] = mapped_column(DateTime(timezone=True))
 
 
-# ---------------------------------------------------------------------------
-# Scored cases: keyed predictions waiting for their outcomes.
-
-
-class ScoredCaseRow(Base):
-    """A keyed prediction kept until its outcome arrives: what was scored, by
-    which version, what it answered; then what happened.
-
-    ``features`` are the validated features as records store them, so an
-    outcome turns the case into a record without the client sending them
-    again. ``rescored`` counts the same key sent again with the same features
-    (the first score is kept: it is the one that was acted on).
-    """
-
-    __tablename__ = "scored_cases"
-    __table_args__ = (
-        UniqueConstraint("model_id", "key"),
-        # Retention: the oldest unresolved cases of a model, found by index.
-        Index("ix_scored_cases_unresolved", "model_id", "outcome_at", "scored_at"),
-    )
-
-    id: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=True)
-    model_id: Mapped[int] = mapped_column(ForeignKey("models.id", ondelete="CASCADE"))
-    key: Mapped[str] = mapped_column(String(200))
-    features: Mapped[dict[str, Any]]
-    version_id: Mapped[int | None] = mapped_column(ForeignKey("versions.id", ondelete="SET NULL"))
-    output: Mapped[Any] = mapped_column(LabelJSON)
-    scored_at: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True), default=utcnow)
-    rescored: Mapped[int] = mapped_column(Integer, default=0, server_default="0")
-    outcome: Mapped[Any | None] = mapped_column(LabelJSON, nullable=True)
-    outcome_at: Mapped[dt.datetime | None] = mapped_column(DateTime(timezone=True))
-
-
-# ---------------------------------------------------------------------------
-# Live metrics (the track record): sums of served scores against their
-# outcomes per model, version and UTC day of the outcome, and the change alarm
-# per model and version. Kept by service.usecases.track_record as outcomes
-# arrive, under the model row lock the outcome batch holds.
-
-# Float64 sums: DOUBLE PRECISION on PostgreSQL, REAL (8 bytes) on SQLite.
-Sum: Double[float] = Double()
-
-
-class TrackRecordDayRow(Base):
-    """engine.track_record.Tally of one version's outcomes on one UTC day."""
-
-    __tablename__ = "track_record_days"
-    __table_args__ = (
-        UniqueConstraint("model_id", "version_id", "day"),
-        # The summary reads a model's rows in a window of days.
-        Index("ix_track_record_days_model_id_day", "model_id", "day"),
-    )
-
-    id: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=True)
-    model_id: Mapped[int] = mapped_column(ForeignKey("models.id", ondelete="CASCADE"))
-    version_id: Mapped[int] = mapped_column(ForeignKey("versions.id", ondelete="CASCADE"))
-    day: Mapped[dt.date] = mapped_column(Date)
-    n: Mapped[int] = mapped_column(BigInteger)
-    correct: Mapped[int] = mapped_column(BigInteger)
-    log_loss_sum: Mapped[float] = mapped_column(Sum)
-    brier_sum: Mapped[float] = mapped_column(Sum)
-    abs_sum: Mapped[float] = mapped_column(Sum)
-    sq_sum: Mapped[float] = mapped_column(Sum)
-    y_mean: Mapped[float] = mapped_column(Sum)
-    y_m2: Mapped[float] = mapped_column(Sum)
-    # [count, sum predicted, sum observed], each a list of 10 bins.
-    calibration: Mapped[list[Any]]
-    # Binary only: the (2, AUC_BINS) int64 histogram, little-endian, zlib-compressed.
-    auc_histogram: Mapped[bytes | None] = mapped_column(LargeBinary)
-
-
-class TrackRecordAlarmRow(Base):
-    """engine.track_record.AlarmState of one version; raised_at is the time of
-    the outcome that raised it (latched)."""
-
-    __tablename__ = "track_record_alarms"
-
-    model_id: Mapped[int] = mapped_column(
-        ForeignKey("models.id", ondelete="CASCADE"), primary_key=True)
-    version_id: Mapped[int] = mapped_column(
-        ForeignKey("versions.id", ondelete="CASCADE"), primary_key=True)
-    n: Mapped[int] = mapped_column(BigInteger)
-    mean: Mapped[float] = mapped_column(Sum)
-    cumulative: Mapped[float] = mapped_column(Sum)
-    minimum: Mapped[float] = mapped_column(Sum)
-    error_sum: Mapped[float] = mapped_column(Sum)
-    raised_at: Mapped[dt.datetime | None] = mapped_column(DateTime(timezone=True))
-    updated_at: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True), default=utcnow)
-
-
-# ---------------------------------------------------------------------------
-# Drift: per-process counts of predictions' fields over reference bins.
-
-
-class DriftTallyRow(Base):
-    """How many predictions one API process saw in each of a field's reference
-    bins, for one model's active version, in one hour (``bucket_start``).
-
-    ``writer`` names the process (random per process start): only that
-    process writes its rows, and each flush writes its running totals for the
-    hour whole, so processes never contend for a row and a repeated flush
-    changes nothing. ``counts``: every field's counts over the version's
-    reference bins (engine/drift_bins.py), fields in the spec's order, as
-    little-endian int64 (the answer adds a week of rows from 8 processes in
-    one NumPy call; as JSON, parsing them took most of its 50 ms)."""
-
-    __tablename__ = "drift_tallies"
-    __table_args__ = (UniqueConstraint("model_id", "version_id", "bucket_start", "writer"),)
-
-    id: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=True)
-    model_id: Mapped[int] = mapped_column(ForeignKey("models.id", ondelete="CASCADE"))
-    version_id: Mapped[int] = mapped_column(ForeignKey("versions.id", ondelete="CASCADE"))
-    bucket_start: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True))
-    writer: Mapped[str] = mapped_column(String(64))
-    predictions: Mapped[int] = mapped_column(BigInteger)
-    counts: Mapped[bytes] = mapped_column(LargeBinary)
-    updated_at: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True), default=utcnow)
