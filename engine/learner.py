@@ -21,6 +21,7 @@ from engine.metrics import Prequential, batch_metrics
 from engine.network import Network
 from engine.online import OnlineTrainer, check_targets
 from engine.optimizers import Optimizer, make_optimizer
+from engine.rows import BLOCK_ROWS, ArrayRows, Rows
 from engine.spec import apply_defaults, spec_hash, upgrade_legacy_spec
 
 Array = NDArray[np.float64]
@@ -165,31 +166,45 @@ class Learner:
     def fit(self, X: Array, Y: NDArray[Any], progress: batch.Progress | None = None,
             cancel: Callable[[], bool] | None = None,
             warm_start: bool = False) -> batch.FitReport:
-        """Batch retrain on (X, Y): mini-batch epochs with early stopping.
+        """Batch retrain on (X, Y) in memory: :meth:`fit_rows` of ``ArrayRows``."""
+        X, y = self._targets(X, Y)
+        return self.fit_rows(ArrayRows(X, y), progress=progress, cancel=cancel,
+                             warm_start=warm_start)
+
+    def fit_rows(self, rows: Rows, progress: batch.Progress | None = None,
+                 cancel: Callable[[], bool] | None = None,
+                 warm_start: bool = False) -> batch.FitReport:
+        """Batch retrain on encoded rows (engine/rows.py: in memory, or a source
+        that reads them a block at a time): mini-batch epochs with early stopping.
 
         From scratch the network is re-initialised from the seed (build the learner
         with `create(spec, warmup=training rows)` first to refresh the encoder);
         with warm_start it continues from the current weights. The learner changes
         only if the fit succeeds; the online optimizer state starts afresh after it.
         """
-        X, y = self._targets(X, Y)
-        if X.shape[0] < 1:
+        n = len(rows)
+        if n < 1:
             raise InvalidInputError("a fit needs at least one row", field="records")
+        # One pass first: every row checked before any step, and the input sum
+        # (a sequential sum, the same however the rows are cut) for the baseline.
+        input_sum = self.input_sum.copy() if warm_start else np.zeros(self.encoder.n_inputs)
+        for start in range(0, n, BLOCK_ROWS):
+            X, Y = rows.take(np.arange(start, min(start + BLOCK_ROWS, n)))
+            X, _ = self._targets(X, Y)
+            input_sum = np.add.reduce(np.concatenate([input_sum[None, :], X]), axis=0)
         training = self.spec["training"]
         network = self.network.copy() if warm_start else \
             self._new_network(self.spec, self.encoder)
         optimizer = make_optimizer(network.params.size, training)
         network.bind_(optimizer.params)
-        report = batch.fit(network, optimizer, self.loss, X, y, training,
+        report = batch.fit(network, optimizer, self.loss, rows, training,
                            progress=progress, cancel=cancel)
         self._install(network, make_optimizer(network.params.size, training))
         if not warm_start:
-            self.input_sum = np.zeros(self.encoder.n_inputs)
             self.input_count = 0
-            self._mean = None
-        count_before = self.records_seen
-        self._count(X)
-        self.records_seen = count_before
+        self.input_sum = input_sum
+        self.input_count += n
+        self._mean = None
         return report
 
     # -------------------------------------------------------------- inference

@@ -157,6 +157,30 @@ def read_latest_holdout(session: Session, model_id: int, upto: int, limit: int,
     return RecordChunk.from_rows(rows[::-1])
 
 
+def latest_chunks(session: Session, model_id: int, upto: int, limit: int, chunk_records: int,
+                  split: str = "holdout") -> Iterator[RecordChunk]:
+    """The records :func:`read_latest_holdout` returns, in sequence order, a
+    chunk per query on ``session``: the rows never exist as Python objects all
+    at once, however large ``limit`` is."""
+    if limit <= 0:
+        return
+    # The record just before the latest ``limit``: reading after it reads them.
+    after = session.execute(
+        select(RecordRow.seq)
+        .where(RecordRow.model_id == model_id, RecordRow.seq <= upto, RecordRow.split == split)
+        .order_by(RecordRow.seq.desc()).offset(limit).limit(1)
+    ).scalar()
+    after = int(after or 0)
+    while True:
+        chunk = fetch_chunk(session, select(*record_columns(session)).where(
+            RecordRow.model_id == model_id, RecordRow.seq > after, RecordRow.seq <= upto,
+            RecordRow.split == split).order_by(RecordRow.seq).limit(chunk_records))
+        if not len(chunk):
+            return
+        yield chunk
+        after = int(chunk.seqs[-1])
+
+
 def count_records(
     session: Session, model_id: int, after: int = 0, upto: int | None = None,
     split: str | None = None,

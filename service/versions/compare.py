@@ -24,9 +24,9 @@ from sqlalchemy import select
 from sqlalchemy.orm import Session, sessionmaker
 
 from engine import EngineError, Learner
-from service.store.record_log import RecordChunk, read_latest_holdout
+from service.store.record_log import latest_chunks
 from service.store.tables import ModelRow, VersionRow
-from service.versions.holdout import HoldoutWindow, evaluate
+from service.versions.holdout import HOLDOUT_CHUNK, HoldoutWindow, evaluate, fill_window
 from service.versions.policy import primary_metric
 
 log = logging.getLogger("keelson.worker")
@@ -97,7 +97,7 @@ def read_active_id(session: Session, model_id: int) -> int | None:
 
 def _score_from_scratch(session: Session, active: ActiveScore, active_id: int, model_id: int,
                         window: HoldoutWindow, encoder: str | None, cursor: int,
-                        holdout_window: int, rows: RecordChunk | None) -> None:
+                        holdout_window: int) -> None:
     number, snapshot = session.execute(
         select(VersionRow.number, VersionRow.snapshot).where(VersionRow.id == active_id)
     ).one()
@@ -117,11 +117,9 @@ def _score_from_scratch(session: Session, active: ActiveScore, active_id: int, m
         return
     # Another encoding (a retrain from scratch): encode the same rows its way.
     # Not tracked: the window's rows are in the lineage's encoding.
-    if rows is None:
-        rows = read_latest_holdout(session, model_id, cursor, holdout_window)
     own = HoldoutWindow(holdout_window)
-    if len(rows):
-        own.extend(learner.encode(rows.features), learner.encode_labels(rows.labels))
+    fill_window(own, learner, latest_chunks(session, model_id, cursor, holdout_window,
+                                            HOLDOUT_CHUNK))
     active.start(active_id, learner, evaluate(learner, own))
     active.learner = None  # a value for this decision only
     active.version_id = None
@@ -141,7 +139,6 @@ def measure_active(
     holdout_window: int,
     active: ActiveScore,
     active_id: Any = UNREAD,
-    holdout_rows: RecordChunk | None = None,
 ) -> tuple[int | None, dict[str, Any] | None]:
     """(active version id, its metrics on this window) for the promotion decision;
     (None, None) when no version is active or the model promotes by hand (then
@@ -152,9 +149,7 @@ def measure_active(
     online loop reads it in the transaction that read the records, instead of
     one more transaction per version). A stale value is safe: the version
     write promotes only if the active version is still the one decided
-    against (writes.py), so the new version then stays a candidate.
-    ``holdout_rows``: the window's rows as read (a retrain has them at hand),
-    so an active version of another encoding need not read them again."""
+    against (writes.py), so the new version then stays a candidate."""
     if spec.get("promotion", "auto") != "auto":
         return None, None
     if active_id is UNREAD or (active_id is not None and active.version_id != active_id):
@@ -163,7 +158,7 @@ def measure_active(
                 active_id = read_active_id(session, model_id)
             if active_id is not None and active.version_id != active_id:
                 _score_from_scratch(session, active, active_id, model_id, window, encoder,
-                                    cursor, holdout_window, holdout_rows)
+                                    cursor, holdout_window)
     if active_id is None:
         active.forget()
         return None, None

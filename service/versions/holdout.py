@@ -11,7 +11,7 @@ Its encoding belongs to one encoder (one lineage's frozen statistics).
 from __future__ import annotations
 
 import math
-from collections.abc import Mapping
+from collections.abc import Iterable, Mapping
 from typing import Any
 
 import numpy as np
@@ -69,6 +69,17 @@ class HoldoutWindow:
             return self._X[: self.size], self._Y[: self.size]
         order = np.r_[self._start : self.capacity, 0 : self._start]
         return self._X[order], self._Y[order]
+
+
+# Records per query when a window is read from the store (a retrain's, or one
+# in another encoding): one chunk of Python records at a time, whatever the capacity.
+HOLDOUT_CHUNK = 5_000
+
+
+def fill_window(window: HoldoutWindow, learner: Any, chunks: Iterable[Any]) -> None:
+    """Encode record chunks (in sequence order) into the window one at a time."""
+    for chunk in chunks:
+        window.extend(learner.encode(chunk.features), learner.encode_labels(chunk.labels))
 
 
 def evaluate(learner: Any, window: HoldoutWindow) -> dict[str, float | None]:

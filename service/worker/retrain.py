@@ -2,8 +2,12 @@
 
 A job is claimed with a lease and run on its own thread (job_runner.py). The
 train records at or before the job's cursor (the last record stored when it
-started) are streamed from the database a chunk per query into one
-preallocated matrix: the rows never exist as Python objects all at once.
+started) are streamed from the database a chunk per query, encoded, and
+appended to a temporary file of encoded rows (encoded_file.py); the engine's
+batch trainer then reads its epochs from that file a block at a time
+(engine/rows.py), so the worker's memory does not grow with the record count
+(docs/architecture.md, "Retraining over millions of records"). The holdout
+window it is scored on is read a chunk at a time too.
 
 From scratch, the encoder's statistics come from an evenly spread sample of
 the train records (at most ``STATS_SAMPLE`` rows: enough for a mean and a
@@ -32,7 +36,7 @@ from service.store.record_log import (
     fetch_chunk,
     iter_chunks,
     last_seq,
-    read_latest_holdout,
+    latest_chunks,
     record_columns,
 )
 from service.store.tables import JobRow, RecordRow, VersionRow
@@ -45,8 +49,15 @@ from service.versions.compare import (
     read_active_id,
 )
 from service.versions.decide import PromotionContext, decide
-from service.versions.holdout import HoldoutWindow, evaluate, json_metrics
+from service.versions.holdout import (
+    HOLDOUT_CHUNK,
+    HoldoutWindow,
+    evaluate,
+    fill_window,
+    json_metrics,
+)
 from service.versions.writes import NewVersion, write_retrain_version
+from service.worker.encoded_file import EncodedRowsFile
 from service.worker.faults import ModelFault, load_spec
 from service.worker.jobs import report_progress
 from service.worker.settings import WorkerSettings
@@ -89,20 +100,16 @@ def run_retrain(
         else:
             start = fresh_retrain(session, job_id, model_id, spec, cursor, n_train, warm_start)
 
-    started = time.perf_counter()
     reporter = _ProgressReporter(writes, job_id, worker_id, settings.progress_seconds,
                                  int(spec.get("training", {}).get("max_epochs", 0)))
     report = fit_retrain(reads, start, settings.chunk_records, reporter, cancel)
     reporter.flush()
     learner, encoder, parent_id = start.learner, start.encoder, start.parent_id
-    log.info("job %s: %s train records loaded and fitted in %.2f s (%s epochs)",
-             job_id, n_train, time.perf_counter() - started, report.epochs)
 
     window = HoldoutWindow(settings.holdout_window)
     with reads() as session:
-        rows = read_latest_holdout(session, model_id, cursor, settings.holdout_window)
-    if len(rows):
-        window.extend(learner.encode(rows.features), learner.encode_labels(rows.labels))
+        fill_window(window, learner, latest_chunks(session, model_id, cursor,
+                                                   settings.holdout_window, HOLDOUT_CHUNK))
     metrics = {
         "prequential": json_metrics(learner.prequential_metrics()),
         "holdout": evaluate(learner, window),
@@ -111,7 +118,7 @@ def run_retrain(
     }
     active_id, active_metrics = measure_active(
         writes, model_id, spec, window, encoder, cursor, settings.holdout_window,
-        new_active_score(spec), holdout_rows=rows)
+        new_active_score(spec))
     promotion = decide(PromotionContext(spec, metrics, active_id, active_metrics))
     snapshot = retrain_snapshot(start)
     new = NewVersion(snapshot=snapshot, origin="retrain", cursor=cursor,
@@ -165,11 +172,15 @@ def fit_retrain(reads: sessionmaker[Session], start: RetrainStart, chunk_records
                 progress: Any = None, cancel: Any = lambda: False) -> Any:
     """The batch fit of a retrain over every train record up to its cursor
     (the worker's job and ``keelson replay`` both run this); the fit report."""
-    X, Y = _load_train(reads, start.learner, start.model_id, start.cursor, start.n_train,
-                       chunk_records, cancel)
-    report = start.learner.fit(X, Y, progress=progress, cancel=cancel,
-                               warm_start=start.warm_start)
-    del X, Y
+    started = time.perf_counter()
+    with _load_train(reads, start.learner, start.model_id, start.cursor, start.n_train,
+                     chunk_records, cancel) as rows:
+        loaded = time.perf_counter()
+        report = start.learner.fit_rows(rows, progress=progress, cancel=cancel,
+                                        warm_start=start.warm_start)
+    log.info("job %s: %s train records loaded in %.2f s, fitted in %.2f s (%s epochs)",
+             start.job_id, start.n_train, loaded - started, time.perf_counter() - loaded,
+             report.epochs)
     return report
 
 
@@ -184,28 +195,30 @@ def retrain_snapshot(start: RetrainStart) -> bytes:
 
 
 def _load_train(reads: sessionmaker[Session], learner: Learner, model_id: int, cursor: int,
-                n_train: int, chunk_records: int, cancel: Any) -> tuple[np.ndarray, np.ndarray]:
-    """Every train record up to the cursor, encoded into preallocated arrays."""
-    X: np.ndarray | None = None
-    Y: np.ndarray | None = None
-    filled = 0
-    for chunk in iter_chunks(reads, model_id, cursor, chunk_records, split="train"):
-        if cancel():
-            raise TrainingCancelled("stopped while loading records")
-        X_part = learner.encode(chunk.features)
-        Y_part = learner.encode_labels(chunk.labels)
-        if X is None or Y is None:
-            X = np.empty((n_train, X_part.shape[1]), dtype=X_part.dtype)
-            Y = np.empty((n_train, *Y_part.shape[1:]), dtype=Y_part.dtype)
-        X[filled : filled + len(chunk)] = X_part
-        Y[filled : filled + len(chunk)] = Y_part
-        filled += len(chunk)
-    if X is None or Y is None or filled != n_train:
-        # Records at or before the cursor are all committed (docs/architecture.md,
-        # invariant 1); they go only with the model, or by a forget, which
-        # queues this job again (this attempt's writes are fenced).
-        raise RuntimeError(f"expected {n_train} train records, read {filled}")
-    return X, Y
+                n_train: int, chunk_records: int, cancel: Any) -> EncodedRowsFile:
+    """Every train record up to the cursor, encoded a chunk at a time into a
+    temporary file of rows (the caller closes it)."""
+    rows: EncodedRowsFile | None = None
+    try:
+        for chunk in iter_chunks(reads, model_id, cursor, chunk_records, split="train"):
+            if cancel():
+                raise TrainingCancelled("stopped while loading records")
+            X_part = learner.encode(chunk.features)
+            Y_part = learner.encode_labels(chunk.labels)
+            if rows is None:
+                rows = EncodedRowsFile(n_train, X_part.shape[1], Y_part.dtype)
+            rows.append(X_part, Y_part)
+        if rows is None or len(rows) != n_train:
+            # Records at or before the cursor are all committed (docs/architecture.md,
+            # invariant 1); they go only with the model, or by a forget, which
+            # queues this job again (this attempt's writes are fenced).
+            raise RuntimeError(f"expected {n_train} train records, read "
+                               f"{0 if rows is None else len(rows)}")
+    except BaseException:
+        if rows is not None:
+            rows.close()
+        raise
+    return rows
 
 
 def _stats_sample(session: Session, model_id: int, cursor: int, n_train: int) -> RecordChunk:

@@ -9,6 +9,7 @@ from engine import TrainingCancelled
 from engine.batch import fit, mean_loss, split_validation
 from engine.network import Network
 from engine.optimizers import make_optimizer
+from engine.rows import ArrayRows
 from engine.spec import TRAINING_DEFAULTS
 
 
@@ -23,7 +24,7 @@ def trained(settings, X, y, **kwargs):
     net = Network.create((5, 8, 1), "tanh", "logistic", np.random.default_rng(0))
     opt = make_optimizer(net.params.size, settings)
     net.bind_(opt.params)
-    report = fit(net, opt, "cross_entropy", X, y, settings, **kwargs)
+    report = fit(net, opt, "cross_entropy", ArrayRows(X, y), settings, **kwargs)
     return net, report
 
 

@@ -152,6 +152,30 @@ def bench_delete(as_json: bool, records: int, seconds: float, postgres_url: str 
                           progress=_progress), as_json)
 
 
+@bench.command("retrain")
+@click.option("--json", "as_json", is_flag=True, help="One JSON object.")
+@click.option("--records", type=click.IntRange(min=1000), default=1_000_000, show_default=True,
+              help="Records stored before the retrain job.")
+@click.option("--fields", type=click.IntRange(min=1, max=100), default=20, show_default=True,
+              help="Numeric fields per record.")
+@click.option("--epochs", type=click.IntRange(min=1), default=None,
+              help="Epochs the job runs, no early stop (default: the spec's early stopping).")
+@click.option("--chunk-records", type=click.IntRange(min=1), default=None,
+              help="Records per query while the job reads (default: the worker's setting).")
+@click.option("--postgres-url", default=_bench_postgres_url,
+              help="Also measure on this PostgreSQL server (a scratch database is made) "
+                   "[env KEELSON_BENCH_POSTGRES_URL].")
+@click.option("--no-sqlite", is_flag=True, help="PostgreSQL only.")
+def bench_retrain(as_json: bool, records: int, fields: int, epochs: int,
+                  chunk_records: int | None, postgres_url: str | None, no_sqlite: bool) -> None:
+    """A retrain job over many records: rate against the engine in memory, peak memory."""
+    from service.tools.bench.retrain import run_retrain_bench
+
+    emit(run_retrain_bench(records=records, fields=fields, epochs=epochs,
+                           chunk_records=chunk_records, postgres_url=postgres_url,
+                           sqlite=not no_sqlite, progress=_progress), as_json)
+
+
 @bench.command("page-load")
 @click.option("--json", "as_json", is_flag=True, help="One JSON object.")
 @click.option("--runs", type=click.IntRange(1, 100), default=5, show_default=True,
