@@ -285,7 +285,7 @@ SETTINGS: tuple[Setting, ...] = (
     Setting("KEELSON_SNAPSHOT_RETENTION_DAYS", WORKER, 30.0, positive_number,
             "days after which the snapshot of an online version that was never active is "
             "pruned by the worker (the version's row, metrics and lineage stay; `keelson "
-            "replay` can rebuild it)"),
+            "replay --store` rebuilds it)"),
     Setting("KEELSON_SNAPSHOT_KEEP_LAST", WORKER, 20, whole_number,
             "newest versions of each model whose snapshots are never pruned, whatever their age"),
     Setting("KEELSON_DRIFT_TALLY_RETENTION_DAYS", WORKER, 400.0, positive_number,

@@ -49,7 +49,10 @@ class _Bars:
 @click.option("--version", "number", type=click.IntRange(min=1), default=None, metavar="N",
               help="The version to rebuild [default: the active version].")
 @click.option("--quiet", is_flag=True, help="No progress on stderr.")
-def replay(model: str, number: int | None, quiet: bool) -> None:
+@click.option("--store", is_flag=True,
+              help="If retention pruned the version's snapshot, rebuild it and store it "
+                   "back (it then serves again) instead of exiting 3.")
+def replay(model: str, number: int | None, quiet: bool, store: bool) -> None:
     """Rebuild a version of MODEL from the stored records and the model's
     history, with the worker's own code, and compare its weights and
     optimizer state (and every other part of the snapshot) bit for bit with
@@ -68,7 +71,8 @@ def replay(model: str, number: int | None, quiet: bool) -> None:
       2  records the version learned were forgotten (deleted): how many is
          printed, and nothing is compared
       3  cannot replay (no such model or version, a version restored from a
-         file, no stored snapshot to compare with, the database unreachable)
+         file, a pruned snapshot without --store, the database unreachable)
+    With --store, a pruned snapshot is rebuilt and stored back (exit 0).
     A mistyped command line exits 2, as for every command.
     """
     from threadpoolctl import threadpool_limits
@@ -89,8 +93,9 @@ def replay(model: str, number: int | None, quiet: bool) -> None:
         # One BLAS thread, as the worker runs (service/process.py): the same
         # sums in the same order, hence the same bits.
         with threadpool_limits(limits=1, user_api="blas"):
+            writes = make_sessionmaker(engine, write=True) if store else None
             audit = audit_version(make_sessionmaker(engine), model, number,
-                                  settings.chunk_records, bars)
+                                  settings.chunk_records, bars, store_pruned=writes)
     except (KeelsonError, CannotReplay) as error:
         bars.close()
         click.echo(f"keelson replay: {getattr(error, 'detail', None) or error}", err=True)

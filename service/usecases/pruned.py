@@ -26,7 +26,7 @@ def snapshot_pruned(name: str, number: int, pruned_at: dt.datetime | None) -> Sn
     return SnapshotPrunedError(
         f"The snapshot of version {number} of model {name!r} was pruned{when} by snapshot "
         "retention (it was never active and is older than KEELSON_SNAPSHOT_RETENTION_DAYS). "
-        "Its metrics and lineage are kept; `keelson replay` can rebuild its snapshot from the "
-        "record log.",
+        "Its metrics and lineage are kept; `keelson replay --store` rebuilds its snapshot "
+        "from the record log.",
         members={"version": number,
                  "pruned_at": pruned_at.isoformat() if pruned_at is not None else None})

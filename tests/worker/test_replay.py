@@ -193,6 +193,34 @@ def test_a_tampered_snapshot_is_found_and_its_parameter_named(database_url: str)
     db.engine.dispose()
 
 
+def test_a_pruned_snapshot_is_rebuilt_and_stored_back_with_store(database_url: str) -> None:
+    """Retention (service/worker/snapshot_retention.py) empties old snapshots of
+    versions never active; --store puts the rebuilt one back, bit for bit."""
+    import datetime as dt
+
+    from engine.snapshot_diff import first_difference
+    from service.worker.snapshot_retention import prune_snapshots
+
+    db, model_id = trained_online(database_url)
+    before = {v.number: bytes(v.snapshot) for v in versions(db, model_id)}
+    later = dt.datetime.now(dt.UTC) + dt.timedelta(days=400)
+    pruned, _ = prune_snapshots(db.write, db.read, retention_days=30, keep_last=1, now=later)
+    assert pruned > 0
+    gone = [v for v in versions(db, model_id) if v.snapshot is None]
+    assert gone and all(v.pruned_at is not None for v in gone)
+    number = str(gone[0].number)
+    refused = replay(database_url, "--version", number)
+    assert refused.exit_code == 3 and "--store" in refused.output, refused.output
+    stored = replay(database_url, "--version", number, "--store")
+    assert stored.exit_code == 0, stored.output
+    assert "rebuilt from the record log and stored" in stored.output
+    back = next(v for v in versions(db, model_id) if v.number == gone[0].number)
+    assert back.pruned_at is None and back.snapshot is not None
+    assert first_difference(before[back.number], bytes(back.snapshot)) is None
+    assert replay(database_url, "--version", number).exit_code == 0  # now comparable
+    db.engine.dispose()
+
+
 def test_forgotten_records_are_reported_instead_of_a_mismatch(database_url: str) -> None:
     db, model_id = trained_online(database_url)
     last = versions(db, model_id)[-1]
