@@ -270,17 +270,21 @@ def _counts(text: str) -> tuple[int, ...]:
               help="Most records a model holds.")
 @click.option("--workers", default="1,2,3", show_default=True,
               help="Worker process counts measured, comma-separated.")
-@click.option("--sections", default="fleet,predictions", show_default=True,
-              help="Sections measured, comma-separated (fleet, predictions).")
+@click.option("--sections", default="fleet,predictions,retrain,storage", show_default=True,
+              help="Sections measured, comma-separated (fleet, predictions, retrain, storage).")
 @click.option("--duration", type=click.IntRange(1, 600), default=10, show_default=True,
               help="Seconds per measured prediction run (after a warm-up as long).")
 @click.option("--connections", type=click.IntRange(1, 1024), default=16, show_default=True)
+@click.option("--retrain-records", type=click.IntRange(min=1000), default=5_000_000,
+              show_default=True, help="Records of the retrain section (20 numeric fields).")
+@click.option("--storage-records", type=click.IntRange(min=1000), default=50_000,
+              show_default=True, help="Records of the storage section (scaled to 1,000,000).")
 @click.option("--postgres-url", default=_bench_postgres_url,
               help="Measure on this PostgreSQL server (a scratch database is made); "
                    "SQLite when none [env KEELSON_BENCH_POSTGRES_URL].")
 def bench_scale(as_json: bool, models: int, min_records: int, max_records: int, workers: str,
-                sections: str, duration: int, connections: int, postgres_url: str | None
-                ) -> None:
+                sections: str, duration: int, connections: int, retrain_records: int,
+                storage_records: int, postgres_url: str | None) -> None:
     """Many models: online training by 1..n workers, and predictions across them."""
     from service.tools.bench.scale import SECTIONS, run_scale_bench
 
@@ -292,5 +296,7 @@ def bench_scale(as_json: bool, models: int, min_records: int, max_records: int, 
         raise click.BadParameter(f"sections are {', '.join(SECTIONS)}; not {unknown}")
     emit(run_scale_bench(models=models, min_records=min_records, max_records=max_records,
                          workers=_counts(workers), postgres_url=postgres_url, sections=chosen,
-                         duration=duration, connections=connections, progress=_progress),
+                         duration=duration, connections=connections,
+                         retrain_records=retrain_records, storage_records=storage_records,
+                         progress=_progress),
          as_json)

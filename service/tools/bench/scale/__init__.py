@@ -1,9 +1,13 @@
 """``keelson bench scale``: how cost grows with models, records and versions.
 
-One module per section (fleet.py, predictions.py, ...); run_scale_bench
+One module per section (fleet.py, predictions.py); run_scale_bench
 stores the invented fleet once (fleet_data.py) on a scratch SQLite file, or
 on a scratch PostgreSQL database when a server URL is given, and each
-section measures on copies of it. Sizes are options, so CI runs it small and
+section measures on copies of it. The sections "retrain" (a retrain over
+millions of records, bench/retrain.py) and "storage" (bytes per million
+records, bench/storage.py) make their own scratch databases on the same
+backend: they are the benches ``keelson bench retrain`` and ``keelson bench
+storage`` run as parts of this one. Sizes are options, so CI runs it small and
 the README's figures run it at full size.
 """
 
@@ -22,17 +26,15 @@ import numpy as np
 from service.tools.bench.scale.fleet_data import Fleet, copy_of, store_fleet
 
 Progress = Callable[[str], None]
-SECTIONS = ("fleet", "predictions")
+SECTIONS = ("fleet", "predictions", "retrain", "storage")
 
 
 def run_scale_bench(models: int = 500, min_records: int = 200, max_records: int = 2000,
                     workers: tuple[int, ...] = (1, 2, 3), postgres_url: str | None = None,
                     sections: tuple[str, ...] = SECTIONS, duration: int = 10,
-                    connections: int = 16, progress: Progress = lambda _: None
+                    connections: int = 16, retrain_records: int = 5_000_000,
+                    storage_records: int = 50_000, progress: Progress = lambda _: None
                     ) -> dict[str, Any]:
-    from service.tools.bench.scale.fleet import measure_fleet
-    from service.tools.bench.scale.predictions import measure_predictions
-
     rng = np.random.default_rng(2026)
     counts = [int(n) for n in rng.integers(min_records, max_records + 1, size=models)]
     result: dict[str, Any] = {
@@ -42,8 +44,33 @@ def run_scale_bench(models: int = 500, min_records: int = 200, max_records: int 
                     "load_average_1m_at_start": round(os.getloadavg()[0], 2)},
         "settings": {"models": models, "min_records": min_records, "max_records": max_records,
                      "records": sum(counts), "workers": list(workers),
-                     "sections": list(sections)},
+                     "sections": list(sections), "retrain_records": retrain_records,
+                     "storage_records": storage_records},
     }
+    if "fleet" in sections or "predictions" in sections:
+        _many_models(result, counts, workers, postgres_url, sections, duration, connections,
+                     progress)
+    if "retrain" in sections:
+        from service.tools.bench.retrain import run_retrain_bench
+
+        result["retrain"] = run_retrain_bench(records=retrain_records, postgres_url=postgres_url,
+                                              sqlite=postgres_url is None, progress=progress)
+    if "storage" in sections:
+        from service.tools.bench.storage import run_storage_bench
+
+        result["storage"] = run_storage_bench(records=storage_records, postgres_url=postgres_url,
+                                              progress=progress)
+    result["machine"]["load_average_1m_at_end"] = round(os.getloadavg()[0], 2)
+    return result
+
+
+def _many_models(result: dict[str, Any], counts: list[int], workers: tuple[int, ...],
+                 postgres_url: str | None, sections: tuple[str, ...], duration: int,
+                 connections: int, progress: Progress) -> None:
+    from service.tools.bench.scale.fleet import measure_fleet
+    from service.tools.bench.scale.predictions import measure_predictions
+
+    models = len(counts)
     with _scratch(postgres_url) as (backend, base):
         result["database"] = backend
         progress(f"[{backend}] storing {models} models, {sum(counts)} records")
@@ -55,13 +82,10 @@ def run_scale_bench(models: int = 500, min_records: int = 200, max_records: int 
             def kept(url: str) -> None:
                 if not trained:  # the first trained copy serves the predictions section
                     trained.append(keep.enter_context(copy_of(url)))
-            if "fleet" in sections or "predictions" in sections:
-                result["fleet"] = _fleet(base, fleet, workers, progress, kept, measure_fleet)
+            result["fleet"] = _fleet(base, fleet, workers, progress, kept, measure_fleet)
             if "predictions" in sections:
                 result["predictions"] = measure_predictions(trained[0], fleet.names, duration,
                                                             connections, progress)
-    result["machine"]["load_average_1m_at_end"] = round(os.getloadavg()[0], 2)
-    return result
 
 
 def _fleet(base: str, fleet: Fleet, workers: tuple[int, ...], progress: Progress,
