@@ -27,14 +27,28 @@ def run_migrations_offline() -> None:
 def run_migrations_online() -> None:
     engine = make_engine(database_url())
     with engine.connect() as connection:
+        sqlite = connection.dialect.name == "sqlite"
+        if sqlite:
+            # Batch mode alters a SQLite table by copying it and dropping the
+            # old one; with foreign keys enforced, that drop would run every
+            # ON DELETE action pointing at it (models.active_version_id SET
+            # NULL, track records CASCADE ...). SQLite's own procedure for
+            # altering a table (sqlite.org/lang_altertable.html, "other kinds
+            # of table schema changes") turns them off first, outside any
+            # transaction, and checks them after.
+            connection.connection.driver_connection.execute("PRAGMA foreign_keys=OFF")
         context.configure(
             connection=connection,
             target_metadata=target_metadata,
-            render_as_batch=connection.dialect.name == "sqlite",
+            render_as_batch=sqlite,
             compare_type=True,
         )
         with context.begin_transaction():
             context.run_migrations()
+            if sqlite:
+                broken = connection.exec_driver_sql("PRAGMA foreign_key_check").fetchall()
+                if broken:
+                    raise RuntimeError(f"the migration broke foreign keys: {broken[:5]}")
     engine.dispose()
 
 
