@@ -119,6 +119,10 @@ def test_a_newly_serving_version_shows_the_last_live_figure_and_says_why_no_drif
     assert "no reference" not in overview
     cell = re.search(r'<tr data-model="pump-risk".*?</tr>', overview, re.S).group(0)
     assert "no predictions by version 2 in the last 7 days" in cell, cell
+    # Version 1's drift over the predictions it served, marked as not serving.
+    old = api.request("GET", "/v1/models/pump-risk/drift", 200)
+    assert old["version"] == 2 and old["recent_predictions"] == 0 and old["status"] is None
+    assert 'data-drift-version="1"' in cell and "not the serving version" in cell
     record = api.request("GET", "/v1/models/pump-risk/track-record", 200)
     assert record["active_version"] == 2  # the API's answer keeps its meaning
     assert [v["version"] for v in record["versions"]] == [1]
@@ -126,3 +130,5 @@ def test_a_newly_serving_version_shows_the_last_live_figure_and_says_why_no_drif
     assert 'data-live-version="1" data-live-serving="false"' in model
     assert 'data-calibration-version="1"' in model
     assert "No predictions by version 2" in model and "data-drift-empty" in model
+    assert '<strong data-drift-version="1">version 1, not the serving version</strong>' in model
+    assert "predictions version 1 served moved from what version 1 learned from" in model

@@ -20,10 +20,10 @@ from engine.drift import STATUSES
 from service.errors import KeelsonError
 from service.store.database import Database
 from service.store.model_events import PROMOTED
-from service.store.tables import JobRow, ModelEventRow, VersionRow
+from service.store.tables import DriftTallyRow, JobRow, ModelEventRow, VersionRow
 from service.usecases import models, track_record_summary, versions
 from service.usecases.common import as_utc, find_model
-from service.usecases.drift import drift_report
+from service.usecases.drift import drift_report, version_drift, window_start
 from service.usecases.drift_reference import ReferenceCache
 from service.usecases.predictions import find_model as cached_model
 from service.versions.cache import VersionCache
@@ -104,13 +104,38 @@ def latest_live(record: dict[str, Any], metric: str) -> dict[str, Any] | None:
 
 def drift(db: Database, cache: VersionCache, references: ReferenceCache, name: str
           ) -> dict[str, Any] | None:
-    """The API's drift answer, or None when there is nothing to compare yet."""
+    """The API's drift answer, or None when there is nothing to compare yet.
+    When the serving version has served no prediction in the window (made
+    serving since), ``earlier`` is the same answer for the latest version that
+    has, so the page can show it, marked as not the serving version's."""
     try:
-        return drift_report(db, references, cached_model(cache, name))
+        entry = cached_model(cache, name)
+        report = drift_report(db, references, entry)
+        if not report["recent_predictions"]:
+            report["earlier"] = _earlier_drift(db, references, entry, report)
+        return report
     except KeelsonError as exc:
         if exc.status == 404:
             raise
         return None  # no active version yet, or it changed meanwhile
+
+
+def _earlier_drift(db: Database, references: ReferenceCache, entry: Any,
+                   report: dict[str, Any]) -> dict[str, Any] | None:
+    since = window_start(report["window"]["days"])
+    with db.read() as session:
+        found = session.execute(
+            select(DriftTallyRow.version_id, VersionRow.number)
+            .join(VersionRow, VersionRow.id == DriftTallyRow.version_id)
+            .where(DriftTallyRow.model_id == entry.id, DriftTallyRow.bucket_start >= since,
+                   DriftTallyRow.version_id != entry.active_version_id,
+                   DriftTallyRow.predictions > 0)
+            .order_by(VersionRow.number.desc()).limit(1)).first()
+    if found is None:
+        return None
+    earlier = version_drift(db, references, entry, found.version_id, found.number,
+                            report["window"]["days"])
+    return earlier if earlier["recent_predictions"] else None
 
 
 def model_page(db: Database, cache: VersionCache, references: ReferenceCache,

@@ -72,6 +72,8 @@ def model_page(name: str) -> str:
     data = page_data.model_page(get_database(), get_version_cache(), get_drift_references(),
                                 name, all_versions=request.args.get("versions") == "all")
     drift = data["drift"]
+    if drift is not None and drift.get("earlier"):
+        drift = drift["earlier"]  # what the page's drift section shows (drift.html)
     numeric = [] if drift is None else [f["name"] for f in drift["fields"]
                                         if f["type"] == "numeric"]
     chosen = request.args.get("field")
