@@ -53,6 +53,7 @@ def test_numbers_are_rounded_without_float_noise() -> None:
 
 def test_open_ends_are_said_in_words() -> None:
     bins = numeric_bins(["-inf", "2.1320000000000006", "5.0", "9.75"])
+    assert [b["short"] for b in bins] == ["< 2.132", "2.132–5", "5–9.75", "≥ 9.75"]
     assert [b["label"] for b in bins] == ["below 2.132", "2.132 to 5", "5 to 9.75",
                                           "9.75 and above"]
     assert (bins[0]["lower"], bins[0]["upper"]) == (None, 2.1320000000000006)

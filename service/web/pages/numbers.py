@@ -48,12 +48,14 @@ def numeric_bins(labels: Sequence[str]) -> list[dict[str, Any]]:
         lower = None if i == 0 else edges[i - 1]
         upper = edges[i] if i < len(edges) else None
         if lower is None and upper is None:
-            text = "every value"
+            text = short = "every value"
         elif lower is None:
-            text = f"below {texts[0]}"
+            text, short = f"below {texts[0]}", f"< {texts[0]}"
         elif upper is None:
-            text = f"{texts[i - 1]} and above"
+            text, short = f"{texts[i - 1]} and above", f"≥ {texts[i - 1]}"
         else:
             text = f"{texts[i - 1]} to {texts[i]}"
-        bins.append({"label": text, "lower": lower, "upper": upper})
+            short = f"{texts[i - 1]}–{texts[i]}"
+        # ``short``: the chart's tick labels, where the words would not fit.
+        bins.append({"label": text, "short": short, "lower": lower, "upper": upper})
     return bins

@@ -54,10 +54,12 @@
     ctx.fillStyle = INK;
     ctx.font = (12 * r) + "px system-ui, sans-serif";
     ctx.textBaseline = "top";
-    ctx.fillText("training data", left + 4 * r, box.top + 4 * r);
-    if (left - box.left > 90 * r) { ctx.fillText("extrapolation", box.left + 4 * r, box.top + 4 * r); }
-    if (box.left + box.width - right > 90 * r) {
-      ctx.fillText("extrapolation", right + 4 * r, box.top + 4 * r);
+    var room = 90 * r;  // labels only where they fit; the caption and table say it too
+    if (right - left > room) { ctx.fillText("training data", left + 4 * r, box.top + 4 * r); }
+    if (left - box.left > room) { ctx.fillText("extrapolation", box.left + 4 * r, box.top + 4 * r); }
+    if (box.left + box.width - right > room) {
+      ctx.textAlign = "right";
+      ctx.fillText("extrapolation", box.left + box.width - 4 * r, box.top + 4 * r);
     }
     ctx.restore();
   }
