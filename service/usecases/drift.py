@@ -38,24 +38,38 @@ def drift_report(database: Database, references: ReferenceCache, entry: ModelEnt
                  now: dt.datetime | None = None) -> dict[str, Any]:
     """The drift answer for ``entry``'s active version over the last ``window_days``
     (whole hours: the window starts at the top of the hour it begins in)."""
-    if entry.active_version_id is None:
+    if entry.active_version_id is None or entry.active_version_number is None:
         raise ConflictError(f"Model {entry.name!r} has no active version yet: there is no "
                             "reference to compare predictions with.")
-    bins = references.load(entry.active_version_id)
+    return version_drift(database, references, entry, entry.active_version_id,
+                         entry.active_version_number, window_days, now)
+
+
+def window_start(window_days: int, now: dt.datetime | None = None) -> dt.datetime:
+    """The first hour of a window of ``window_days`` days ending ``now``."""
+    until = now or utcnow()
+    return (until - dt.timedelta(days=window_days)).replace(minute=0, second=0, microsecond=0)
+
+
+def version_drift(database: Database, references: ReferenceCache, entry: ModelEntry,
+                  version_id: int, number: int, window_days: int = DEFAULT_WINDOW_DAYS,
+                  now: dt.datetime | None = None) -> dict[str, Any]:
+    """The drift answer's figures for the predictions version ``version_id``
+    (number ``number``) served, against what that version learned from."""
+    bins = references.load(version_id)
     if bins is None:
         raise ReferenceGoneError(f"The active version of model {entry.name!r} changed while "
                                  "this was answered; ask again.")
     until = now or utcnow()
-    since = (until - dt.timedelta(days=window_days)).replace(minute=0, second=0,
-                                                             microsecond=0)
+    since = window_start(window_days, until)
     with database.read() as session:
-        summed = sum_tallies(session, entry.id, entry.active_version_id, since,
+        summed = sum_tallies(session, entry.id, version_id, since,
                              {b.name: b.size for b in bins})
     fields = [_field(b, summed.counts[b.name]) for b in bins]
     statuses = [f["status"] for f in fields if f["status"] is not None]
     return {
         "model": entry.name,
-        "version": entry.active_version_number,
+        "version": number,
         "window": {"days": window_days, "since": since.isoformat(),
                    "until": until.isoformat()},
         "reference_records": int(bins[0].reference.sum()) if bins else 0,

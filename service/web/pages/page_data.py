@@ -20,10 +20,10 @@ from engine.drift import STATUSES
 from service.errors import KeelsonError
 from service.store.database import Database
 from service.store.model_events import PROMOTED
-from service.store.tables import JobRow, ModelEventRow, VersionRow
+from service.store.tables import DriftTallyRow, JobRow, ModelEventRow, VersionRow
 from service.usecases import models, track_record_summary, versions
 from service.usecases.common import as_utc, find_model
-from service.usecases.drift import drift_report
+from service.usecases.drift import drift_report, version_drift, window_start
 from service.usecases.drift_reference import ReferenceCache
 from service.usecases.predictions import find_model as cached_model
 from service.versions.cache import VersionCache
@@ -51,7 +51,7 @@ def overview(db: Database, cache: VersionCache, references: ReferenceCache,
     rows = []
     for model in listed:
         gauge = gauges.get(model["name"])
-        drift = _drift_status(db, cache, references, model["name"])
+        report = drift(db, cache, references, model["name"])
         trainer = model["trainer"]
         rows.append({
             "name": model["name"], "task": model["task"],
@@ -59,10 +59,10 @@ def overview(db: Database, cache: VersionCache, references: ReferenceCache,
             "records": model["records"]["total"], "lag": trainer["lag"],
             "trainer_error": trainer.get("error"), "paused": trainer["paused"],
             "metric": main_metric(model["task"]),
-            "live": None if gauge is None or not gauge["n"] else gauge["value"],
-            "live_n": 0 if gauge is None else gauge["n"],
+            "live": _overview_live(db, model, gauge),
             "alarm": None if gauge is None else ("raised" if gauge["raised"] else "calm"),
-            "drift": drift,
+            "drift": None if report is None else report["status"],
+            "drift_report": report,
         })
     rows.sort(key=_attention, reverse=True)
     return rows
@@ -73,21 +73,69 @@ def _attention(row: dict[str, Any]) -> tuple[int, int, int, int]:
     return (row["alarm"] == "raised", drift, row["trainer_error"] is not None, row["lag"])
 
 
-def _drift_status(db: Database, cache: VersionCache, references: ReferenceCache,
-                  name: str) -> str | None:
-    report = drift(db, cache, references, name)
-    return None if report is None else report["status"]
+def _overview_live(db: Database, model: dict[str, Any], gauge: dict[str, Any] | None
+                   ) -> dict[str, Any] | None:
+    """The serving version's live metric; when it has no outcomes in the window
+    (a version made serving since), the latest version's that has some, marked
+    as not serving. One more read only for models in that case."""
+    if gauge is not None and gauge["n"]:
+        return {"version": gauge["version"], "value": gauge["value"], "n": gauge["n"],
+                "serving": True}
+    if model["active_version"] is None:
+        return None
+    since, until = track_record_summary.resolve_window(
+        None, None, dt.datetime.now(dt.UTC).date())
+    record = track_record_summary.track_record(db, model["name"], since, until)
+    return latest_live(record, main_metric(model["task"]))
+
+
+def latest_live(record: dict[str, Any], metric: str) -> dict[str, Any] | None:
+    """From a track record, the live figure of the serving version when it has
+    outcomes in the window, else of the highest-numbered version that has some
+    (None when no version has any)."""
+    scored = [v for v in record["versions"] if v["metrics"].get("n")]
+    if not scored:
+        return None
+    latest = max(scored, key=lambda v: (v["active"], v["version"]))
+    return {"version": latest["version"], "value": latest["metrics"].get(metric),
+            "n": int(latest["metrics"]["n"]), "serving": bool(latest["active"]),
+            "calibration": latest["calibration"]}
 
 
 def drift(db: Database, cache: VersionCache, references: ReferenceCache, name: str
           ) -> dict[str, Any] | None:
-    """The API's drift answer, or None when there is nothing to compare yet."""
+    """The API's drift answer, or None when there is nothing to compare yet.
+    When the serving version has served no prediction in the window (made
+    serving since), ``earlier`` is the same answer for the latest version that
+    has, so the page can show it, marked as not the serving version's."""
     try:
-        return drift_report(db, references, cached_model(cache, name))
+        entry = cached_model(cache, name)
+        report = drift_report(db, references, entry)
+        if not report["recent_predictions"]:
+            report["earlier"] = _earlier_drift(db, references, entry, report)
+        return report
     except KeelsonError as exc:
         if exc.status == 404:
             raise
         return None  # no active version yet, or it changed meanwhile
+
+
+def _earlier_drift(db: Database, references: ReferenceCache, entry: Any,
+                   report: dict[str, Any]) -> dict[str, Any] | None:
+    since = window_start(report["window"]["days"])
+    with db.read() as session:
+        found = session.execute(
+            select(DriftTallyRow.version_id, VersionRow.number)
+            .join(VersionRow, VersionRow.id == DriftTallyRow.version_id)
+            .where(DriftTallyRow.model_id == entry.id, DriftTallyRow.bucket_start >= since,
+                   DriftTallyRow.version_id != entry.active_version_id,
+                   DriftTallyRow.predictions > 0)
+            .order_by(VersionRow.number.desc()).limit(1)).first()
+    if found is None:
+        return None
+    earlier = version_drift(db, references, entry, found.version_id, found.number,
+                            report["window"]["days"])
+    return earlier if earlier["recent_predictions"] else None
 
 
 def model_page(db: Database, cache: VersionCache, references: ReferenceCache,
@@ -116,15 +164,15 @@ def model_page(db: Database, cache: VersionCache, references: ReferenceCache,
         version["made_active"] = made_active.get(version["number"])
         entry = live.get(version["number"])
         version["live"] = None if entry is None else entry["metrics"].get(metric)
-    active = live.get(record["active_version"]) if record["active_version"] else None
+    shown_live = latest_live(record, metric)
     return {
         "model": model, "versions": listed, "metric": metric, "jobs": jobs,
         "version_count": len(every),
         "curve": learning_curve(every, live, metric, model["active_version"]),
-        "calibration": None if active is None else active["calibration"],
-        "calibration_n": 0 if active is None else active["metrics"].get("n", 0),
+        "live": shown_live,
         "alarm": record["alarm"], "window": {"since": since, "until": until},
         "drift": drift(db, cache, references, name),
+        "serving_since": made_active.get(model["active_version"], {}).get("at"),
     }
 
 

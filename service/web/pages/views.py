@@ -17,6 +17,7 @@ from service.usecases import jobs, versions
 from service.web.extensions import get_database, get_drift_references, get_version_cache
 from service.web.pages import page_data, session
 from service.web.pages.guard import acts, blueprint, looks, open_page
+from service.web.pages.numbers import numeric_bins
 
 MAX_REASON = 1000
 
@@ -71,6 +72,8 @@ def model_page(name: str) -> str:
     data = page_data.model_page(get_database(), get_version_cache(), get_drift_references(),
                                 name, all_versions=request.args.get("versions") == "all")
     drift = data["drift"]
+    if drift is not None and drift.get("earlier"):
+        drift = drift["earlier"]  # what the page's drift section shows (drift.html)
     numeric = [] if drift is None else [f["name"] for f in drift["fields"]
                                         if f["type"] == "numeric"]
     chosen = request.args.get("field")
@@ -80,6 +83,7 @@ def model_page(name: str) -> str:
         f for f in drift["fields"] if f["name"] == chosen)
     return render_template("model.html", name=name, data=data, numeric_fields=numeric,
                            chosen_field=chosen, distribution=shown,
+                           ranges=None if shown is None else numeric_bins(shown["bins"]),
                            may_act=g.page_user.may("admin"))
 
 

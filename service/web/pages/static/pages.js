@@ -35,6 +35,35 @@
     ctx.restore();
   }
 
+  /* The training data's range on a sweep: a shaded band between dashed lines,
+     labelled in words (so it is not told by colour alone). */
+  function trainedBand(u, low, high) {
+    var ctx = u.ctx, r = devicePixelRatio, box = u.bbox;
+    var left = Math.max(box.left, u.valToPos(low, "x", true));
+    var right = Math.min(box.left + box.width, u.valToPos(high, "x", true));
+    if (right < left) { return; }
+    ctx.save();
+    ctx.fillStyle = "rgba(29, 88, 115, 0.10)";
+    ctx.fillRect(left, box.top, right - left, box.height);
+    ctx.strokeStyle = GREY;
+    ctx.lineWidth = r;
+    ctx.setLineDash([5 * r, 4 * r]);
+    [left, right].forEach(function (x) {
+      ctx.beginPath(); ctx.moveTo(x, box.top); ctx.lineTo(x, box.top + box.height); ctx.stroke();
+    });
+    ctx.fillStyle = INK;
+    ctx.font = (12 * r) + "px system-ui, sans-serif";
+    ctx.textBaseline = "top";
+    var room = 90 * r;  // labels only where they fit; the caption and table say it too
+    if (right - left > room) { ctx.fillText("training data", left + 4 * r, box.top + 4 * r); }
+    if (left - box.left > room) { ctx.fillText("extrapolation", box.left + 4 * r, box.top + 4 * r); }
+    if (box.left + box.width - right > room) {
+      ctx.textAlign = "right";
+      ctx.fillText("extrapolation", box.left + box.width - 4 * r, box.top + 4 * r);
+    }
+    ctx.restore();
+  }
+
   function learningCurve(el) {
     var d = json(el, "data-series");
     if (!d || !d.x.length) { return; }
@@ -77,7 +106,7 @@
     draw(el, {
       scales: { x: { time: false } },
       axes: [{ label: el.getAttribute("data-field"), stroke: INK,
-               values: function (u, ticks) { return ticks.map(function (t) { return d.bins[t] || ""; }); } },
+               values: function (u, ticks) { var names = d.labels || d.bins; return ticks.map(function (t) { return names[t] || ""; }); } },
              { label: "share of records", stroke: INK }],
       series: [{ label: "bin" },
         { label: "learned from", stroke: ACCENT, width: 2, points: { show: true, size: 6 } },
@@ -89,6 +118,8 @@
     var xs = json(el, "data-x") || [], ys = json(el, "data-y") || [];
     if (!xs.length) { return; }
     var current = parseFloat(el.getAttribute("data-current"));
+    var low = parseFloat(el.getAttribute("data-trained-low")),
+        high = parseFloat(el.getAttribute("data-trained-high"));
     var label = el.getAttribute("data-sweep-class");
     var at = function (x) {  // linear interpolation between the swept points
       for (var i = 1; i < xs.length; i++) {
@@ -101,7 +132,9 @@
       axes: axes(el.getAttribute("data-sweep-field"), label ? "probability of " + label : "value"),
       series: [{ label: el.getAttribute("data-sweep-field") },
         { label: label ? "p(" + label + ")" : "value", stroke: ACCENT, width: 2, points: { show: false } }],
-      hooks: { draw: [function (u) {
+      hooks: { drawAxes: [function (u) {
+        if (!isNaN(low) && !isNaN(high)) { trainedBand(u, low, high); }
+      }], draw: [function (u) {
         if (current >= xs[0] && current <= xs[xs.length - 1]) { ringAt(u, current, at(current)); }
       }] }
     }, [xs, ys]);
