@@ -57,7 +57,8 @@ def test_records_go_oldest_first_a_batch_at_a_time(database_url: str) -> None:
 def test_batch_size_follows_the_hold_time_within_its_bounds() -> None:
     target = deletion.HOLD_TARGET_SECONDS
     assert deletion._next_size(2000, 2000, target * 1.5) == 1000
-    assert deletion._next_size(80, 2000, target * 3) == deletion.MIN_BATCH
+    floor = deletion.MIN_BATCH
+    assert deletion._next_size(floor + 10, 2000, target * 3) == floor  # never below the floor
     assert deletion._next_size(1000, 2000, target * 0.4) == 2000
     assert deletion._next_size(1500, 2000, target * 0.1) == 2000  # never above the setting
     assert deletion._next_size(1000, 2000, target * 0.75) == 1000  # in between: kept
