@@ -110,7 +110,6 @@ def run_delete(settings: WorkerSettings, reads: sessionmaker[Session],
     # rows, not the database, but a delete running flat out takes the CPU and
     # the WAL from other models' commits (p99 3.8x measured on 2 cores); the
     # same pacing keeps it a background job there too.
-    rest = True
     after = 0  # records: the seq the next batch starts after
     for name, key, owner, big in STEPS:
         limit = min(settings.delete_batch, VERSION_BATCH) if big else settings.delete_batch
@@ -126,13 +125,11 @@ def run_delete(settings: WorkerSettings, reads: sessionmaker[Session],
             else:
                 count = _delete_batch(writes, key, owner, model_id, size)
             took = time.monotonic() - began
-            if rest:
-                time.sleep(max(took, MIN_REST_SECONDS))
+            time.sleep(max(took, MIN_REST_SECONDS))
             removed += count
-            if count < size:
-                size = 0  # the last batch: nothing left of this kind
-            else:
-                size = _next_size(size, limit, took)
+            # A short batch was the last of this kind; otherwise the next is
+            # time-boxed by this one's hold.
+            size = 0 if count < size else _next_size(size, limit, took)
             if name == "records":
                 progress["records_deleted"] += count
             if size == 0:
