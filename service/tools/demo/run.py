@@ -283,6 +283,8 @@ def _serve(config: dict[str, Any], host: str | None, port: int | None,
         how = ("a new admin token (stored only as a hash, shown this once, replacing "
                f"any earlier demo token; `keelson token revoke {DEMO_TOKEN_NAME}` revokes it)")
     echo(f"Serving on {address} with {how}:\n\n    {token}\n")
+    echo(f"People: open {address}/ in a browser and sign in with that token "
+         "(the overview, the model's versions and drift, and a what-if).\n")
     echo(f"Try:\n    curl -H 'Authorization: Bearer {token}' "
          f"'{address}/v1/models/{demo_data.MODEL_NAME}/predictions?vibration_rms=9.5"
          "&bearing_temp_c=82&motor_current_dev_pct=3&hours_since_service=4000"
