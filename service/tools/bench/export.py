@@ -18,7 +18,6 @@ from __future__ import annotations
 
 import os
 import platform
-import tempfile
 import time
 import tracemalloc
 from collections.abc import Callable, Mapping
@@ -29,7 +28,7 @@ import numpy as np
 
 from service.config import read_setting
 from service.store.database import transaction
-from service.tools.bench.scratch import scratch_postgres
+from service.tools.bench.scratch import on_each_database
 
 Progress = Callable[[str], None]
 INSERT_BATCH = 10_000
@@ -57,13 +56,7 @@ def run_export_bench(records: int = 200_000, postgres_url: str | None = None,
         "settings": {"records": records, "fields": len(SPEC["features"])},
     }
     postgres_url = postgres_url or read_setting("KEELSON_BENCH_POSTGRES_URL")
-    with tempfile.TemporaryDirectory(prefix="keelson-bench-") as scratch:
-        result["sqlite"] = _measure(f"sqlite:///{scratch}/bench.db", records, progress)
-    if postgres_url:
-        with scratch_postgres(postgres_url) as url:
-            result["postgresql"] = _measure(url, records, progress)
-    else:
-        result["postgresql"] = {"skipped": "no postgres_url (or KEELSON_BENCH_POSTGRES_URL)"}
+    result.update(on_each_database(lambda url: _measure(url, records, progress), postgres_url))
     return result
 
 

@@ -37,7 +37,7 @@ import numpy as np
 
 from service.config import read_setting
 from service.tools.bench import worker as worker_bench
-from service.tools.bench.scratch import scratch_postgres
+from service.tools.bench.scratch import on_each_database
 
 Progress = Callable[[str], None]
 
@@ -53,13 +53,7 @@ def run_replay_bench(records: int = 100_000, postgres_url: str | None = None,
                      "network": "20-32-16-1", "spec_training": worker_bench.SPEC["training"]},
     }
     postgres_url = postgres_url or read_setting("KEELSON_BENCH_POSTGRES_URL")
-    with tempfile.TemporaryDirectory(prefix="keelson-bench-") as scratch:
-        result["sqlite"] = _measure(f"sqlite:///{scratch}/bench.db", records, progress)
-    if postgres_url:
-        with scratch_postgres(postgres_url) as url:
-            result["postgresql"] = _measure(url, records, progress)
-    else:
-        result["postgresql"] = {"skipped": "no postgres_url (or KEELSON_BENCH_POSTGRES_URL)"}
+    result.update(on_each_database(lambda url: _measure(url, records, progress), postgres_url))
     return result
 
 

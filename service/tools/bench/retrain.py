@@ -42,7 +42,7 @@ from typing import Any
 import numpy as np
 
 from service.store.database import transaction
-from service.tools.bench.scratch import scratch_postgres
+from service.tools.bench.scratch import on_each_database
 
 Progress = Callable[[str], None]
 STORE_BATCH = 50_000
@@ -81,16 +81,9 @@ def run_retrain_bench(records: int, fields: int = 20, epochs: int | None = None,
                      "chunk_records": chunk_records, "target_ratio": 0.7,
                      "target_peak_rss_mib": 512},
     }
-    if sqlite:
-        with tempfile.TemporaryDirectory(prefix="keelson-bench-") as scratch:
-            result["sqlite"] = _measure(f"sqlite:///{scratch}/bench.db", records, fields,
-                                        epochs, chunk_records, progress)
-    if postgres_url:
-        with scratch_postgres(postgres_url) as url:
-            result["postgresql"] = _measure(url, records, fields, epochs, chunk_records,
-                                            progress)
-    else:
-        result["postgresql"] = {"skipped": "no postgres_url (or KEELSON_BENCH_POSTGRES_URL)"}
+    result.update(on_each_database(
+        lambda url: _measure(url, records, fields, epochs, chunk_records, progress),
+        postgres_url, sqlite=sqlite))
     result["machine"]["load_average_1min_end"] = round(os.getloadavg()[0], 2)
     return result
 

@@ -39,7 +39,7 @@ import numpy as np
 
 from service.config import read_setting
 from service.store.database import transaction
-from service.tools.bench.scratch import scratch_postgres
+from service.tools.bench.scratch import on_each_database
 
 Progress = Callable[[str], None]
 FIELDS = [f"f{i:02d}" for i in range(20)]
@@ -89,13 +89,8 @@ def run_worker_bench(
         result["database"] = _measure(database_url, records, progress, retrain)
         return result
     postgres_url = postgres_url or read_setting("KEELSON_BENCH_POSTGRES_URL")
-    with tempfile.TemporaryDirectory(prefix="keelson-bench-") as scratch:
-        result["sqlite"] = _measure(f"sqlite:///{scratch}/bench.db", records, progress, retrain)
-    if postgres_url:
-        with scratch_postgres(postgres_url) as url:
-            result["postgresql"] = _measure(url, records, progress, retrain)
-    else:
-        result["postgresql"] = {"skipped": "no postgres_url (or KEELSON_BENCH_POSTGRES_URL)"}
+    result.update(on_each_database(lambda url: _measure(url, records, progress, retrain),
+                                   postgres_url))
     return result
 
 
