@@ -33,7 +33,7 @@ SPEC = {"name": "crash-outcomes", "task": "regression", "target": "y",
         "features": [{"name": f, "type": "numeric"} for f in FIELDS]}
 BATCH = 5_000
 SCORE_BATCH = 1_000  # KEELSON_MAX_PREDICTION_BATCH
-KILL_FRACTIONS = [0.2, 0.5, 0.8]
+KILL_FRACTIONS = [0.3, 0.7]
 
 
 def features(i: int) -> dict[str, float]:
