@@ -15,13 +15,13 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
-from sqlalchemy import String, any_, bindparam, insert, select, update
-from sqlalchemy.dialects.postgresql import ARRAY
+from sqlalchemy import bindparam, insert, select, update
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session, sessionmaker
 
 from service.errors import ConflictError
 from service.store.tables import ScoredCaseRow, VersionRow, utcnow
+from service.store.value_lists import in_json_list
 from service.usecases.case_writer import case_writer
 
 KEY_CHUNK = 500  # keys per IN (...) on SQLite: under its parameter limit
@@ -135,9 +135,10 @@ def find_cases(session: Session, model_id: int, keys: Sequence[str], *columns: A
         if lock:  # in key order, as re-scores update them (no deadlock between the two)
             query = query.with_for_update().order_by(ScoredCaseRow.key)
         return list(session.execute(query.where(
-            ScoredCaseRow.key == any_(bindparam("keys", unique, type_=ARRAY(String))))))
+            in_json_list(ScoredCaseRow.key, "keys", unique))))
     found: list[Any] = []
+    # One expanding parameter: the statement is compiled once, not per key.
+    chunked = query.where(ScoredCaseRow.key.in_(bindparam("keys", expanding=True)))
     for start in range(0, len(unique), KEY_CHUNK):
-        found.extend(session.execute(query.where(
-            ScoredCaseRow.key.in_(unique[start:start + KEY_CHUNK]))))
+        found.extend(session.execute(chunked, {"keys": unique[start:start + KEY_CHUNK]}))
     return found

@@ -33,7 +33,7 @@ import hashlib
 from collections.abc import Sequence
 from typing import Any
 
-from sqlalchemy import String, Table, any_, bindparam, delete, select, update
+from sqlalchemy import Table, any_, bindparam, delete, select, update
 from sqlalchemy.dialects.postgresql import ARRAY, BIGINT
 from sqlalchemy.orm import Session
 
@@ -47,6 +47,7 @@ from service.store.tables import (
     TrainerRow,
     VersionRow,
 )
+from service.store.value_lists import in_json_list
 from service.usecases.cases import find_cases
 from service.usecases.common import find_model
 from service.usecases.forget_outcomes import take_out_outcomes
@@ -136,7 +137,7 @@ def _find_records(session: Session, model_id: int, keys: list[str]) -> list[Any]
         RecordRow.model_id == model_id)
     if session.get_bind().dialect.name == "postgresql":
         return list(session.execute(query.where(
-            RecordRow.key == any_(bindparam("keys", keys, type_=ARRAY(String))))))
+            in_json_list(RecordRow.key, "keys", keys))))
     found: list[Any] = []
     for start in range(0, len(keys), _CHUNK):
         found.extend(session.execute(query.where(RecordRow.key.in_(keys[start:start + _CHUNK]))))

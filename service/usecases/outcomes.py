@@ -17,18 +17,25 @@ duplicate.
 
 from __future__ import annotations
 
+import datetime as dt
+import json
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
-from sqlalchemy import update
+from sqlalchemy import Text, cast
 from sqlalchemy.orm import Session, sessionmaker
 
 from service.errors import ConflictError, InvalidInputError
 from service.store.tables import ModelRow, ScoredCaseRow, utcnow
 from service.usecases.cases import find_cases
 from service.usecases.common import as_utc, find_model
-from service.usecases.records import ModelChangedError, same_record_shape, store_records
+from service.usecases.records import (
+    JSONText,
+    ModelChangedError,
+    same_record_shape,
+    store_records,
+)
 from service.usecases.track_record import JoinedOutcome, record_outcomes
 
 NAMED_IN_DETAIL = 10  # keys named in a problem's detail (its errors name all)
@@ -88,8 +95,8 @@ def _accept(session: Session, model: ModelRow, outcomes: Sequence[Mapping[str, A
             ) -> OutcomeResult:
     found = {row.key: row for row in find_cases(
         session, model.id, [o["key"] for o in outcomes], ScoredCaseRow.id,
-        ScoredCaseRow.features, ScoredCaseRow.version_id, ScoredCaseRow.output,
-        ScoredCaseRow.scored_at, ScoredCaseRow.outcome, lock=True)}
+        cast(ScoredCaseRow.features, Text).label("features"), ScoredCaseRow.version_id,
+        ScoredCaseRow.output, ScoredCaseRow.scored_at, ScoredCaseRow.outcome, lock=True)}
     _refuse_unknown(outcomes, found)
     known: dict[str, Any] = {key: row.outcome for key, row in found.items()
                              if row.outcome is not None}
@@ -111,15 +118,39 @@ def _accept(session: Session, model: ModelRow, outcomes: Sequence[Mapping[str, A
     if not fresh:
         return OutcomeResult(accepted=0, duplicates=len(outcomes))
     now = utcnow()
-    session.execute(update(ScoredCaseRow), [
-        {"id": case.id, "outcome": label, "outcome_at": now} for case, label in fresh])
-    store_records(session, model, [
-        {"key": case.key, "features": case.features, "label": label} for case, label in fresh])
+    _mark_cases(session, [(case.id, label) for case, label in fresh], now)
+    store_records(session, model, [  # the features as the case stored them
+        {"key": case.key, "features": JSONText(case.features), "label": label}
+        for case, label in fresh])
     record_outcomes(session, model, [
         JoinedOutcome(version_id=case.version_id, output=case.output, label=label,
                       scored_at=as_utc(case.scored_at) or now, outcome_at=now)
         for case, label in fresh if case.version_id is not None])
     return OutcomeResult(accepted=len(fresh), duplicates=len(outcomes) - len(fresh))
+
+
+def _mark_cases(session: Session, outcomes: list[tuple[int, Any]], now: dt.datetime) -> None:
+    """Set each case's outcome and its time, the values serialized once here:
+    on PostgreSQL one UPDATE joined with the batch sent as one JSON text (one
+    round trip; an UPDATE per case cost about a third of a 1,000-outcome
+    batch), on SQLite (in process) one statement run for each case by the
+    driver."""
+    connection = session.connection()
+    dialect = connection.dialect
+    stamp_of = ScoredCaseRow.__table__.c.outcome_at.type.dialect_impl(
+        dialect).bind_processor(dialect)
+    stamp = stamp_of(now) if stamp_of is not None else now
+    if dialect.name == "postgresql":  # the batch as one JSON parameter (value_lists.py)
+        connection.exec_driver_sql(
+            "UPDATE scored_cases SET outcome = batch.outcome, outcome_at = %s "
+            "FROM json_to_recordset(%s::json) AS batch(id BIGINT, outcome JSON) "
+            "WHERE scored_cases.id = batch.id",
+            (stamp, json.dumps([{"id": case_id, "outcome": label}
+                                for case_id, label in outcomes])))
+        return
+    connection.exec_driver_sql(
+        "UPDATE scored_cases SET outcome = ?, outcome_at = ? WHERE id = ?",
+        [(json.dumps(label), stamp, case_id) for case_id, label in outcomes])
 
 
 def _refuse_unknown(outcomes: Sequence[Mapping[str, Any]], found: Mapping[str, Any]) -> None:

@@ -19,13 +19,13 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
-from sqlalchemy import String, any_, bindparam, func, select, text, update
-from sqlalchemy.dialects.postgresql import ARRAY
+from sqlalchemy import bindparam, func, select, text, update
 from sqlalchemy.orm import Session, sessionmaker
 
 from service.errors import ConflictError
 from service.store.model_events import RECORDS_FORGOTTEN
 from service.store.tables import ModelEventRow, ModelRow, RecordRow, utcnow
+from service.store.value_lists import in_json_list
 from service.usecases.common import find_model
 
 KEY_CHUNK = 500  # keys per IN (...) on SQLite: under its parameter limit
@@ -108,10 +108,19 @@ def split_of(model_id: int, key: str | None, seq: int, holdout_fraction: float) 
         else "train"
 
 
+class JSONText(str):
+    """Features already in the JSON text records keep (a scored case's, read as
+    stored, which is how ``store_records`` would have written them): stored
+    as they are, not decoded and encoded again."""
+
+    __slots__ = ()
+
+
 def store_records(session: Session, model: ModelRow, valid: list[Mapping[str, Any]]
                   ) -> IngestResult:
     """Store checked records under the model lock ``session`` holds (no commit):
-    the one way a labelled record is stored, by ingest and by accepted outcomes."""
+    the one way a labelled record is stored, by ingest and by accepted outcomes
+    (whose features may come as JSONText)."""
     postgres = session.get_bind().dialect.name == "postgresql"
     if postgres:
         # The key lookup below runs once per batch; psycopg prepares it after
@@ -126,8 +135,9 @@ def store_records(session: Session, model: ModelRow, valid: list[Mapping[str, An
     fraction = float(model.spec["training"]["holdout_fraction"])
     dumps, model_id = json.dumps, model.id
     rows = [
-        (seq, model_id, record.get("key"), dumps(record["features"]), dumps(record["label"]),
-         split_of(model_id, record.get("key"), seq, fraction))
+        (seq, model_id, record.get("key"),
+         features if type(features := record["features"]) is JSONText else dumps(features),
+         dumps(record["label"]), split_of(model_id, record.get("key"), seq, fraction))
         for seq, record in zip(seqs, fresh, strict=True)
     ]
     holdout = sum(row[5] == "holdout" for row in rows)
@@ -160,15 +170,15 @@ def _drop_duplicates(
         stored.update(session.scalars(
             select(RecordRow.key).where(
                 RecordRow.model_id == model_id,
-                RecordRow.key == any_(bindparam("keys", keys, type_=ARRAY(String))),
+                in_json_list(RecordRow.key, "keys", keys),
             )
         ))
     else:
+        # One expanding parameter: the statement is compiled once, not per key.
+        query = select(RecordRow.key).where(RecordRow.model_id == model_id,
+                                            RecordRow.key.in_(bindparam("keys", expanding=True)))
         for start in range(0, len(keys), KEY_CHUNK):
-            stored.update(session.scalars(
-                select(RecordRow.key).where(RecordRow.model_id == model_id,
-                                            RecordRow.key.in_(keys[start:start + KEY_CHUNK]))
-            ))
+            stored.update(session.scalars(query, {"keys": keys[start:start + KEY_CHUNK]}))
     fresh = []
     for record in valid:
         key = record.get("key")

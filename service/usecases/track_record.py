@@ -16,8 +16,7 @@ from __future__ import annotations
 import datetime as dt
 import zlib
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
-from typing import Any
+from typing import Any, NamedTuple
 
 import numpy as np
 from numpy.typing import NDArray
@@ -37,9 +36,10 @@ _HISTOGRAM_DTYPE = np.dtype("<i8")
 _HISTOGRAM_COMPRESSION = 1
 
 
-@dataclass(frozen=True)
-class JoinedOutcome:
-    """An accepted outcome joined with the scored case it resolves."""
+class JoinedOutcome(NamedTuple):
+    """An accepted outcome joined with the scored case it resolves (a named
+    tuple: a batch makes a thousand of them, at a fraction of a frozen
+    dataclass's cost)."""
 
     version_id: int
     output: Any  # the stored served output: {"label", "probabilities"} or {"value"}

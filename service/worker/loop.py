@@ -27,7 +27,6 @@ from sqlalchemy.orm import Session, sessionmaker
 
 from service.process import stop_on_signals
 from service.store.database import make_engine, make_sessionmaker, transaction
-from service.store.record_log import decode_json
 from service.versions.writes import Fenced
 from service.worker.faults import ANY_HEAD, describe, is_expected, log_text, record_fault
 from service.worker.job_runner import JobRunner
@@ -80,7 +79,7 @@ def run_worker(
     if stop.is_set():
         log.info("worker %s: stopped while starting; nothing to do", name)
         return
-    engine = make_engine(settings.database_url, json_deserializer=decode_json)
+    engine = make_engine(settings.database_url)
     try:
         Worker(settings, engine, name, stop).run()
     finally:

@@ -1,7 +1,7 @@
 """A spec's compiled rules, held together on random specs and broken records:
 
-- the fast checker returns exactly what the marshmallow schema loads, and
-  declines (None) exactly when the schema refuses;
+- the fast checkers (records, outcomes) return exactly what the marshmallow
+  schemas load, and decline (None) exactly when the schemas refuse;
 - the published JSON Schema 2020-12 documents (record, outcome, prediction
   request) call valid exactly what the API's own checks accept;
 - the generic record of the OpenAPI document admits every record some model
@@ -113,6 +113,53 @@ def test_the_fast_checker_loads_exactly_what_the_schema_loads(data: st.DataObjec
     assert typed(fast) == typed(slow), (fast, slow)
     assert typed(rules.fast_check(valid)) == typed(schema_load(rules, valid))
     assert rules.fast_check(valid) is not None  # a valid batch takes the fast path
+
+
+@st.composite
+def broken_outcomes(draw: st.DrawFn, outcomes: list[dict[str, Any]],
+                    values: st.SearchStrategy[Any]) -> list[Any]:
+    """``outcomes`` with a few random changes (or none): a label or key
+    replaced, a member dropped or added, an outcome replaced."""
+    batch: list[Any] = copy.deepcopy(outcomes)
+    for _ in range(draw(st.integers(0, 3))):
+        index = draw(st.integers(0, len(batch) - 1))
+        outcome = batch[index]
+        if not isinstance(outcome, dict):
+            continue
+        how = draw(st.sampled_from(["label", "key", "drop", "extra", "outcome"]))
+        if how in ("label", "key"):
+            outcome[how] = draw(values)
+        elif how == "drop":
+            outcome.pop(draw(st.sampled_from(["key", "label"])), None)
+        elif how == "extra":
+            outcome[draw(st.sampled_from(["features", "weight"]))] = draw(values)
+        else:
+            batch[index] = draw(values)
+    return batch
+
+
+def schema_load_outcomes(rules: RecordRules, outcomes: list[Any]) -> list[Any] | None:
+    try:
+        loaded = rules.outcome_batch_schema().load({"outcomes": outcomes})
+    except ValidationError:
+        return None
+    return list(loaded["outcomes"])
+
+
+@EXAMPLES
+@given(data=st.data())
+def test_the_fast_outcome_checker_loads_exactly_what_the_schema_loads(
+    data: st.DataObject
+) -> None:
+    spec = data.draw(model_spec(), label="spec")
+    rules = rules_for(spec)
+    valid = [{"key": f"case-{i}", "label": record["label"]}
+             for i, record in enumerate(data.draw(valid_batch(spec), label="valid"))]
+    batch = data.draw(broken_outcomes(valid, json_values | non_finite), label="batch")
+    fast, slow = rules.fast_outcome_check(batch), schema_load_outcomes(rules, batch)
+    assert typed(fast) == typed(slow), (fast, slow)
+    assert rules.fast_outcome_check(valid) is not None  # a valid batch takes the fast path
+    assert typed(rules.fast_outcome_check(valid)) == typed(schema_load_outcomes(rules, valid))
 
 
 @EXAMPLES

@@ -1,12 +1,13 @@
-"""The fast checker of JSON records, compiled from a model's ``RecordRules``.
+"""The fast checkers of JSON records and outcomes, compiled from a model's ``RecordRules``.
 
 Ingest's hot path: a batch of 1,000 valid records through marshmallow costs
 tens of milliseconds; this loads the same batch in plain Python at a small
 fraction of that. It returns exactly what ``rules.record_schema().load(records,
 many=True)`` returns, or None at the first value it does not accept; the caller
-then runs the schema, which names every bad field. The two are generated from
-the same rules, and tests/service/test_record_rules.py holds them equal on
-random specs and broken records.
+then runs the schema, which names every bad field. The outcome checker does the same
+for ``rules.outcome_batch_schema()``. Each pair is generated from the same
+rules, and tests/service/test_record_rules.py holds them equal on random
+specs and broken records and outcomes.
 """
 
 from __future__ import annotations
@@ -26,6 +27,7 @@ Check = Callable[[Sequence[Any]], "list[dict[str, Any]] | None"]
 NUMBER, LEVEL, CHOICE, BOOLEAN = 0, 1, 2, 3
 _CHOICE_TYPES = (str, int, bool, float)  # JSON scalars; a list or an object is never a choice
 _RECORD_KEYS = frozenset({"key", "features", "label"})
+_OUTCOME_KEYS = frozenset({"key", "label"})
 
 
 def _number(value: Any, low: float | None, high: float | None) -> float | None:
@@ -93,25 +95,51 @@ def compile_fast_check(features: Sequence[FieldRule], label_rule: FieldRule,
                 elif value is not True and value is not False:
                     return None
                 features[name] = value
-            label = record["label"]
-            if label_kind == NUMBER:
-                label = _number(label, label_a, label_b)
-                if label is None:
-                    return None
-            elif label_kind == LEVEL:
-                if type(label) is not str or label not in label_a:
-                    return None
-            else:
-                label = _choice(label_a, label)
-                if label is MISSING:
-                    return None
+            label = _label(label_kind, label_a, label_b, record["label"])
+            if label is MISSING:
+                return None
             out: dict[str, Any] = {"features": features, "label": label}
             if "key" in record:
                 key = record["key"]
-                if type(key) is not str or not 1 <= len(key) <= max_key or "\x00" in key:
+                if not _key_ok(key, max_key):
                     return None
                 out["key"] = key
             loaded.append(out)
         return loaded
 
     return check
+
+
+def compile_fast_outcome_check(label_rule: FieldRule, max_key: int) -> Check:
+    """The checker of outcomes (``{"key", "label"}``, the label by the records'
+    rule): what ``rules.outcome_batch_schema().load`` returns as its
+    ``outcomes``, or None at the first item it does not accept."""
+    _, label_kind, label_a, label_b = _plan(label_rule)
+
+    def check(outcomes: Sequence[Any]) -> list[dict[str, Any]] | None:
+        loaded = []
+        for outcome in outcomes:
+            if type(outcome) is not dict or outcome.keys() != _OUTCOME_KEYS:
+                return None
+            key = outcome["key"]
+            label = _label(label_kind, label_a, label_b, outcome["label"])
+            if label is MISSING or not _key_ok(key, max_key):
+                return None
+            loaded.append({"key": key, "label": label})
+        return loaded
+
+    return check
+
+
+def _label(kind: int, a: Any, b: Any, label: Any) -> Any:
+    """The label loaded by its rule, or MISSING."""
+    if kind == NUMBER:
+        number = _number(label, a, b)
+        return MISSING if number is None else number
+    if kind == LEVEL:
+        return label if type(label) is str and label in a else MISSING
+    return _choice(a, label)
+
+
+def _key_ok(key: Any, max_key: int) -> bool:
+    return type(key) is str and 1 <= len(key) <= max_key and "\x00" not in key

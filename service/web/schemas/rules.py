@@ -29,7 +29,7 @@ from marshmallow import RAISE, Schema, ValidationError, fields, validate
 
 from service.errors import InvalidInputError, TooLargeError
 from service.web.problems import flatten_messages
-from service.web.schemas.fast_check import Check, compile_fast_check
+from service.web.schemas.fast_check import Check, compile_fast_check, compile_fast_outcome_check
 from service.web.schemas.fields import (
     AnyValue,
     BooleanFromText,
@@ -203,6 +203,11 @@ class RecordRules:
             raise TooLargeError(
                 f"At most {max_outcomes} outcomes per request; got {len(outcomes)}.",
                 errors={"outcomes": [f"{len(outcomes)} outcomes; at most {max_outcomes}."]})
+        if not text and type(outcomes) is list and outcomes and len(body) == 1:
+            # {"outcomes": [...]} and nothing else: the fast checker, else the schema
+            fast = self.fast_outcome_check(outcomes)
+            if fast is not None:
+                return fast
         try:
             loaded: dict[str, Any] = self.outcome_batch_schema(text=text).load(body)
         except ValidationError as exc:
@@ -216,6 +221,11 @@ class RecordRules:
         """The fast all-valid checker of JSON records (None when any is not valid)."""
         assert self.features is not None, "records are checked against a model's rules"
         return compile_fast_check(self.features, self.label, MAX_KEY_LENGTH)
+
+    @cached_property
+    def fast_outcome_check(self) -> Check:
+        """The fast all-valid checker of JSON outcomes (None when any is not valid)."""
+        return compile_fast_outcome_check(self.label, MAX_KEY_LENGTH)
 
     def load_records(self, records: Sequence[Any], *, text: bool = False
                      ) -> list[dict[str, Any]]:
