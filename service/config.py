@@ -12,6 +12,7 @@ defaults; tests/test_settings_table.py holds the two together.
 
 from __future__ import annotations
 
+import logging
 import os
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass
@@ -309,6 +310,25 @@ def read_setting(name: str, environ: Mapping[str, str] | None = None) -> Any:
     """One setting's value from the environment (``os.environ`` by default)."""
     env = os.environ if environ is None else environ
     return BY_NAME[name].value(env.get(name))
+
+
+# Settings an earlier release read and this one does not, with what replaced
+# each: a process that finds one set says so in its log once at start, so an
+# upgrade does not silently drop an operator's choice.
+RETIRED_SETTINGS: dict[str, str] = {
+    "KEELSON_VERSION_CACHE_SIZE": "KEELSON_VERSION_CACHE_MIB (memory in MiB, not a count "
+                                  "of versions; each version's cost is measured when it loads)",
+}
+
+
+def warn_of_retired(environ: Mapping[str, str] | None = None) -> list[str]:
+    """Log (and return) a warning for each retired setting that is set."""
+    env = os.environ if environ is None else environ
+    said = [f"{name} is no longer read; set {instead} instead"
+            for name, instead in RETIRED_SETTINGS.items() if (env.get(name) or "").strip()]
+    for line in said:
+        logging.getLogger("keelson").warning(line)
+    return said
 
 
 # -- the API app's settings -----------------------------------------------------

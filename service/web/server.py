@@ -119,7 +119,11 @@ _SAMPLE_FILE = re.compile(r"(counter|gauge_[a-z]+|histogram|summary)_\d+\.db")
 def on_starting(server: Any) -> None:
     """Refuse an address something already listens on (see ``reuse_port``),
     and start from an empty metrics folder: samples left by an earlier run
-    would otherwise be summed into this one's."""
+    would otherwise be summed into this one's. Retired settings are named
+    in the log (service/config.py)."""
+    from service.config import warn_of_retired
+
+    warn_of_retired()
     if server.cfg.reuse_port:
         for address in server.cfg.address:
             if isinstance(address, tuple):

@@ -22,7 +22,7 @@ import time
 from collections.abc import Callable
 from typing import Any
 
-from sqlalchemy import delete, func, select, update
+from sqlalchemy import delete, func, select, text, update
 from sqlalchemy.orm import InstrumentedAttribute, Session, sessionmaker
 
 from engine import TrainingCancelled
@@ -182,6 +182,7 @@ def _delete_records(reads: sessionmaker[Session], writes: sessionmaker[Session],
             RecordRow.model_id == model_id, RecordRow.seq > after)
             .order_by(RecordRow.seq).offset(size - 1).limit(1))
     with transaction(writes) as session:
+        _without_flush_wait(session)
         query = delete(RecordRow).where(RecordRow.model_id == model_id, RecordRow.seq > after)
         if last is not None:  # else fewer than ``size`` are left: all of them
             query = query.where(RecordRow.seq <= last)
@@ -192,6 +193,7 @@ def _delete_records(reads: sessionmaker[Session], writes: sessionmaker[Session],
 def _delete_batch(writes: sessionmaker[Session], key: InstrumentedAttribute[Any],
                   owner: InstrumentedAttribute[Any], model_id: int, size: int) -> int:
     with transaction(writes) as session:
+        _without_flush_wait(session)
         # Two statements: PostgreSQL may run a LIMIT subquery inside a DELETE
         # more than once, deleting more than a batch (as retention.py does).
         # Records go oldest first (their (model_id, seq) index gives that
@@ -205,6 +207,16 @@ def _delete_batch(writes: sessionmaker[Session], key: InstrumentedAttribute[Any]
         result = session.execute(delete(key.class_).where(owner == model_id, key.in_(found))
                                  .execution_options(synchronize_session=False))
         return int(result.rowcount)  # type: ignore[attr-defined]
+
+
+def _without_flush_wait(session: Session) -> None:
+    """On PostgreSQL, commit this batch without waiting for its WAL to reach
+    the disk (``synchronous_commit = off`` for this transaction only). A batch
+    lost in a crash comes back as rows the next run deletes again (every step
+    deletes what is still there); meanwhile other models' commits no longer
+    queue behind a flush per batch of ours. SQLite: nothing."""
+    if session.get_bind().dialect.name == "postgresql":
+        session.execute(text("SET LOCAL synchronous_commit = off"))
 
 
 def _finish(writes: sessionmaker[Session], job_id: int, worker_id: str,

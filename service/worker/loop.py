@@ -25,6 +25,7 @@ from sqlalchemy import Engine, select
 from sqlalchemy import exc as sa_exc
 from sqlalchemy.orm import Session, sessionmaker
 
+from service.config import warn_of_retired
 from service.process import stop_on_signals
 from service.store.database import make_engine, make_sessionmaker, transaction
 from service.versions.writes import Fenced
@@ -72,6 +73,7 @@ def run_worker(
     is written, and the exit is a clean one.
     """
     settings = WorkerSettings.from_config(config)
+    warn_of_retired()
     if stop is None:
         main_thread = threading.current_thread() is threading.main_thread()
         stop = stop_on_signals() if main_thread else threading.Event()

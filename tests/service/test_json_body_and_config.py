@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import logging
 
 import pytest
 from hypothesis import given, settings
@@ -101,3 +102,16 @@ def test_the_depth_check_matches_the_true_depth(value: object, limit: int,
                                                 ascii_only: bool) -> None:
     data = json.dumps(value, ensure_ascii=ascii_only).encode()
     assert nesting_depth_exceeds(data, limit) == (_depth(value) > limit)
+
+
+def test_a_retired_setting_is_named_with_what_replaced_it(caplog: pytest.LogCaptureFixture
+                                                          ) -> None:
+    from service.config import warn_of_retired
+
+    with caplog.at_level(logging.WARNING, logger="keelson"):
+        said = warn_of_retired({"KEELSON_VERSION_CACHE_SIZE": "32"})
+    assert said == [line.getMessage() for line in caplog.records]
+    assert len(said) == 1 and said[0].startswith(
+        "KEELSON_VERSION_CACHE_SIZE is no longer read; set KEELSON_VERSION_CACHE_MIB")
+    assert warn_of_retired({"KEELSON_VERSION_CACHE_SIZE": " "}) == []  # blank is unset
+    assert warn_of_retired({}) == []
