@@ -35,14 +35,21 @@ def purge_expired_cases(writes: sessionmaker[Session], reads: sessionmaker[Sessi
         models = list(session.scalars(select(ModelRow.id).order_by(ModelRow.id)))
     deleted, batches = 0, 0
     for model_id in models:
+        expired = (ScoredCaseRow.model_id == model_id, ScoredCaseRow.outcome_at.is_(None),
+                   ScoredCaseRow.scored_at < cutoff)
+        # A model with nothing expired costs one index probe, no write
+        # transaction, and no batch of the call's few: otherwise a fleet of
+        # more than ``max_batches`` models was never looked at past its first
+        # few, and every call said more may remain (a pass every poll).
+        with reads() as session:
+            if session.scalar(select(ScoredCaseRow.id).where(*expired).limit(1)) is None:
+                continue
         while True:
             if batches == max_batches:
                 return deleted, True
             batches += 1
             with transaction(writes) as session:
-                ids = select(ScoredCaseRow.id).where(
-                    ScoredCaseRow.model_id == model_id, ScoredCaseRow.outcome_at.is_(None),
-                    ScoredCaseRow.scored_at < cutoff).limit(BATCH)
+                ids = select(ScoredCaseRow.id).where(*expired).limit(BATCH)
                 if session.get_bind().dialect.name == "postgresql":
                     # A case an outcome is being joined with is skipped, not waited for.
                     ids = ids.with_for_update(skip_locked=True)

@@ -68,13 +68,13 @@ def prune_snapshots(writes: sessionmaker[Session], reads: sessionmaker[Session],
         while True:
             if batches == max_batches:
                 return pruned, True
-            batches += 1
             rule = prunable(model_id, cutoff, below, kept)
             with reads() as session:  # found outside the write lock; checked again inside
                 found = list(session.scalars(select(VersionRow.id).where(*rule)
                                              .order_by(VersionRow.number).limit(BATCH)))
             removed = 0
-            if found:
+            if found:  # only a batch with work counts: a fleet is looked at whole
+                batches += 1
                 with transaction(writes) as session:
                     result = session.execute(
                         update(VersionRow).where(VersionRow.id.in_(found), *rule)

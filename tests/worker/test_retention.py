@@ -66,3 +66,21 @@ def test_the_worker_deletes_expired_cases_by_itself(database_url: str) -> None:
             wait_until(lambda: keys(db) == {"young-0", "young-1"})
     finally:
         db.engine.dispose()
+
+
+def test_a_fleet_past_the_batches_of_one_call_is_looked_at_whole(database_url: str) -> None:
+    # A model with nothing expired takes no batch of a call (one read probe):
+    # with more such models than a call's batches, the last model's cases are
+    # still deleted, and the call says nothing more remains.
+    db = database(database_url)
+    try:
+        quiet = [new_model(db, numeric_spec(f"quiet-{i}", ["x0"]))
+                 for i in range(retention.MAX_BATCHES + 2)]
+        for n, model_id in enumerate(quiet):
+            add_cases(db, model_id, f"young{n}", 1, age_days=10)
+        last = new_model(db, numeric_spec("last", ["x0"]))
+        add_cases(db, last, "old", 3, age_days=200)
+        assert retention.purge_expired_cases(db.write, db.read, 180, now=NOW) == (3, False)
+        assert keys(db) == {f"young{n}-0" for n in range(len(quiet))}
+    finally:
+        db.engine.dispose()

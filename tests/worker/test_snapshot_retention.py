@@ -147,3 +147,19 @@ def test_the_worker_prunes_by_itself(database_url: str) -> None:
             wait_until(lambda: pruned_numbers(db, model) == {1, 2, 3})
     finally:
         db.engine.dispose()
+
+
+def test_a_fleet_past_the_batches_of_one_call_is_looked_at_whole(database_url: str) -> None:
+    # Models with nothing to prune take no batch of a call: with more of them
+    # than a call's batches, the last model's versions are still pruned, and
+    # the call says nothing more remains (the worker comes back in a minute,
+    # not at its next poll).
+    db = database(database_url)
+    try:
+        quiet = [build(db, f"quiet-{i}", 3, created=NOW) for i in range(retention.MAX_BATCHES + 2)]
+        last = build(db, "last", 5)
+        assert retention.prune_snapshots(db.write, db.read, 30, 2, now=NOW) == (3, False)
+        assert pruned_numbers(db, last) == {1, 2, 3}
+        assert all(pruned_numbers(db, model_id) == set() for model_id in quiet)
+    finally:
+        db.engine.dispose()
