@@ -2,20 +2,17 @@
 
 SQLite gets WAL (readers never wait for the writer), foreign keys and a busy
 timeout on every connection; PostgreSQL gets pre-ping so a restarted server is
-reconnected to instead of surfacing as an error. Both read JSON columns with
-``decode_json``.
+reconnected to instead of surfacing as an error.
 """
 
 from __future__ import annotations
 
-import json
 from collections.abc import Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-import orjson
 from sqlalchemy import Engine, create_engine, event
 from sqlalchemy.engine import make_url
 from sqlalchemy.orm import Session, sessionmaker
@@ -27,25 +24,8 @@ def is_sqlite(url: str) -> bool:
     return make_url(url).get_backend_name() == "sqlite"
 
 
-def decode_json(value: str | bytes | float) -> Any:
-    """How every engine reads a JSON column: orjson, several times faster than
-    the standard library on record features and scored cases, to the same
-    values; what orjson refuses (an integer beyond 64 bits, ``NaN``) goes to
-    the standard library, which decides as SQLAlchemy's own decoder would.
-    SQLite hands a JSON column holding a bare number back as that number (its
-    NUMERIC affinity converted it); SQLAlchemy's own decoder lets those through
-    too."""
-    if isinstance(value, int | float):
-        return value
-    try:
-        return orjson.loads(value)
-    except orjson.JSONDecodeError:
-        return json.loads(value)
-
-
 def make_engine(url: str, **kwargs: Any) -> Engine:
     """An Engine for ``url`` with the per-backend settings Keelson relies on."""
-    kwargs.setdefault("json_deserializer", decode_json)
     if is_sqlite(url):
         database = make_url(url).database
         if database and database != ":memory:":

@@ -80,13 +80,14 @@ def replay(model: str, number: int | None, quiet: bool, store: bool) -> None:
     from service.config import load_config
     from service.errors import KeelsonError
     from service.store.database import make_engine, make_sessionmaker
+    from service.store.record_log import decode_json
     from service.worker.audit import audit_version
     from service.worker.replay import CannotReplay
     from service.worker.settings import WorkerSettings
 
     config = load_config()
     settings = WorkerSettings.from_config(config)
-    engine = make_engine(config["KEELSON_DATABASE_URL"])
+    engine = make_engine(config["KEELSON_DATABASE_URL"], json_deserializer=decode_json)
     bars = _Bars(shown=not quiet)
     try:
         # One BLAS thread, as the worker runs (service/process.py): the same

@@ -28,6 +28,7 @@ from sqlalchemy.orm import Session, sessionmaker
 from service.config import warn_of_retired
 from service.process import stop_on_signals
 from service.store.database import make_engine, make_sessionmaker, transaction
+from service.store.record_log import decode_json
 from service.versions.writes import Fenced
 from service.worker.faults import ANY_HEAD, describe, is_expected, log_text, record_fault
 from service.worker.job_runner import JobRunner
@@ -81,7 +82,7 @@ def run_worker(
     if stop.is_set():
         log.info("worker %s: stopped while starting; nothing to do", name)
         return
-    engine = make_engine(settings.database_url)
+    engine = make_engine(settings.database_url, json_deserializer=decode_json)
     try:
         Worker(settings, engine, name, stop).run()
     finally:

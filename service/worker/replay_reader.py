@@ -112,9 +112,9 @@ def _read(conn: Connection, url: str, model_id: int, upto: int, chunk_records: i
     from engine import EngineError
     from engine.encoding import Encoder
     from service.store.database import make_engine, make_sessionmaker
-    from service.store.record_log import iter_chunks
+    from service.store.record_log import decode_json, iter_chunks
 
-    engine = make_engine(url)
+    engine = make_engine(url, json_deserializer=decode_json)
     try:
         encoder = Encoder.from_state(spec, encoder_arrays, encoder_meta)
         sessions = make_sessionmaker(engine)

@@ -18,8 +18,6 @@ from sqlalchemy import (
 from sqlalchemy.engine import Dialect
 from sqlalchemy.orm import DeclarativeBase
 
-from service.store.database import decode_json
-
 # Alembic docs/build/naming.rst: every constraint gets a deterministic name, so
 # migrations can drop or alter it by name on every backend.
 NAMING_CONVENTION = {
@@ -52,7 +50,7 @@ class TextJSON(TypeDecorator[Any]):
         return None if value is None else json.dumps(value, allow_nan=False)
 
     def process_result_value(self, value: Any, dialect: Dialect) -> Any:
-        return None if value is None else decode_json(value)
+        return None if value is None else json.loads(value)
 
 
 # JSON on PostgreSQL (which keeps numbers exactly), TEXT on SQLite (see TextJSON).

@@ -62,13 +62,14 @@ def _measure(url: str, records: int, progress: Progress) -> dict[str, Any]:
 
     from engine.snapshot_diff import first_difference
     from service.store.database import make_engine, make_sessionmaker
+    from service.store.record_log import decode_json
     from service.store.schema import upgrade_database
     from service.worker.replay import rebuild_snapshot
     from service.worker.settings import WorkerSettings
 
     backend = url.split(":", 1)[0].split("+", 1)[0]
     upgrade_database(url)
-    engine = make_engine(url)
+    engine = make_engine(url, json_deserializer=decode_json)
     reads, writes = make_sessionmaker(engine), make_sessionmaker(engine, write=True)
     try:
         progress(f"[{backend}] storing {records} records")

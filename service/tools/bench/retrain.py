@@ -91,11 +91,12 @@ def run_retrain_bench(records: int, fields: int = 20, epochs: int | None = None,
 def _measure(url: str, records: int, fields: int, epochs: int | None, chunk_records: int | None,
              progress: Progress) -> dict[str, Any]:
     from service.store.database import open_database
+    from service.store.record_log import decode_json
     from service.store.schema import upgrade_database
 
     backend = url.split(":", 1)[0].split("+", 1)[0]
     upgrade_database(url)
-    database = open_database(url)
+    database = open_database(url, json_deserializer=decode_json)
     progress(f"[{backend}] storing {records} records")
     started = time.perf_counter()
     model_id, raw, labels, is_train = _store(database, records, fields, epochs)

@@ -38,6 +38,7 @@ def main() -> None:
     pin_blas_to_one_thread()
     from service.config import load_config
     from service.store.database import open_database
+    from service.store.record_log import decode_json
     from service.worker.job_runner import JobRunner
     from service.worker.settings import WorkerSettings
 
@@ -48,7 +49,7 @@ def main() -> None:
     logging.basicConfig(level=logging.INFO, format="%(asctime)s %(name)s %(message)s",
                         stream=sys.stderr)
     settings = WorkerSettings.from_config(load_config())
-    database = open_database(settings.database_url)
+    database = open_database(settings.database_url, json_deserializer=decode_json)
     runner = JobRunner(settings, database.read, database.write, "bench-retrain",
                        threading.Event())
     started = time.perf_counter()

@@ -96,11 +96,12 @@ def run_worker_bench(
 
 def _measure(url: str, records: int, progress: Progress, retrain: bool) -> dict[str, Any]:
     from service.store.database import make_engine, make_sessionmaker
+    from service.store.record_log import decode_json
     from service.store.schema import upgrade_database
 
     backend = url.split(":", 1)[0].split("+", 1)[0]
     upgrade_database(url)
-    engine = make_engine(url)
+    engine = make_engine(url, json_deserializer=decode_json)
     reads, writes = make_sessionmaker(engine), make_sessionmaker(engine, write=True)
     progress(f"[{backend}] storing {records} records")
     started = time.perf_counter()
