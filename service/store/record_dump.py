@@ -15,7 +15,7 @@ from collections.abc import Iterator
 from dataclasses import dataclass
 from typing import Any
 
-from sqlalchemy import Text, select, type_coerce
+from sqlalchemy import Text, func, select, type_coerce
 from sqlalchemy.orm import Session, sessionmaker
 
 from service.store.record_log import decode_named, json_text
@@ -54,9 +54,12 @@ def read_stored(session: Session, model_id: int, which: RecordFilter, limit: int
     """Up to ``limit`` records matching ``which``, in sequence order."""
     dialect = session.get_bind().dialect.name
     # SQLite keeps a time as text: read it so, and convert each distinct one
-    # once (a batch's records share theirs), not once a row.
+    # once (a batch's records share theirs), not once a row. PostgreSQL spells
+    # it in RFC 3339 itself (in UTC, whatever the session's zone and date
+    # style): no timestamp object per row to build, hash and format.
     received = (type_coerce(RecordRow.received_at, Text) if dialect == "sqlite"
-                else RecordRow.received_at)
+                else func.to_char(func.timezone("UTC", RecordRow.received_at),
+                                  _PG_RFC3339))
     query = select(RecordRow.seq, RecordRow.key, RecordRow.split, received,
                    json_text(RecordRow.features, dialect),
                    json_text(RecordRow.label, dialect)).where(
@@ -74,11 +77,18 @@ def read_stored(session: Session, model_id: int, which: RecordFilter, limit: int
         return StoredRecords([], [], [], [], [], [])
     seqs, keys, splits, times, features, labels = (list(column) for column in zip(*rows,
                                                                                  strict=True))
-    texts: dict[Any, str] = {}
-    return StoredRecords(seqs, keys, splits,
-                         [texts.get(t) or texts.setdefault(t, _rfc3339(t)) for t in times],
+    if dialect == "sqlite":
+        texts: dict[Any, str] = {}
+        times = [texts.get(t) or texts.setdefault(t, _rfc3339(t)) for t in times]
+    else:  # as isoformat() writes a time without microseconds
+        times = [t if not t.endswith(_NO_MICROSECONDS) else t[:-13] + "+00:00" for t in times]
+    return StoredRecords(seqs, keys, splits, times,
                          decode_named(features, seqs, "features are"),
                          decode_named(labels, seqs, "label is"))
+
+
+_PG_RFC3339 = 'YYYY-MM-DD"T"HH24:MI:SS.US"+00:00"'
+_NO_MICROSECONDS = ".000000+00:00"
 
 
 def _rfc3339(moment: dt.datetime | str) -> str:

@@ -139,3 +139,22 @@ def test_the_accept_header_chooses_by_preference(any_api: ApiClient) -> None:
         response = any_api.client.get(URL, headers={
             "Authorization": "Bearer test-admin-token", "Accept": accept})
         assert (response.status_code, response.mimetype) == (200, expected), accept
+
+
+def test_times_read_as_python_writes_them_whatever_the_database(any_api: ApiClient) -> None:
+    # The time of a record is RFC 3339 in UTC, spelt as datetime.isoformat()
+    # spells it (no fraction when the microseconds are 0), on both databases
+    # (the service writes every time in UTC).
+    _fill(any_api, count=4)
+    moments = [dt.datetime(2026, 3, 1, 6, 30, 0, tzinfo=dt.UTC),
+               dt.datetime(2026, 3, 1, 6, 30, 0, 120, tzinfo=dt.UTC),
+               dt.datetime(2026, 3, 1, 5, 30, 5, 999999, tzinfo=dt.UTC),
+               dt.datetime(2026, 3, 1, 23, 59, 59, 500000, tzinfo=dt.UTC)]
+    with get_database(any_api.app).write() as session:
+        seqs = list(session.scalars(select(RecordRow.seq).order_by(RecordRow.seq)))
+        for seq, moment in zip(seqs, moments, strict=True):
+            session.execute(RecordRow.__table__.update().where(RecordRow.seq == seq)
+                            .values(received_at=moment))
+        session.commit()
+    assert [line["time"] for line in _ndjson(any_api)] == [
+        moment.astimezone(dt.UTC).isoformat() for moment in moments]
