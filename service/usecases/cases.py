@@ -15,16 +15,14 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
-from sqlalchemy import bindparam, insert, select, update
+from sqlalchemy import insert, select, update
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session, sessionmaker
 
 from service.errors import ConflictError
 from service.store.tables import ScoredCaseRow, VersionRow, utcnow
-from service.store.value_lists import in_json_list
+from service.store.value_lists import rows_matching
 from service.usecases.case_writer import case_writer
-
-KEY_CHUNK = 500  # keys per IN (...) on SQLite: under its parameter limit
 
 
 @dataclass(frozen=True, slots=True)
@@ -125,20 +123,13 @@ def _stored_features(session: Session, model_id: int, keys: list[str]
 def find_cases(session: Session, model_id: int, keys: Sequence[str], *columns: Any,
                lock: bool = False) -> list[Any]:
     """``(key, *columns)`` of the model's cases named by ``keys``, in one
-    query on PostgreSQL (an array parameter), in chunks on SQLite. ``lock``:
+    query on PostgreSQL, in chunks on SQLite (service/store/value_lists.py). ``lock``:
     lock those rows until the transaction ends (PostgreSQL; a SQLite write
     transaction holds the database lock already), so retention cannot delete
     a case an outcome is being joined with (service/worker/retention.py)."""
     unique = list(dict.fromkeys(keys))
     query = select(ScoredCaseRow.key, *columns).where(ScoredCaseRow.model_id == model_id)
-    if session.get_bind().dialect.name == "postgresql":
-        if lock:  # in key order, as re-scores update them (no deadlock between the two)
-            query = query.with_for_update().order_by(ScoredCaseRow.key)
-        return list(session.execute(query.where(
-            in_json_list(ScoredCaseRow.key, "keys", unique))))
-    found: list[Any] = []
-    # One expanding parameter: the statement is compiled once, not per key.
-    chunked = query.where(ScoredCaseRow.key.in_(bindparam("keys", expanding=True)))
-    for start in range(0, len(unique), KEY_CHUNK):
-        found.extend(session.execute(chunked, {"keys": unique[start:start + KEY_CHUNK]}))
-    return found
+    if lock and session.get_bind().dialect.name == "postgresql":
+        # In key order, as re-scores update them (no deadlock between the two).
+        query = query.with_for_update().order_by(ScoredCaseRow.key)
+    return rows_matching(session, query, ScoredCaseRow.key, unique)

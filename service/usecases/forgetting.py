@@ -47,7 +47,7 @@ from service.store.tables import (
     TrainerRow,
     VersionRow,
 )
-from service.store.value_lists import in_json_list
+from service.store.value_lists import SQLITE_CHUNK, rows_matching
 from service.usecases.cases import find_cases
 from service.usecases.common import find_model
 from service.usecases.forget_outcomes import take_out_outcomes
@@ -55,7 +55,6 @@ from service.usecases.jobs import job_view
 
 MAX_FORGET_KEYS = 10_000  # keys per request: one transaction stays short
 SHOWN = 100  # absent keys and marked versions an answer names (all are counted)
-_CHUNK = 500  # values per IN (...) on SQLite: under its parameter limit
 
 
 def key_hash(key: str) -> str:
@@ -133,15 +132,8 @@ def _lock_running_retrains(session: Session, model_id: int) -> list[JobRow]:
 
 def _find_records(session: Session, model_id: int, keys: list[str]) -> list[Any]:
     """(seq, key, split) of the model's records named by ``keys``."""
-    query = select(RecordRow.seq, RecordRow.key, RecordRow.split).where(
-        RecordRow.model_id == model_id)
-    if session.get_bind().dialect.name == "postgresql":
-        return list(session.execute(query.where(
-            in_json_list(RecordRow.key, "keys", keys))))
-    found: list[Any] = []
-    for start in range(0, len(keys), _CHUNK):
-        found.extend(session.execute(query.where(RecordRow.key.in_(keys[start:start + _CHUNK]))))
-    return found
+    return rows_matching(session, select(RecordRow.seq, RecordRow.key, RecordRow.split)
+                         .where(RecordRow.model_id == model_id), RecordRow.key, keys)
 
 
 def _mark_versions(session: Session, model_id: int, train_seqs: list[int]
@@ -175,8 +167,8 @@ def _delete(session: Session, column: Any, values: list[int]) -> None:
         session.execute(delete(table).where(column == any_(
             bindparam("values", values, type_=ARRAY(BIGINT)))))
         return
-    for start in range(0, len(values), _CHUNK):
-        session.execute(delete(table).where(column.in_(values[start:start + _CHUNK])))
+    for start in range(0, len(values), SQLITE_CHUNK):
+        session.execute(delete(table).where(column.in_(values[start:start + SQLITE_CHUNK])))
 
 
 def _fence(trainer: TrainerRow | None, jobs: list[JobRow]) -> None:

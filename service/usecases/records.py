@@ -19,16 +19,15 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
-from sqlalchemy import bindparam, func, select, text, update
+from sqlalchemy import func, select, text, update
 from sqlalchemy.orm import Session, sessionmaker
 
 from service.errors import ConflictError
 from service.store.model_events import RECORDS_FORGOTTEN
 from service.store.tables import ModelEventRow, ModelRow, RecordRow, utcnow
-from service.store.value_lists import in_json_list
+from service.store.value_lists import rows_matching
 from service.usecases.common import find_model
 
-KEY_CHUNK = 500  # keys per IN (...) on SQLite: under its parameter limit
 _SPLIT_SCALE = float(2**64)
 
 
@@ -128,7 +127,7 @@ def store_records(session: Session, model: ModelRow, valid: list[Mapping[str, An
         # from statistics taken when the table was small (a sequential scan
         # that grows with the table). Plan each statement for its values.
         session.execute(text("SET LOCAL plan_cache_mode = force_custom_plan"))
-    fresh = _drop_duplicates(session, model.id, valid, postgres=postgres)
+    fresh = _drop_duplicates(session, model.id, valid)
     if not fresh:
         return IngestResult(accepted=0, duplicates=len(valid))
     seqs = _allocate_seqs(session, model.id, len(fresh), postgres=postgres)
@@ -155,7 +154,7 @@ def store_records(session: Session, model: ModelRow, valid: list[Mapping[str, An
 
 
 def _drop_duplicates(
-    session: Session, model_id: int, valid: list[Mapping[str, Any]], *, postgres: bool
+    session: Session, model_id: int, valid: list[Mapping[str, Any]]
 ) -> list[Mapping[str, Any]]:
     """The batch without keys already stored or repeated within it (first wins).
 
@@ -165,20 +164,9 @@ def _drop_duplicates(
     keys = list(dict.fromkeys(r["key"] for r in valid if "key" in r))
     if not keys:
         return valid
-    stored: set[str] = set()
-    if postgres:  # one array parameter instead of thousands of scalars
-        stored.update(session.scalars(
-            select(RecordRow.key).where(
-                RecordRow.model_id == model_id,
-                in_json_list(RecordRow.key, "keys", keys),
-            )
-        ))
-    else:
-        # One expanding parameter: the statement is compiled once, not per key.
-        query = select(RecordRow.key).where(RecordRow.model_id == model_id,
-                                            RecordRow.key.in_(bindparam("keys", expanding=True)))
-        for start in range(0, len(keys), KEY_CHUNK):
-            stored.update(session.scalars(query, {"keys": keys[start:start + KEY_CHUNK]}))
+    stored = {row[0] for row in rows_matching(
+        session, select(RecordRow.key).where(RecordRow.model_id == model_id),
+        RecordRow.key, keys)}
     fresh = []
     for record in valid:
         key = record.get("key")

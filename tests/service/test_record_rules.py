@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import copy
 import math
+from collections.abc import Callable
 from typing import Any
 
 import jsonschema
@@ -85,12 +86,16 @@ def broken(draw: st.DrawFn, spec: dict[str, Any], records: list[dict[str, Any]],
     return batch
 
 
-def schema_load(rules: RecordRules, batch: list[Any]) -> list[dict[str, Any]] | None:
+def refused_as_none(load: Callable[[], Any]) -> Any:
+    """What ``load()`` returns, or None when the schema refuses."""
     try:
-        loaded: list[dict[str, Any]] = rules.record_schema().load(batch, many=True)
+        return load()
     except ValidationError:
         return None
-    return loaded
+
+
+def schema_load(rules: RecordRules, batch: list[Any]) -> list[dict[str, Any]] | None:
+    return refused_as_none(lambda: rules.record_schema().load(batch, many=True))
 
 
 def typed(value: Any) -> Any:
@@ -139,11 +144,8 @@ def broken_outcomes(draw: st.DrawFn, outcomes: list[dict[str, Any]],
 
 
 def schema_load_outcomes(rules: RecordRules, outcomes: list[Any]) -> list[Any] | None:
-    try:
-        loaded = rules.outcome_batch_schema().load({"outcomes": outcomes})
-    except ValidationError:
-        return None
-    return list(loaded["outcomes"])
+    return refused_as_none(
+        lambda: list(rules.outcome_batch_schema().load({"outcomes": outcomes})["outcomes"]))
 
 
 @EXAMPLES
